@@ -1,0 +1,8 @@
+"""Package version, read once from the installed metadata."""
+
+from importlib.metadata import PackageNotFoundError, version
+
+try:
+    __version__ = version("widescreen")
+except PackageNotFoundError:  # running from a source tree that is not installed
+    __version__ = "0+unknown"
