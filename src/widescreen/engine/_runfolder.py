@@ -1,0 +1,170 @@
+"""The run folder: manifest, lock, per-pass statistics and block completion markers.
+
+Layout::
+
+    RUN/
+      manifest.json                 config, dataset fingerprint, versions, state and timings of each pass
+      .lock                         held while a process works on the folder (pid, host, start time)
+      passes/NAME/                  Zarr v3 group: one (n_features,) array per statistic, chunked like X
+      passes/NAME/done/BLOCK.json   completion marker of one block: written after its statistics
+      ranking.tsv, model.tsv, ...   final tables, written to a temporary name and renamed
+
+Every file that exists is complete: JSON and tables go through `atomic_write`, and a block counts as
+finished only when its marker exists, which is written after its statistics.
+"""
+
+from __future__ import annotations
+
+import json
+import os
+import socket
+import time
+from dataclasses import dataclass
+from pathlib import Path
+
+import numpy as np
+
+
+class RunFolderError(RuntimeError):
+    """The run folder cannot be used as asked: held by another process, or made by another config."""
+
+
+def atomic_write(path: Path, data: str | bytes) -> None:
+    """Write to a temporary name in the same folder, flush to disk, then rename over ``path``."""
+    path = Path(path)
+    path.parent.mkdir(parents=True, exist_ok=True)
+    tmp = path.with_name(f".{path.name}.tmp-{os.getpid()}")
+    mode = "wb" if isinstance(data, bytes) else "w"
+    with open(tmp, mode) as f:
+        f.write(data)
+        f.flush()
+        os.fsync(f.fileno())
+    os.replace(tmp, path)
+
+
+def _pid_alive(pid: int) -> bool:
+    try:
+        os.kill(pid, 0)
+    except ProcessLookupError:
+        return False
+    except PermissionError:
+        return True
+    return True
+
+
+@dataclass
+class RunLock:
+    """An exclusive lock on a run folder that a killed process does not leave stuck.
+
+    The lock file records pid and host; a lock whose process is gone (same host) is taken over.
+    Creation uses O_EXCL, so two processes cannot both take it.
+    """
+
+    path: Path
+
+    def acquire(self) -> None:
+        info = {"pid": os.getpid(), "host": socket.gethostname(), "started": time.time()}
+        for _ in range(2):
+            try:
+                fd = os.open(self.path, os.O_CREAT | os.O_EXCL | os.O_WRONLY, 0o644)
+            except FileExistsError:
+                holder = self._holder()
+                if holder is not None and holder.get("host") == info["host"] and not _pid_alive(
+                    int(holder.get("pid", -1))
+                ):
+                    self.path.unlink(missing_ok=True)  # stale: its process was killed
+                    continue
+                who = f"pid {holder.get('pid')} on {holder.get('host')}" if holder else "another process"
+                raise RunFolderError(
+                    f"{self.path.parent}: in use by {who}; wait for it to finish "
+                    f"(or remove {self.path.name} if that process is gone)"
+                ) from None
+            with os.fdopen(fd, "w") as f:
+                json.dump(info, f)
+            return
+        raise RunFolderError(f"{self.path.parent}: could not take the lock")
+
+    def _holder(self) -> dict | None:
+        try:
+            return json.loads(self.path.read_text())
+        except (OSError, ValueError):
+            return None
+
+    def release(self) -> None:
+        holder = self._holder()
+        if holder is not None and holder.get("pid") == os.getpid():
+            self.path.unlink(missing_ok=True)
+
+    def __enter__(self) -> RunLock:
+        self.acquire()
+        return self
+
+    def __exit__(self, *exc) -> None:
+        self.release()
+
+
+class RunFolder:
+    """Access to one run folder. Creates it on first use."""
+
+    def __init__(self, path: str | os.PathLike) -> None:
+        self.path = Path(path)
+
+    @property
+    def manifest_path(self) -> Path:
+        return self.path / "manifest.json"
+
+    def lock(self) -> RunLock:
+        self.path.mkdir(parents=True, exist_ok=True)
+        return RunLock(self.path / ".lock")
+
+    def read_manifest(self) -> dict | None:
+        if not self.manifest_path.exists():
+            return None
+        try:
+            return json.loads(self.manifest_path.read_text())
+        except ValueError as exc:
+            raise RunFolderError(f"{self.manifest_path}: unreadable manifest: {exc}") from None
+
+    def write_manifest(self, manifest: dict) -> None:
+        atomic_write(self.manifest_path, json.dumps(manifest, indent=2, sort_keys=True, default=_json_default))
+
+    def pass_dir(self, name: str) -> Path:
+        return self.path / "passes" / name
+
+    def marker(self, pass_name: str, block: int) -> Path:
+        return self.pass_dir(pass_name) / "done" / f"{block}.json"
+
+    def done_blocks(self, pass_name: str) -> set[int]:
+        d = self.pass_dir(pass_name) / "done"
+        if not d.is_dir():
+            return set()
+        return {int(p.stem) for p in d.glob("*.json") if p.stem.isdigit()}
+
+    def write_table(self, name: str, text: str) -> Path:
+        path = self.path / name
+        atomic_write(path, text)
+        return path
+
+
+def _json_default(obj):
+    if isinstance(obj, np.integer):
+        return int(obj)
+    if isinstance(obj, np.floating):
+        return float(obj)
+    if isinstance(obj, np.ndarray):
+        return obj.tolist()
+    if isinstance(obj, Path):
+        return str(obj)
+    raise TypeError(f"cannot record {type(obj).__name__} in a manifest")
+
+
+def diff_config(old: dict, new: dict, prefix: str = "") -> list[str]:
+    """Human-readable differences between two recorded configurations."""
+    out = []
+    for key in sorted(set(old) | set(new)):
+        a, b = old.get(key, "<unset>"), new.get(key, "<unset>")
+        if isinstance(a, dict) and isinstance(b, dict):
+            out.extend(diff_config(a, b, f"{prefix}{key}."))
+        elif a != b:
+            out.append(f"{prefix}{key}: {a!r} -> {b!r}")
+    return out

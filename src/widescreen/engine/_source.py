@@ -1,0 +1,130 @@
+"""Block sources: where a pass reads its feature blocks from.
+
+A pass only needs to read column block ``i`` of a (samples x features) matrix; the store is one source,
+an in-memory numpy or Dask array another (used by the scikit-learn estimators).
+"""
+
+from __future__ import annotations
+
+from abc import ABC, abstractmethod
+from dataclasses import dataclass
+
+import numpy as np
+
+from ..store._format import MISSING_INT8, Dataset
+from ..store._reader import ChunkLayout, read_block
+
+
+class BlockSource(ABC):
+    """A (n_samples, n_features) matrix read one block of whole columns at a time."""
+
+    n_samples: int
+    n_features: int
+    block_width: int
+    value_kind: str
+
+    @property
+    def n_blocks(self) -> int:
+        return -(-self.n_features // self.block_width)
+
+    def bounds(self, i: int) -> tuple[int, int]:
+        start = i * self.block_width
+        return start, min(start + self.block_width, self.n_features)
+
+    @abstractmethod
+    def read(self, i: int) -> np.ndarray:
+        """Raw values of block ``i``: (n_samples, width), NaN or the int8 sentinel for missing."""
+
+    @abstractmethod
+    def token(self) -> str:
+        """A fingerprint of the data, recorded by checkpoints."""
+
+    def describe(self) -> str:
+        return f"{self.n_samples} x {self.n_features} {self.value_kind}"
+
+
+@dataclass
+class StoreSource(BlockSource):
+    """A dataset store; blocks are its chunk columns, decoded into reused buffers."""
+
+    dataset: Dataset
+
+    def __post_init__(self) -> None:
+        self.layout = ChunkLayout.of(self.dataset)
+        self.n_samples = self.dataset.n_samples
+        self.n_features = self.dataset.n_features
+        self.block_width = self.layout.chunk_cols
+        self.value_kind = self.dataset.attrs.value_kind
+        self._token: str | None = None
+
+    def read(self, i: int) -> np.ndarray:
+        return read_block(self.dataset, i, self.layout)
+
+    def token(self) -> str:
+        if self._token is None:
+            self._token = self.dataset.fingerprint()
+        return self._token
+
+    def __getstate__(self) -> dict:
+        # Workers reopen nothing: the Dataset handle pickles as its path and attributes.
+        return self.__dict__
+
+    def describe(self) -> str:
+        return f"{self.dataset.path} ({super().describe()})"
+
+
+@dataclass
+class ArraySource(BlockSource):
+    """An in-memory numpy array or a Dask array of shape (n_samples, n_features)."""
+
+    array: object
+    width: int = 4096
+
+    def __post_init__(self) -> None:
+        shape = tuple(self.array.shape)
+        if len(shape) != 2:
+            raise ValueError(f"X must be 2-dimensional (n_samples, n_features); got shape {shape}")
+        self.n_samples, self.n_features = int(shape[0]), int(shape[1])
+        chunks = getattr(self.array, "chunks", None)
+        if chunks is not None and isinstance(chunks, tuple) and isinstance(chunks[1], tuple):
+            self.block_width = int(max(chunks[1]))  # a Dask array: follow its column chunks
+        else:
+            self.block_width = int(max(1, min(self.width, self.n_features)))
+        dt = np.dtype(self.array.dtype)
+        self.value_kind = "dosage" if dt == np.int8 else "continuous"
+
+    def read(self, i: int) -> np.ndarray:
+        start, stop = self.bounds(i)
+        block = self.array[:, start:stop]
+        if hasattr(block, "compute"):
+            block = block.compute()
+        block = np.asarray(block)
+        if block.dtype.kind not in "fi":
+            raise ValueError(f"X must be numeric; got dtype {block.dtype}")
+        if block.dtype.kind == "i" and block.dtype != np.int8:
+            block = block.astype(np.float64)
+        return block
+
+    def token(self) -> str:
+        from dask.base import tokenize
+
+        return tokenize(self.array)
+
+
+def as_source(X) -> BlockSource:
+    """A block source for a store, an opened Dataset, a numpy array or a Dask array."""
+    from ..store._format import open_dataset
+
+    if isinstance(X, BlockSource):
+        return X
+    if isinstance(X, Dataset):
+        return StoreSource(X)
+    if isinstance(X, str) or hasattr(X, "__fspath__"):
+        return StoreSource(open_dataset(X))
+    if hasattr(X, "shape") and hasattr(X, "dtype"):
+        return ArraySource(X)
+    raise TypeError(f"cannot screen an object of type {type(X).__name__}; give a store path or an array")
+
+
+def missing_sentinel(source: BlockSource) -> int | None:
+    return MISSING_INT8 if source.value_kind == "dosage" else None

@@ -1,0 +1,112 @@
+"""Running top-k of feature scores, merged across blocks without sorting all features.
+
+Ties are broken by feature index (lower first) so that every merge order gives the same list.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+
+
+@dataclass(frozen=True)
+class TopK:
+    """The k strongest features seen so far, strongest first.
+
+    Attributes
+    ----------
+    index : ndarray of int64, shape (m,), m <= k
+        Store indices of the features.
+    score : ndarray of float64, shape (m,)
+    values : ndarray of float64, shape (n_samples, m) or None
+        The features' imputed, centred values, kept so the refit needs no second read.
+    null_max : ndarray of float64, shape (n_nulls,)
+        Largest null (permuted-response) score over all features seen, per permutation.
+    """
+
+    k: int
+    index: np.ndarray
+    score: np.ndarray
+    values: np.ndarray | None
+    null_max: np.ndarray
+
+    @classmethod
+    def empty(cls, k: int, n_nulls: int = 0) -> TopK:
+        return cls(
+            k=k,
+            index=np.empty(0, np.int64),
+            score=np.empty(0, np.float64),
+            values=None,
+            null_max=np.full(n_nulls, -np.inf),
+        )
+
+
+def _order(score: np.ndarray, index: np.ndarray) -> np.ndarray:
+    # Strongest first; equal scores by ascending feature index.
+    return np.lexsort((index, -score))
+
+
+def block_topk(
+    k: int,
+    start: int,
+    score: np.ndarray,
+    values: np.ndarray | None,
+    eligible: np.ndarray,
+    null_score: np.ndarray | None = None,
+) -> TopK:
+    """Top-k of one block.
+
+    Parameters
+    ----------
+    k : int
+    start : int
+        Store index of the block's first feature.
+    score : ndarray of shape (width,)
+    values : ndarray of shape (n, width) or None
+        Block values; the kept columns are copied (the block buffer is reused by the reader).
+    eligible : ndarray of bool, shape (width,)
+        Features allowed into the list (not filtered, not excluded, not constant).
+    null_score : ndarray of shape (width, n_nulls), optional
+    """
+    n_nulls = 0 if null_score is None else null_score.shape[1]
+    null_max = np.full(n_nulls, -np.inf)
+    if null_score is not None and eligible.any():
+        null_max = null_score[eligible].max(axis=0)
+    cand = np.flatnonzero(eligible)
+    if cand.size > k:
+        # Partition first, then widen the cut to keep every tie at the boundary: exact and deterministic.
+        part = np.argpartition(-score[cand], k - 1)[:k]
+        cut = score[cand][part].min()
+        cand = cand[score[cand] >= cut]
+    idx = cand + start
+    order = _order(score[cand], idx)[:k]
+    cand = cand[order]
+    kept = None if values is None else np.array(values[:, cand], dtype=np.float64, order="F")
+    return TopK(k=k, index=idx[order], score=score[cand].astype(np.float64), values=kept, null_max=null_max)
+
+
+def merge_topk(a: TopK, b: TopK) -> TopK:
+    """Merge two top-k lists into one of the same k."""
+    k = max(a.k, b.k)
+    index = np.concatenate([a.index, b.index])
+    score = np.concatenate([a.score, b.score])
+    order = _order(score, index)[:k]
+    values = None
+    if a.values is not None or b.values is not None:
+        parts = [v for v in (a.values, b.values) if v is not None]
+        allv = np.hstack(parts) if len(parts) > 1 else parts[0]
+        values = allv[:, order] if allv.shape[1] == index.size else None
+    if a.null_max.size and b.null_max.size:
+        null_max = np.maximum(a.null_max, b.null_max)
+    else:
+        null_max = a.null_max if a.null_max.size else b.null_max
+    return TopK(k=k, index=index[order], score=score[order], values=values, null_max=null_max)
+
+
+def merge_all(parts: list[TopK], k: int, n_nulls: int = 0) -> TopK:
+    """Merge any number of top-k lists (a tree would do the same; the result is order-independent)."""
+    out = TopK.empty(k, n_nulls)
+    for p in parts:
+        out = merge_topk(out, p)
+    return out
