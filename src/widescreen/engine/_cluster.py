@@ -22,7 +22,7 @@ def local_cluster_client(n_workers: int, memory_limit: str | int = "auto"):
     )
     client = Client(cluster)
     # Closing the client also shuts the cluster it started down.
-    client._owned_cluster = cluster  # noqa: SLF001 - kept alive with the client
+    client._owned_cluster = cluster
     orig_close = client.close
 
     def close(*args, **kwargs):

@@ -14,6 +14,7 @@ import json
 import time
 from collections.abc import Callable
 from dataclasses import dataclass, field
+from pathlib import Path
 from typing import Any
 
 import numpy as np
@@ -145,7 +146,9 @@ class PassResult:
 # The block task
 
 
-def _filter_mask(spec: PassSpec, missing_rate: np.ndarray, mean: np.ndarray, dosage: bool) -> np.ndarray:
+def _filter_mask(
+    spec: PassSpec, missing_rate: np.ndarray, mean: np.ndarray, dosage: bool
+) -> np.ndarray:
     mask = np.zeros(missing_rate.shape, dtype=bool)
     f = spec.filters
     if f.max_missing is not None:
@@ -200,7 +203,7 @@ def process_block(source: BlockSource, spec: PassSpec, i: int, out_dir: str | No
     if out_dir is None:
         record["stats"] = stats
         return record
-    group = zarr.open_group(out_dir, mode="r+")
+    group = zarr.open_group(Path(out_dir) / "stats", mode="r+")
     for c, v in stats.items():
         group[c][start:stop] = v
     _write_marker(out_dir, record)
@@ -212,8 +215,6 @@ def _n_nulls(state: Any) -> int:
 
 
 def _write_marker(out_dir: str, record: dict) -> None:
-    from pathlib import Path
-
     top: TopK = record["topk"]
     marker = {
         "block": record["block"],
@@ -256,7 +257,13 @@ def _merge_records(records: list[dict], k: int, n_nulls: int) -> dict:
     }
 
 
-def build_pass(source: BlockSource, spec: PassSpec, blocks: list[int], out_dir: str | None, split_every: int = 8):
+def build_pass(
+    source: BlockSource,
+    spec: PassSpec,
+    blocks: list[int],
+    out_dir: str | None,
+    split_every: int = 8,
+):
     """Dask graph of the block tasks and a tree of merges.
 
     Returns
@@ -302,7 +309,7 @@ def _prepare_out_dir(run: RunFolder, source: BlockSource, spec: PassSpec) -> str
             return str(d)
         shutil.rmtree(d)
     d.mkdir(parents=True, exist_ok=True)
-    group = zarr.open_group(d, mode="w")
+    group = zarr.open_group(d / "stats", mode="w")
     for c in spec.all_columns:
         group.create_array(
             c,
@@ -343,7 +350,11 @@ def run_pass(
     out_dir = _prepare_out_dir(run, source, spec) if run is not None else None
     done = run.done_blocks(spec.name) if run is not None else set()
     todo = [i for i in range(n_blocks) if i not in done]
-    reused = [_record_from_marker(run.marker(spec.name, i), spec.keep) for i in sorted(done)] if done else []
+    reused = (
+        [_record_from_marker(run.marker(spec.name, i), spec.keep) for i in sorted(done)]
+        if done
+        else []
+    )
     graph, block_keys, final = build_pass(source, spec, todo, out_dir)
     if progress is not None:
         progress(len(done), n_blocks)
@@ -357,14 +368,26 @@ def run_pass(
         total=n_blocks,
         want_blocks=out_dir is None,
     )
-    merged = _merge_records([r for r in (results["final"], *reused) if r is not None], spec.keep, _n_nulls(spec.state))
+    merged = _merge_records(
+        [r for r in (results["final"], *reused) if r is not None], spec.keep, _n_nulls(spec.state)
+    )
     stats = None
     if out_dir is None:
         recs = sorted(results["blocks"], key=lambda r: r["start"])
-        stats = {c: np.concatenate([r["stats"][c] for r in recs]) for c in spec.all_columns} if recs else {}
+        stats = (
+            {c: np.concatenate([r["stats"][c] for r in recs]) for c in spec.all_columns}
+            if recs
+            else {}
+        )
     top = merged["topk"]
     if top.values is None and spec.keep_values and top.index.size:
-        top = TopK(top.k, top.index, top.score, fetch_columns(source, top.index, spec.rows, spec.sub_block), top.null_max)
+        top = TopK(
+            top.k,
+            top.index,
+            top.score,
+            fetch_columns(source, top.index, spec.rows, spec.sub_block),
+            top.null_max,
+        )
     return PassResult(
         name=spec.name,
         topk=top,
@@ -403,8 +426,14 @@ def fetch_columns(
     return out
 
 
-def read_stats(run: RunFolder, name: str, columns: tuple[str, ...] | None = None, start: int = 0, stop: int | None = None) -> dict[str, np.ndarray]:
+def read_stats(
+    run: RunFolder,
+    name: str,
+    columns: tuple[str, ...] | None = None,
+    start: int = 0,
+    stop: int | None = None,
+) -> dict[str, np.ndarray]:
     """Statistics of a finished pass, read back from the run folder."""
-    group = zarr.open_group(run.pass_dir(name), mode="r")
+    group = zarr.open_group(run.pass_dir(name) / "stats", mode="r")
     cols = columns or tuple(json.loads((run.pass_dir(name) / "pass.json").read_text())["columns"])
     return {c: np.asarray(group[c][start:stop]) for c in cols}

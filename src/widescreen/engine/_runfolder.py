@@ -5,7 +5,8 @@ Layout::
     RUN/
       manifest.json                 config, dataset fingerprint, versions, state and timings of each pass
       .lock                         held while a process works on the folder (pid, host, start time)
-      passes/NAME/                  Zarr v3 group: one (n_features,) array per statistic, chunked like X
+      passes/NAME/pass.json         the pass's input token and statistic names
+      passes/NAME/stats/            Zarr v3 group: one (n_features,) float64 array per statistic, chunked like X
       passes/NAME/done/BLOCK.json   completion marker of one block: written after its statistics
       ranking.tsv, model.tsv, ...   final tables, written to a temporary name and renamed
 
@@ -69,12 +70,18 @@ class RunLock:
                 fd = os.open(self.path, os.O_CREAT | os.O_EXCL | os.O_WRONLY, 0o644)
             except FileExistsError:
                 holder = self._holder()
-                if holder is not None and holder.get("host") == info["host"] and not _pid_alive(
-                    int(holder.get("pid", -1))
+                if (
+                    holder is not None
+                    and holder.get("host") == info["host"]
+                    and not _pid_alive(int(holder.get("pid", -1)))
                 ):
                     self.path.unlink(missing_ok=True)  # stale: its process was killed
                     continue
-                who = f"pid {holder.get('pid')} on {holder.get('host')}" if holder else "another process"
+                who = (
+                    f"pid {holder.get('pid')} on {holder.get('host')}"
+                    if holder
+                    else "another process"
+                )
                 raise RunFolderError(
                     f"{self.path.parent}: in use by {who}; wait for it to finish "
                     f"(or remove {self.path.name} if that process is gone)"
@@ -126,7 +133,10 @@ class RunFolder:
             raise RunFolderError(f"{self.manifest_path}: unreadable manifest: {exc}") from None
 
     def write_manifest(self, manifest: dict) -> None:
-        atomic_write(self.manifest_path, json.dumps(manifest, indent=2, sort_keys=True, default=_json_default))
+        atomic_write(
+            self.manifest_path,
+            json.dumps(manifest, indent=2, sort_keys=True, default=_json_default),
+        )
 
     def pass_dir(self, name: str) -> Path:
         return self.path / "passes" / name

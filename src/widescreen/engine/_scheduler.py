@@ -44,8 +44,10 @@ class _BlockProgress(Callback):
 
 def _client_for(scheduler: Any):
     """A distributed Client for a client, an address or "processes:N"; None for local schedulers."""
-    if scheduler is None or scheduler in ("sync", "threads") or (
-        isinstance(scheduler, str) and scheduler.startswith("threads:")
+    if (
+        scheduler is None
+        or scheduler in ("sync", "threads")
+        or (isinstance(scheduler, str) and scheduler.startswith("threads:"))
     ):
         return None, False
     try:
@@ -81,7 +83,9 @@ def execute(
     client, owned = _client_for(scheduler)
     if client is not None:
         try:
-            return _execute_distributed(client, graph, keys, block_keys, progress, offset, total, want_blocks)
+            return _execute_distributed(
+                client, graph, keys, block_keys, progress, offset, total, want_blocks
+            )
         finally:
             if owned:
                 client.close()
@@ -112,10 +116,12 @@ class _maybe:
             c.__exit__(*exc)
 
 
-def _execute_distributed(client, graph, keys, block_keys, progress, offset, total, want_blocks) -> dict:
+def _execute_distributed(
+    client, graph, keys, block_keys, progress, offset, total, want_blocks
+) -> dict:
     from distributed import as_completed
 
-    futures = client.get(graph, list(block_keys) + [keys[0]], sync=False)
+    futures = client.get(graph, [*list(block_keys), keys[0]], sync=False)
     block_futs, final_fut = futures[:-1], futures[-1]
     done = offset
     if progress is not None:

@@ -123,7 +123,9 @@ def as_source(X) -> BlockSource:
         return StoreSource(open_dataset(X))
     if hasattr(X, "shape") and hasattr(X, "dtype"):
         return ArraySource(X)
-    raise TypeError(f"cannot screen an object of type {type(X).__name__}; give a store path or an array")
+    raise TypeError(
+        f"cannot screen an object of type {type(X).__name__}; give a store path or an array"
+    )
 
 
 def missing_sentinel(source: BlockSource) -> int | None:

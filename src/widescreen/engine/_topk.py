@@ -83,7 +83,9 @@ def block_topk(
     order = _order(score[cand], idx)[:k]
     cand = cand[order]
     kept = None if values is None else np.array(values[:, cand], dtype=np.float64, order="F")
-    return TopK(k=k, index=idx[order], score=score[cand].astype(np.float64), values=kept, null_max=null_max)
+    return TopK(
+        k=k, index=idx[order], score=score[cand].astype(np.float64), values=kept, null_max=null_max
+    )
 
 
 def merge_topk(a: TopK, b: TopK) -> TopK:

@@ -78,14 +78,20 @@ def prepare_linear(
         y = y[:, None]
     n = y.shape[0]
     parts = [a for a in (covariates, conditioning) if a is not None and np.size(a)]
-    Z = np.hstack([np.asarray(a, dtype=np.float64).reshape(n, -1) for a in parts]) if parts else np.empty((n, 0))
+    Z = (
+        np.hstack([np.asarray(a, dtype=np.float64).reshape(n, -1) for a in parts])
+        if parts
+        else np.empty((n, 0))
+    )
     basis = _orthonormal_basis(Z)
     yr = y - y.mean(axis=0)
     if basis.shape[1]:
         yr = yr - basis @ (basis.T @ yr)
     norms = np.linalg.norm(yr, axis=0)
     if norms[0] <= 1e-12 * max(np.linalg.norm(y[:, 0]), 1.0):
-        raise ValueError("the response has no variation left after removing the intercept and covariates")
+        raise ValueError(
+            "the response has no variation left after removing the intercept and covariates"
+        )
     yr = yr / np.where(norms > 0, norms, 1.0)
     df = n - 1 - basis.shape[1] - 1
     if df < 1:

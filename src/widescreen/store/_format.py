@@ -82,11 +82,17 @@ def default_codec(dtype: str) -> BloscCodec:
     return BloscCodec(cname="lz4", clevel=3, shuffle="shuffle", typesize=dt.itemsize)
 
 
-def default_chunks(n_samples: int, dtype: str) -> tuple[int, int]:
-    """Chunk shape for X: all samples (up to a cap) times as many features as fit the target size."""
+def default_chunks(n_samples: int, dtype: str, n_features: int | None = None) -> tuple[int, int]:
+    """Chunk shape for X: all samples (up to a cap) times as many features as fit the target size.
+
+    When the number of features is known and small, chunks are narrowed so that a pass still has at
+    least about eight blocks to spread over the cores (but never below 256 features).
+    """
     rows = min(max(n_samples, 1), MAX_SAMPLES_PER_CHUNK)
     itemsize = np.dtype(dtype).itemsize
     cols = max(64, TARGET_CHUNK_BYTES // (rows * itemsize))
+    if n_features is not None:
+        cols = min(cols, max(256, n_features // 8))
     cols = int(2 ** np.floor(np.log2(cols)))  # powers of two keep block plans aligned
     return rows, cols
 
@@ -94,7 +100,7 @@ def default_chunks(n_samples: int, dtype: str) -> tuple[int, int]:
 def _check_ids(ids: np.ndarray, what: str, where: str) -> None:
     if ids.size == 0:
         return
-    uniq, first, counts = np.unique(ids, return_index=True, return_counts=True)
+    uniq, _first, counts = np.unique(ids, return_index=True, return_counts=True)
     if np.any(counts > 1):
         dup = uniq[counts > 1][0]
         pos = np.flatnonzero(ids == dup)[:2]
@@ -144,7 +150,9 @@ class DatasetWriter:
         if value_kind not in VALUE_KINDS:
             raise StoreError(f"value kind must be one of {VALUE_KINDS}; got {value_kind!r}")
         if dtype not in DTYPES[value_kind]:
-            raise StoreError(f"a {value_kind} store holds {DTYPES[value_kind]}; got dtype {dtype!r}")
+            raise StoreError(
+                f"a {value_kind} store holds {DTYPES[value_kind]}; got dtype {dtype!r}"
+            )
         self.path = Path(path)
         if self.path.exists():
             if not overwrite:
@@ -157,7 +165,7 @@ class DatasetWriter:
             raise StoreError(f"{self.path}: no samples")
         self.dtype = np.dtype(dtype)
         self.value_kind = value_kind
-        self.chunks = chunks or default_chunks(self.n_samples, dtype)
+        self.chunks = chunks or default_chunks(self.n_samples, dtype, n_features)
         self.source = source
         self._n_written = 0
         self._capacity = n_features if n_features is not None else self.chunks[1]

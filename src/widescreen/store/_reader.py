@@ -40,10 +40,16 @@ class ChunkLayout:
     @classmethod
     def of(cls, ds: Dataset) -> ChunkLayout:
         meta = ds.X.metadata.to_dict()
-        codecs = [c["name"] if isinstance(c, dict) else getattr(c, "name", "") for c in meta["codecs"]]
+        codecs = [
+            c["name"] if isinstance(c, dict) else getattr(c, "name", "") for c in meta["codecs"]
+        ]
         key = meta.get("chunk_key_encoding", {})
         key_name = key.get("name") if isinstance(key, dict) else getattr(key, "name", "")
-        sep = (key.get("configuration", {}) or {}).get("separator", "/") if isinstance(key, dict) else "/"
+        sep = (
+            (key.get("configuration", {}) or {}).get("separator", "/")
+            if isinstance(key, dict)
+            else "/"
+        )
         fast = codecs == ["bytes", "blosc"] and key_name == "default" and sep == "/"
         rows, cols = ds.X.chunks
         return cls(

@@ -1,0 +1,340 @@
+"""The typer command line. Thin: parse, validate, call the workflow, print one clear line on error."""
+
+from __future__ import annotations
+
+import functools
+import sys
+from pathlib import Path
+from typing import Annotated
+
+import typer
+
+from ._progress import ProgressBar
+
+app = typer.Typer(
+    name="widescreen",
+    help="Screen very wide data on disk for features associated with an outcome.",
+    no_args_is_help=True,
+    add_completion=False,
+    pretty_exceptions_enable=False,
+)
+
+QuietOpt = Annotated[
+    bool, typer.Option("--quiet", "-q", help="No progress bar; only results and errors.")
+]
+
+
+def _expected_errors() -> tuple[type[BaseException], ...]:
+    from ..engine._runfolder import RunFolderError
+    from ..store._format import StoreError
+    from ..workflow._outcome import OutcomeError
+
+    return (
+        StoreError,
+        OutcomeError,
+        RunFolderError,
+        ValueError,
+        FileNotFoundError,
+        PermissionError,
+        OSError,
+    )
+
+
+def friendly(fn):
+    """Turn the errors a user can cause into one line on stderr and exit code 1."""
+
+    @functools.wraps(fn)
+    def wrapper(*args, **kwargs):
+        try:
+            return fn(*args, **kwargs)
+        except typer.Exit:
+            raise
+        except KeyboardInterrupt:
+            typer.echo(
+                "\ninterrupted; finished blocks are kept, rerun the same command to resume",
+                err=True,
+            )
+            raise typer.Exit(code=130) from None
+        except _expected_errors() as exc:
+            typer.echo(f"error: {exc}", err=True)
+            raise typer.Exit(code=1) from None
+
+    return wrapper
+
+
+def _scheduler(workers: int | None, scheduler: str | None):
+    if workers is not None and scheduler is not None:
+        raise typer.BadParameter("give --workers or --scheduler, not both")
+    if workers is not None:
+        if workers < 1:
+            raise typer.BadParameter(f"--workers must be at least 1; got {workers}")
+        return f"processes:{workers}"
+    return scheduler
+
+
+def _parse_keep(value: str) -> int | str:
+    if value == "auto":
+        return value
+    try:
+        k = int(value)
+    except ValueError:
+        raise typer.BadParameter(f"must be a positive integer or 'auto'; got {value!r}") from None
+    if k < 1:
+        raise typer.BadParameter(f"must be a positive integer or 'auto'; got {value!r}")
+    return k
+
+
+def _covariates(value: str | None) -> tuple[str, ...]:
+    if not value:
+        return ()
+    return tuple(c.strip() for c in value.split(",") if c.strip())
+
+
+# ------------------------------------------------------------------------------------------------
+# screen
+
+
+@app.command("screen")
+@friendly
+def screen_cmd(
+    store: Annotated[
+        Path, typer.Argument(help="Dataset store (made by `widescreen import` or `simulate`).")
+    ],
+    outcome: Annotated[
+        Path, typer.Option("--outcome", help="Outcome table (TSV, first column sample id).")
+    ],
+    response: Annotated[
+        str, typer.Option("--response", help="Column of the response (survival: the time).")
+    ],
+    out: Annotated[
+        Path, typer.Option("--out", help="Run folder for the results (resumed if it exists).")
+    ],
+    family: Annotated[str, typer.Option("--family", help="Outcome family: linear, ...")] = "linear",
+    covariates: Annotated[
+        str | None, typer.Option("--covariates", help="Comma-separated columns to adjust for.")
+    ] = None,
+    event: Annotated[
+        str | None, typer.Option("--event", help="Survival: column of the event indicator.")
+    ] = None,
+    keep: Annotated[
+        str, typer.Option("--keep", help="Shortlist size: N or 'auto' = floor(n / log n).")
+    ] = "auto",
+    list_top: Annotated[
+        int | None, typer.Option("--list", help="Rows in ranking.tsv (default: the shortlist).")
+    ] = None,
+    max_missing: Annotated[
+        float | None,
+        typer.Option(
+            "--max-missing", help="Exclude features missing in more than this share of samples."
+        ),
+    ] = None,
+    min_maf: Annotated[
+        float | None,
+        typer.Option(
+            "--min-maf",
+            help="Dosage stores: exclude features with minor allele frequency below this.",
+        ),
+    ] = None,
+    workers: Annotated[
+        int | None, typer.Option("--workers", help="Start a local cluster of N worker processes.")
+    ] = None,
+    scheduler: Annotated[
+        str | None, typer.Option("--scheduler", help="Address of an existing Dask scheduler.")
+    ] = None,
+    restart: Annotated[
+        bool, typer.Option("--restart", help="Discard what the run folder holds and start over.")
+    ] = False,
+    quiet: QuietOpt = False,
+) -> None:
+    """Rank every feature by its marginal association with the outcome (SIS) and write the shortlist."""
+    from ..workflow._screen import ScreenConfig, screen
+
+    config = ScreenConfig(
+        response=response,
+        family=family,
+        covariates=_covariates(covariates),
+        event=event,
+        keep=_parse_keep(keep),
+        list_top=list_top,
+        max_missing=max_missing,
+        min_maf=min_maf,
+    )
+    result = screen(
+        store,
+        outcome,
+        config,
+        out,
+        scheduler=_scheduler(workers, scheduler),
+        progress=ProgressBar("screen", quiet),
+        restart=restart,
+    )
+    s = result.pass_result
+    rep = result.problem.joined.report()
+    typer.echo(
+        f"screened {s.n_features} features on {rep['n_analysed']} samples "
+        f"({rep['n_dropped_missing']} dropped for missing values, {rep['n_unknown_ids']} unknown ids); "
+        f"{s.n_filtered} filtered, {s.n_constant} constant; shortlist of {result.index.size} "
+        f"in {out / 'ranking.tsv'}"
+        + (
+            f" [resumed {s.blocks_reused} of {s.blocks_reused + s.blocks_computed} blocks]"
+            if s.blocks_reused
+            else ""
+        )
+    )
+
+
+# ------------------------------------------------------------------------------------------------
+# simulate and demo
+
+
+@app.command("simulate")
+@friendly
+def simulate_cmd(
+    store: Annotated[Path, typer.Argument(help="Path of the new store.")],
+    design: Annotated[
+        str, typer.Option("--design", help="independent, equicorrelated, hidden or dosage.")
+    ] = "independent",
+    samples: Annotated[int, typer.Option("--samples", "-n", help="Number of samples.")] = 200,
+    features: Annotated[int, typer.Option("--features", "-p", help="Number of features.")] = 1000,
+    true: Annotated[
+        int,
+        typer.Option("--true", help="Number of true features (the hidden design fixes its own)."),
+    ] = 8,
+    rho: Annotated[
+        float, typer.Option("--rho", help="Pairwise correlation (equicorrelated, hidden).")
+    ] = 0.5,
+    sigma: Annotated[
+        float, typer.Option("--sigma", help="Noise sd of a continuous outcome.")
+    ] = 1.5,
+    outcome_kind: Annotated[
+        str, typer.Option("--outcome-kind", help="continuous, binary, count or survival.")
+    ] = "continuous",
+    seed: Annotated[int, typer.Option("--seed", help="Random seed.")] = 0,
+    chunk_features: Annotated[
+        int | None, typer.Option("--chunk-features", help="Features per chunk of X.")
+    ] = None,
+    overwrite: Annotated[
+        bool, typer.Option("--overwrite", help="Replace an existing store.")
+    ] = False,
+    quiet: QuietOpt = False,
+) -> None:
+    """Write a simulated store plus STORE.outcome.tsv and STORE.truth.tsv (a published design)."""
+    from ..simulate import SimulationConfig, simulate
+
+    cfg = SimulationConfig(
+        design=design,
+        n_samples=samples,
+        n_features=features,
+        n_true=true,
+        rho=rho,
+        sigma=sigma,
+        outcome=outcome_kind,
+        seed=seed,
+        chunk_features=chunk_features,
+    )
+    sim = simulate(store, cfg, overwrite=overwrite, progress=ProgressBar("simulate", quiet))
+    typer.echo(f"wrote {store} ({samples} x {features}), {sim.outcome_path}, {sim.truth_path}")
+
+
+@app.command("demo")
+@friendly
+def demo_cmd(
+    out: Annotated[Path, typer.Option("--out", help="Folder for the demo's store and run.")] = Path(
+        "widescreen-demo"
+    ),
+    samples: Annotated[int, typer.Option("--samples", "-n", help="Number of samples.")] = 600,
+    features: Annotated[int, typer.Option("--features", "-p", help="Number of features.")] = 50_000,
+    seed: Annotated[int, typer.Option("--seed", help="Random seed.")] = 7,
+    quiet: QuietOpt = False,
+) -> None:
+    """Simulate a study, screen it and print what was found against the truth.
+
+    The scenario: a breeding programme of the fictional 'Saltmarsh reed', 600 plants genotyped at
+    50,000 variant sites (dosages 0/1/2), a quantitative salt-tolerance score, age and batch covariates,
+    and 8 causal variants hidden among the rest.
+    """
+    from ._demo import run_demo
+
+    run_demo(out, samples=samples, features=features, seed=seed, quiet=quiet)
+
+
+# ------------------------------------------------------------------------------------------------
+# import and inspect
+
+
+@app.command("import")
+@friendly
+def import_cmd(
+    src: Annotated[
+        Path, typer.Argument(help="CSV/TSV (optionally .gz), .npy, or VCF (.vcf, .vcf.gz) file.")
+    ],
+    store: Annotated[Path, typer.Argument(help="Path of the new store.")],
+    features_as_rows: Annotated[
+        bool,
+        typer.Option("--features-as-rows", help="CSV/TSV: rows are features, columns samples."),
+    ] = False,
+    dosage: Annotated[
+        bool,
+        typer.Option("--dosage", help="CSV/TSV/.npy: values are dosages 0/1/2 (stored as int8)."),
+    ] = False,
+    dtype: Annotated[
+        str, typer.Option("--dtype", help="float32 or float64 for continuous values.")
+    ] = "float32",
+    id_from: Annotated[
+        str,
+        typer.Option(
+            "--vcf-ids",
+            help="VCF: feature ids from the 'column' (ID) or the 'position' (chrom:pos:ref:alt).",
+        ),
+    ] = "column",
+    overwrite: Annotated[
+        bool, typer.Option("--overwrite", help="Replace an existing store.")
+    ] = False,
+    quiet: QuietOpt = False,
+) -> None:
+    """Convert a matrix file into a dataset store, streaming with bounded memory."""
+    name = src.name.lower()
+    bar = ProgressBar("import", quiet)
+    if name.endswith((".vcf", ".vcf.gz", ".vcf.bgz")):
+        from ..store._ingest_vcf import import_vcf
+
+        ds = import_vcf(src, store, id_from=id_from, overwrite=overwrite, progress=bar)
+    elif name.endswith(".npy"):
+        from ..store._ingest_npy import import_npy
+
+        ds = import_npy(
+            src, store, value_kind="dosage" if dosage else None, overwrite=overwrite, progress=bar
+        )
+    else:
+        from ..store._ingest_text import import_table
+
+        ds = import_table(
+            src,
+            store,
+            features_as_rows=features_as_rows,
+            dtype="int8" if dosage else dtype,
+            value_kind="dosage" if dosage else "continuous",
+            overwrite=overwrite,
+            progress=bar,
+        )
+    typer.echo(f"wrote {store}: {ds.n_samples} samples x {ds.n_features} features ({ds.dtype})")
+
+
+@app.command("inspect")
+@friendly
+def inspect_cmd(
+    store: Annotated[Path, typer.Argument(help="Dataset store.")],
+) -> None:
+    """Print shape, dtype, chunking, codec, size on disk and missing rate of a store."""
+    from ..store._inspect import inspect_dataset
+
+    typer.echo(inspect_dataset(store).format())
+
+
+def main() -> None:
+    """Entry point of the ``widescreen`` command."""
+    app(prog_name="widescreen")
+
+
+if __name__ == "__main__":  # pragma: no cover
+    sys.exit(main())

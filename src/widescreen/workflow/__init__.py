@@ -1,0 +1,23 @@
+"""The workflow: outcome join, screening, thresholds, refits and the iterative passes."""
+
+from ._outcome import JoinedOutcome, OutcomeError, OutcomeTable, join_outcome, read_outcome_table
+from ._problem import Problem, keep_size, load_problem, problem_from_arrays
+from ._screen import ScreenConfig, ScreenResult, screen
+from ._session import RunSession, open_session
+
+__all__ = [
+    "JoinedOutcome",
+    "OutcomeError",
+    "OutcomeTable",
+    "Problem",
+    "RunSession",
+    "ScreenConfig",
+    "ScreenResult",
+    "join_outcome",
+    "keep_size",
+    "load_problem",
+    "open_session",
+    "problem_from_arrays",
+    "read_outcome_table",
+    "screen",
+]

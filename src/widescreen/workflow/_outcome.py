@@ -1,0 +1,198 @@
+"""The outcome table: read it, and join it to the store's samples by sample id.
+
+The table is TSV (or CSV by extension) with a header row; its first column holds sample ids, the others
+the response(s) and covariates. Rows may come in any order. Samples lacking a needed value are dropped and
+counted; ids the store does not know, and store samples the table lacks, are reported.
+"""
+
+from __future__ import annotations
+
+import csv
+import os
+from dataclasses import dataclass, field
+from pathlib import Path
+
+import numpy as np
+
+MISSING_TOKENS = frozenset({"", "NA", "NaN", "nan", "N/A", "."})
+
+
+class OutcomeError(ValueError):
+    """The outcome table or one of its columns cannot be used; the message says where."""
+
+
+@dataclass(frozen=True)
+class OutcomeTable:
+    """The raw text of an outcome table.
+
+    Attributes
+    ----------
+    path : Path
+    ids : ndarray of str, shape (n_rows,)
+    columns : dict of str -> ndarray of str, each of shape (n_rows,)
+    """
+
+    path: Path
+    ids: np.ndarray
+    columns: dict[str, np.ndarray]
+
+    def column(self, name: str) -> np.ndarray:
+        if name not in self.columns:
+            known = ", ".join(self.columns) or "(none)"
+            raise OutcomeError(f"{self.path}: no column {name!r}; the table has: {known}")
+        return self.columns[name]
+
+
+def read_outcome_table(path: str | os.PathLike) -> OutcomeTable:
+    """Read an outcome table; errors name the file and line."""
+    path = Path(path)
+    if not path.is_file():
+        raise OutcomeError(f"{path}: no such outcome table")
+    delimiter = "," if path.suffix.lower() == ".csv" else "\t"
+    with open(path, newline="") as f:
+        rows = list(csv.reader(f, delimiter=delimiter))
+    rows = [r for r in rows if r and any(c.strip() for c in r)]
+    if not rows:
+        raise OutcomeError(f"{path}: empty file")
+    header = [h.strip() for h in rows[0]]
+    if len(header) < 2:
+        raise OutcomeError(
+            f"{path}: line 1: need a sample id column and at least one outcome column "
+            f"(is the file {'comma' if delimiter == ',' else 'tab'}-separated?)"
+        )
+    dup = [h for h in header if header.count(h) > 1]
+    if dup:
+        raise OutcomeError(f"{path}: line 1: column {dup[0]!r} appears twice")
+    body = rows[1:]
+    if not body:
+        raise OutcomeError(f"{path}: header only, no samples")
+    for i, r in enumerate(body, start=2):
+        if len(r) != len(header):
+            raise OutcomeError(f"{path}: line {i}: {len(r)} fields, the header has {len(header)}")
+    cells = np.array([[c.strip() for c in r] for r in body], dtype=str)
+    ids = cells[:, 0]
+    uniq, _first, counts = np.unique(ids, return_index=True, return_counts=True)
+    if (counts > 1).any():
+        d = uniq[counts > 1][0]
+        lines = np.flatnonzero(ids == d)[:2] + 2
+        raise OutcomeError(
+            f"{path}: sample id {d!r} appears twice (lines {lines[0]} and {lines[1]})"
+        )
+    return OutcomeTable(
+        path=path, ids=ids, columns={h: cells[:, j] for j, h in enumerate(header) if j}
+    )
+
+
+def is_missing(values: np.ndarray) -> np.ndarray:
+    return np.isin(values, list(MISSING_TOKENS))
+
+
+def parse_numeric(
+    table: OutcomeTable, name: str, values: np.ndarray | None = None, lines=None
+) -> np.ndarray:
+    """A column as float64 (missing tokens -> NaN); a clear error at the first non-numeric cell."""
+    raw = table.column(name) if values is None else values
+    out = np.full(raw.shape, np.nan)
+    ok = ~is_missing(raw)
+    try:
+        out[ok] = raw[ok].astype(np.float64)
+    except ValueError:
+        for i in np.flatnonzero(ok):
+            try:
+                float(raw[i])
+            except ValueError:
+                line = lines[i] if lines is not None else i + 2
+                raise OutcomeError(
+                    f"{table.path}: column {name!r}, line {line}: {raw[i]!r} is not a number"
+                ) from None
+    return out
+
+
+@dataclass(frozen=True)
+class JoinedOutcome:
+    """The outcome table aligned with the store's samples.
+
+    Attributes
+    ----------
+    rows : ndarray of int64, shape (n,)
+        Store row of each analysed sample (the order of every array below).
+    sample_ids : ndarray of str, shape (n,)
+    values : dict of str -> ndarray of str, shape (n,)
+        The needed columns' text, for the family and the covariate parser.
+    lines : ndarray of int64, shape (n,)
+        Line of each analysed sample in the table (for error messages).
+    n_table, n_store : int
+    n_dropped : int
+        Samples in both, dropped for a missing needed value.
+    unknown_ids : tuple of str
+        Table ids not in the store (all of them).
+    n_store_only : int
+        Store samples absent from the table.
+    """
+
+    table: OutcomeTable
+    rows: np.ndarray
+    sample_ids: np.ndarray
+    values: dict[str, np.ndarray]
+    lines: np.ndarray
+    n_table: int
+    n_store: int
+    n_dropped: int
+    unknown_ids: tuple[str, ...] = field(default=())
+    n_store_only: int = 0
+
+    @property
+    def n(self) -> int:
+        return int(self.rows.size)
+
+    def numeric(self, name: str) -> np.ndarray:
+        return parse_numeric(self.table, name, self.values[name], self.lines)
+
+    def report(self) -> dict:
+        return {
+            "n_table": self.n_table,
+            "n_store": self.n_store,
+            "n_analysed": self.n,
+            "n_dropped_missing": self.n_dropped,
+            "n_unknown_ids": len(self.unknown_ids),
+            "unknown_ids_first": list(self.unknown_ids[:5]),
+            "n_store_without_outcome": self.n_store_only,
+        }
+
+
+def join_outcome(store_ids: np.ndarray, table: OutcomeTable, needed: list[str]) -> JoinedOutcome:
+    """Join the table to the store's sample ids, keeping samples with every needed column present."""
+    for name in needed:
+        table.column(name)
+    store_ids = np.asarray(store_ids, dtype=str)
+    order = np.argsort(store_ids)
+    pos = np.searchsorted(store_ids[order], table.ids)
+    pos = np.minimum(pos, store_ids.size - 1)
+    found = store_ids[order][pos] == table.ids
+    store_row = np.where(found, order[pos], -1)
+    present = np.ones(table.ids.size, dtype=bool)
+    for name in needed:
+        present &= ~is_missing(table.columns[name])
+    keep = found & present
+    if not keep.any():
+        if not found.any():
+            raise OutcomeError(
+                f"{table.path}: none of its {table.ids.size} sample ids are in the store "
+                f"(first table id {table.ids[0]!r}, first store id {store_ids[0]!r})"
+            )
+        raise OutcomeError(f"{table.path}: every matched sample lacks one of {needed}")
+    # Analyse samples in store order: reads stay sequential and results do not depend on table order.
+    idx = np.flatnonzero(keep)
+    idx = idx[np.argsort(store_row[idx], kind="stable")]
+    return JoinedOutcome(
+        table=table,
+        rows=store_row[idx].astype(np.int64),
+        sample_ids=table.ids[idx],
+        values={name: table.columns[name][idx] for name in needed},
+        lines=idx + 2,
+        n_table=int(table.ids.size),
+        n_store=int(store_ids.size),
+        n_dropped=int((found & ~present).sum()),
+        unknown_ids=tuple(table.ids[~found].tolist()),
+        n_store_only=int(store_ids.size - found.sum()),
+    )

@@ -1,0 +1,213 @@
+"""Sure independence screening: one pass, a shortlist, a ranking table in a run folder."""
+
+from __future__ import annotations
+
+import os
+import time
+from dataclasses import asdict, dataclass, field
+
+import numpy as np
+
+from ..engine._pass import FeatureFilter, PassResult, PassSpec, read_stats, run_pass
+from ..engine._runfolder import RunFolder
+from ..report._tables import tsv
+from ._problem import Problem, keep_size, load_problem
+from ._session import open_session
+
+
+@dataclass(frozen=True)
+class ScreenConfig:
+    """Configuration of a screening run, recorded in the manifest.
+
+    Attributes
+    ----------
+    response : str
+        Outcome-table column of the response (for survival: the time).
+    family : str
+    covariates : tuple of str
+        Outcome-table columns adjusted for.
+    event : str, optional
+        Survival: the event indicator column.
+    keep : int or "auto"
+        Shortlist size; "auto" = floor(n / log n).
+    list_top : int, optional
+        Rows of ranking.tsv (default: the shortlist).
+    max_missing, min_maf : float, optional
+        Per-feature filters applied in the pass.
+    sub_block : int
+        Features prepared at once inside a block (bounds float64 working memory per thread).
+    """
+
+    response: str
+    family: str = "linear"
+    covariates: tuple[str, ...] = ()
+    event: str | None = None
+    keep: int | str = "auto"
+    list_top: int | None = None
+    max_missing: float | None = None
+    min_maf: float | None = None
+    sub_block: int = 1024
+
+    def to_dict(self) -> dict:
+        d = asdict(self)
+        d["covariates"] = list(self.covariates)
+        return d
+
+    @property
+    def filters(self) -> FeatureFilter:
+        return FeatureFilter(max_missing=self.max_missing, min_maf=self.min_maf)
+
+
+@dataclass
+class ScreenResult:
+    """What a screen found.
+
+    Attributes
+    ----------
+    index : ndarray of int, shape (k,)
+        Store indices of the shortlisted features, strongest first.
+    feature_ids : ndarray of str
+    score : ndarray of float
+    values : ndarray of shape (n, k)
+        Imputed, centred values of the shortlist (for a refit without a second read).
+    pass_result : PassResult
+    problem : Problem
+    run : RunFolder or None
+    """
+
+    index: np.ndarray
+    feature_ids: np.ndarray
+    score: np.ndarray
+    values: np.ndarray | None
+    pass_result: PassResult
+    problem: Problem
+    run: RunFolder | None
+    extra: dict = field(default_factory=dict)
+
+
+def dataset_record(problem: Problem) -> dict:
+    ds = problem.source.dataset
+    return {"path": str(ds.path), "fingerprint": problem.source.token(), "shape": list(ds.shape)}
+
+
+def screen_spec(
+    problem: Problem, config: ScreenConfig, keep: int, name: str = "screen", **prepare
+) -> PassSpec:
+    fam = problem.family
+    state = fam.prepare(problem.response, problem.covariates, **prepare)
+    return PassSpec(
+        name=name,
+        kernel=fam.kernel,
+        state=state,
+        columns=fam.columns,
+        keep=keep,
+        rows=problem.rows,
+        filters=config.filters,
+        sub_block=config.sub_block,
+    )
+
+
+def ranking_columns(
+    problem: Problem,
+    run: RunFolder | None,
+    result: PassResult,
+    name: str,
+    index: np.ndarray,
+    score: np.ndarray,
+) -> dict[str, np.ndarray]:
+    """The ranking table's columns for the given features (strongest first)."""
+    fam = problem.family
+    cols: dict[str, np.ndarray] = {
+        "feature": problem.feature_ids(index),
+        "rank": np.arange(1, index.size + 1),
+        "score": score,
+    }
+    if run is not None:
+        stats = read_stats_at(run, name, index)
+    else:
+        stats = {c: v[index] for c, v in result.stats.items()}
+    for c in fam.columns:
+        if c != "score":
+            cols[c] = stats[c]
+    cols["missing_rate"] = stats["missing_rate"]
+    if problem.source.value_kind == "dosage":
+        cols["allele_freq"] = stats["mean"] / 2.0
+    ds = getattr(problem.source, "dataset", None)
+    ann = ds.annotations() if ds is not None else None
+    if ann is not None:
+        cols["chrom"] = ann["chrom"][index]
+        cols["pos"] = ann["pos"][index]
+    cols["index"] = index
+    return cols
+
+
+def read_stats_at(run: RunFolder, name: str, index: np.ndarray) -> dict[str, np.ndarray]:
+    import zarr
+
+    group = zarr.open_group(run.pass_dir(name) / "stats", mode="r")
+    order = np.argsort(index)
+    out = {}
+    for c in group.array_keys():
+        vals = (
+            np.asarray(group[c].get_coordinate_selection(index[order]))
+            if index.size
+            else np.empty(0)
+        )
+        back = np.empty_like(vals)
+        back[order] = vals
+        out[c] = back
+    return out
+
+
+def screen(
+    store: str | os.PathLike,
+    outcome: str | os.PathLike,
+    config: ScreenConfig,
+    out: str | os.PathLike,
+    *,
+    scheduler=None,
+    progress=None,
+    restart: bool = False,
+) -> ScreenResult:
+    """Screen every feature of ``store`` for association with the outcome; write the run folder.
+
+    Writes ``manifest.json``, ``ranking.tsv`` (the shortlist, or ``list_top`` rows, in rank order) and
+    the statistics of every feature under ``passes/screen/``.
+    """
+    t0 = time.perf_counter()
+    problem = load_problem(
+        store,
+        outcome,
+        response=config.response,
+        family=config.family,
+        covariates=config.covariates,
+        event=config.event,
+    )
+    keep = keep_size(config.keep, problem.n, problem.source.n_features)
+    listed = max(keep, config.list_top or 0)
+    with open_session(
+        out, "screen", config.to_dict(), dataset_record(problem), restart=restart
+    ) as session:
+        session.manifest["samples"] = problem.joined.report()
+        if problem.response.mapping:
+            session.manifest["response_coding"] = problem.response.mapping
+        session.manifest["shortlist_size"] = keep
+        spec = screen_spec(problem, config, listed)
+        result = run_pass(problem.source, spec, session.run, scheduler=scheduler, progress=progress)
+        session.record_pass("screen", result.summary())
+        top = result.topk
+        cols = ranking_columns(problem, session.run, result, "screen", top.index, top.score)
+        session.run.write_table("ranking.tsv", tsv(cols))
+        session.finish(seconds_total=round(time.perf_counter() - t0, 3))
+        return ScreenResult(
+            index=top.index[:keep],
+            feature_ids=cols["feature"][:keep],
+            score=top.score[:keep],
+            values=None if top.values is None else top.values[:, :keep],
+            pass_result=result,
+            problem=problem,
+            run=session.run,
+        )
+
+
+__all__ = ["ScreenConfig", "ScreenResult", "read_stats", "screen"]
