@@ -27,7 +27,7 @@ QuietOpt = Annotated[
 def _expected_errors() -> tuple[type[BaseException], ...]:
     from ..engine._runfolder import RunFolderError
     from ..store._format import StoreError
-    from ..workflow._outcome import OutcomeError
+    from ..store._outcome import OutcomeError
 
     return (
         StoreError,

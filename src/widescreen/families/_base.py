@@ -12,7 +12,7 @@ from typing import Any, ClassVar
 
 import numpy as np
 
-from ..workflow._outcome import JoinedOutcome, OutcomeError
+from ..store._outcome import JoinedOutcome, OutcomeError
 
 
 @dataclass(frozen=True)

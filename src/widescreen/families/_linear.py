@@ -5,7 +5,7 @@ from __future__ import annotations
 import numpy as np
 
 from ..kernels._linear import linear_statistics, prepare_linear
-from ..workflow._outcome import JoinedOutcome
+from ..store._outcome import JoinedOutcome
 from ._base import Family, Response, numeric_response
 
 

@@ -11,6 +11,13 @@ from ._format import (
     default_codec,
     open_dataset,
 )
+from ._outcome import (
+    JoinedOutcome,
+    OutcomeError,
+    OutcomeTable,
+    join_outcome,
+    read_outcome_table,
+)
 from ._reader import Block, ChunkError, ChunkLayout, prepare_block, read_block
 
 __all__ = [
@@ -22,10 +29,15 @@ __all__ = [
     "Dataset",
     "DatasetWriter",
     "FormatAttributes",
+    "JoinedOutcome",
+    "OutcomeError",
+    "OutcomeTable",
     "StoreError",
     "default_chunks",
     "default_codec",
+    "join_outcome",
     "open_dataset",
     "prepare_block",
     "read_block",
+    "read_outcome_table",
 ]

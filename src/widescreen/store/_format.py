@@ -102,7 +102,7 @@ def _check_ids(ids: np.ndarray, what: str, where: str) -> None:
         return
     uniq, _first, counts = np.unique(ids, return_index=True, return_counts=True)
     if np.any(counts > 1):
-        dup = uniq[counts > 1][0]
+        dup = str(uniq[counts > 1][0])
         pos = np.flatnonzero(ids == dup)[:2]
         raise StoreError(
             f"{where}: duplicate {what} id {dup!r} at positions {pos[0] + 1} and {pos[1] + 1}"

@@ -1,6 +1,12 @@
 """The workflow: outcome join, screening, thresholds, refits and the iterative passes."""
 
-from ._outcome import JoinedOutcome, OutcomeError, OutcomeTable, join_outcome, read_outcome_table
+from ..store._outcome import (
+    JoinedOutcome,
+    OutcomeError,
+    OutcomeTable,
+    join_outcome,
+    read_outcome_table,
+)
 from ._problem import Problem, keep_size, load_problem, problem_from_arrays
 from ._screen import ScreenConfig, ScreenResult, screen
 from ._session import RunSession, open_session

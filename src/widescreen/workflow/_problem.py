@@ -10,7 +10,7 @@ import numpy as np
 
 from ..engine._source import BlockSource, as_source
 from ..families import Family, Response, get_family
-from ._outcome import JoinedOutcome, OutcomeError, join_outcome, read_outcome_table
+from ..store._outcome import JoinedOutcome, OutcomeError, join_outcome, read_outcome_table
 
 
 def keep_size(keep: int | str, n: int, n_features: int | None = None) -> int:
@@ -112,7 +112,7 @@ def load_problem(
 
 def problem_from_arrays(X, y, family: str | Family = "linear", covariates=None) -> Problem:
     """A problem over an in-memory array (the scikit-learn estimators' route); y aligned with X's rows."""
-    from ._outcome import OutcomeTable
+    from ..store._outcome import OutcomeTable
 
     source = as_source(X)
     fam = get_family(family) if isinstance(family, str) else family

@@ -73,7 +73,7 @@ def read_outcome_table(path: str | os.PathLike) -> OutcomeTable:
     ids = cells[:, 0]
     uniq, _first, counts = np.unique(ids, return_index=True, return_counts=True)
     if (counts > 1).any():
-        d = uniq[counts > 1][0]
+        d = str(uniq[counts > 1][0])
         lines = np.flatnonzero(ids == d)[:2] + 2
         raise OutcomeError(
             f"{path}: sample id {d!r} appears twice (lines {lines[0]} and {lines[1]})"
@@ -103,7 +103,7 @@ def parse_numeric(
             except ValueError:
                 line = lines[i] if lines is not None else i + 2
                 raise OutcomeError(
-                    f"{table.path}: column {name!r}, line {line}: {raw[i]!r} is not a number"
+                    f"{table.path}: column {name!r}, line {line}: {str(raw[i])!r} is not a number"
                 ) from None
     return out
 

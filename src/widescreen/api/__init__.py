@@ -1,0 +1,5 @@
+"""scikit-learn-compatible estimators over arrays, Dask arrays and dataset stores."""
+
+from ._selector import ScreeningSelector
+
+__all__ = ["ScreeningSelector"]

@@ -1,0 +1,36 @@
+"""Shared fixtures: small simulated stores and outcome tables."""
+
+from __future__ import annotations
+
+import numpy as np
+import pytest
+
+from widescreen.store import DatasetWriter
+
+
+def write_store(path, X, *, chunk_features=None, sample_ids=None, feature_ids=None):
+    """Write an array to a store (int8 -> dosage, float -> continuous)."""
+    X = np.asarray(X)
+    n, p = X.shape
+    kind, dtype = ("dosage", "int8") if X.dtype == np.int8 else ("continuous", X.dtype.name)
+    sample_ids = sample_ids if sample_ids is not None else [f"s{i}" for i in range(n)]
+    feature_ids = feature_ids if feature_ids is not None else [f"f{j}" for j in range(p)]
+    chunks = (n, chunk_features) if chunk_features else None
+    w = DatasetWriter(path, sample_ids, kind, dtype, n_features=p, chunks=chunks)
+    w.append(X, feature_ids)
+    return w.finalize()
+
+
+def write_outcome(path, ids, columns: dict, order=None):
+    names = list(columns)
+    idx = range(len(ids)) if order is None else order
+    lines = ["\t".join(["sample", *names])]
+    for i in idx:
+        lines.append("\t".join([ids[i], *[str(columns[c][i]) for c in names]]))
+    path.write_text("\n".join(lines) + "\n")
+    return path
+
+
+@pytest.fixture
+def rng():
+    return np.random.default_rng(12345)

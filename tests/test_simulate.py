@@ -1,0 +1,83 @@
+"""Simulated designs reproduce the published constructions (CHECKS.md)."""
+
+from __future__ import annotations
+
+import numpy as np
+import pytest
+
+from widescreen.report import read_tsv
+from widescreen.simulate import SimulationConfig, simulate
+
+
+def _load(sim):
+    X = sim.dataset.X[:].astype(np.float64)
+    table = read_tsv(sim.outcome_path)
+    pos = {s: i for i, s in enumerate(table["sample"])}
+    order = [pos[s] for s in sim.dataset.sample_ids()]
+    return X, {k: v[order] for k, v in table.items()}
+
+
+def test_hidden_design_correlations(tmp_path):
+    # Fan & Lv 2008, Section 4.2.2: cov(y, x4) = 0; [derived, CHECKS.md] corr(y, x1) = 0.40291 and
+    # corr(y, x5) = 0.1591 at rho = 0.5, sigma = 1.
+    cfg = SimulationConfig(design="hidden", n_samples=40_000, n_features=8, rho=0.5, seed=3)
+    sim = simulate(tmp_path / "h.zarr", cfg)
+    X, t = _load(sim)
+    y = t["y"].astype(float)
+    r = [np.corrcoef(X[:, j], y)[0, 1] for j in sim.true_index]
+    se = 1.0 / np.sqrt(cfg.n_samples)  # Monte Carlo error of a sample correlation
+    assert r[0] == pytest.approx(0.40291, abs=4 * se)
+    assert r[3] == pytest.approx(0.0, abs=4 * se)
+    assert r[4] == pytest.approx(0.1591, abs=4 * se)
+    noise = [j for j in range(8) if j not in sim.true_index]
+    # every noise pair has correlation rho, x4 has sqrt(rho) with the others
+    assert np.corrcoef(X[:, noise[0]], X[:, noise[1]])[0, 1] == pytest.approx(0.5, abs=4 * se)
+    assert np.corrcoef(X[:, sim.true_index[3]], X[:, noise[0]])[0, 1] == pytest.approx(
+        np.sqrt(0.5), abs=4 * se
+    )
+
+
+def test_hidden_binary_version_cancels(tmp_path):
+    # Fan, Samworth & Wu 2009 (from memory): beta = (4, 4, 4, -6 sqrt 2) makes x4 marginally invisible
+    # because 3 * 4 * sqrt(0.5) - 6 sqrt(2) = 0.
+    sim = simulate(
+        tmp_path / "b.zarr",
+        SimulationConfig(design="hidden", outcome="binary", n_samples=50, n_features=10),
+    )
+    np.testing.assert_allclose(sim.true_coef, [4, 4, 4, -6 * np.sqrt(2)])
+    assert 3 * 4 * np.sqrt(0.5) + sim.true_coef[3] == pytest.approx(0.0, abs=1e-12)
+
+
+def test_independent_design_coefficients(tmp_path):
+    # Fan & Lv 2008 simulation I (from memory): |beta_j| = a + |Z| >= a = 4 log n / sqrt n.
+    n = 200
+    sim = simulate(
+        tmp_path / "i.zarr", SimulationConfig(n_samples=n, n_features=1000, n_true=8, seed=1)
+    )
+    a = 4 * np.log(n) / np.sqrt(n)
+    assert (np.abs(sim.true_coef) >= a).all()
+    assert sim.true_index.size == 8
+
+
+@pytest.mark.parametrize("kind", ["binary", "count", "survival"])
+def test_outcome_kinds(tmp_path, kind):
+    sim = simulate(
+        tmp_path / "k.zarr", SimulationConfig(n_samples=100, n_features=50, n_true=3, outcome=kind)
+    )
+    _, t = _load(sim)
+    if kind == "binary":
+        assert set(t["y"]) <= {"0", "1"}
+    elif kind == "count":
+        assert (t["y"].astype(float) >= 0).all()
+    else:
+        assert (t["time"].astype(float) > 0).all() and set(t["event"]) <= {"0", "1"}
+
+
+def test_dosage_design_values(tmp_path):
+    sim = simulate(
+        tmp_path / "d.zarr",
+        SimulationConfig(design="dosage", n_samples=80, n_features=300, n_true=3),
+    )
+    X = sim.dataset.X[:]
+    assert X.dtype == np.int8
+    assert set(np.unique(X)) <= {-128, 0, 1, 2}
