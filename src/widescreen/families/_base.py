@@ -82,6 +82,12 @@ class Family(ABC):
     ) -> Any:
         """The kernel's response state for one pass."""
 
+    def refit_response(self, response: Response) -> np.ndarray:
+        """The response as `widescreen.fit.fit_path` takes it for this family's loss."""
+        if response.event is not None:
+            return np.column_stack([response.y, response.event])  # Cox: (time, event)
+        return response.y
+
     @staticmethod
     @abstractmethod
     def kernel(block, state) -> dict[str, np.ndarray]:
