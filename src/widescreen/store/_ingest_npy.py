@@ -24,8 +24,8 @@ from pathlib import Path
 
 import numpy as np
 
-from ._format import MAX_SAMPLES_PER_CHUNK, MISSING_INT8, Dataset, DatasetWriter, default_chunks
-from ._ingest_text import IngestError, check_unique, read_columns
+from ._format import MISSING_INT8, Dataset, DatasetWriter
+from ._ingest_text import IngestError, check_unique, chunk_shape, read_columns
 
 #: Bytes of X read per group of feature columns.
 MEMORY_BUDGET = 128 * 2**20
@@ -93,8 +93,8 @@ def _convert(block: np.ndarray, value_kind: str, out_dtype: str, src: str, j0: i
     if not ok.all():
         i, j = np.argwhere(~ok)[0]
         raise IngestError(
-            f"{src}: row {i + 1} (sample {sid[i]!r}), column {j0 + j + 1} "
-            f"(feature {fid[j0 + j]!r}): value {block[i, j]} is not a dosage "
+            f"{src}: row {i + 1} (sample {str(sid[i])!r}), column {j0 + j + 1} "
+            f"(feature {str(fid[j0 + j])!r}): value {block[i, j]} is not a dosage "
             f"(0, 1, 2, or {'NaN' if block.dtype.kind == 'f' else MISSING_INT8} for missing)"
         )
     out = np.where(miss, MISSING_INT8, block).astype(np.int8)
@@ -158,9 +158,7 @@ def import_npy(
     sid = read_ids(sample_ids, n, "sample", "s")
     fid = read_ids(feature_ids, p, "feature", "f")
 
-    chunks = default_chunks(n, out_dtype)
-    if chunk_features is not None:
-        chunks = (min(n, MAX_SAMPLES_PER_CHUNK), int(chunk_features))
+    chunks = chunk_shape(n, out_dtype, chunk_features, p)
     width = chunks[1]
     # Read several chunks' worth of columns per group when they fit: fewer, longer reads.
     group = max(width, (MEMORY_BUDGET // max(n * src_dtype.itemsize, 1)) // width * width)

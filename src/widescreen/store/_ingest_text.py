@@ -494,7 +494,7 @@ class _SampleRows:
         if self.n_values != n * p:  # guarded by the row checks; a mismatch is a bug
             raise IngestError(f"{name}: parsed {self.n_values} values for {n} x {p}")
         self.spill.flush()
-        chunks = _chunks(n, dtype, chunk_features)
+        chunks = chunk_shape(n, dtype, chunk_features, p)
         width = chunks[1]
         group = max(width, (MEMORY_BUDGET // (n * self.dtype.itemsize)) // width * width)
         fd = self.spill.fileno()
@@ -538,7 +538,7 @@ class _FeatureRows:
     def on_header(self, header: np.ndarray) -> None:
         store, name, value_kind, dtype, chunk_features, overwrite = self.args
         self.n = header.size
-        chunks = _chunks(self.n, dtype, chunk_features)
+        chunks = chunk_shape(self.n, dtype, chunk_features)
         self.width = chunks[1]
         self.writer = DatasetWriter(
             store, header, value_kind, dtype, chunks=chunks, source=name, overwrite=overwrite
@@ -585,9 +585,11 @@ class _FeatureRows:
             self.writer.abort()
 
 
-def _chunks(n: int, dtype: str, chunk_features: int | None) -> tuple[int, int]:
+def chunk_shape(
+    n: int, dtype: str, chunk_features: int | None, n_features: int | None = None
+) -> tuple[int, int]:
     if chunk_features is None:
-        return default_chunks(n, dtype)
+        return default_chunks(n, dtype, n_features)
     if int(chunk_features) < 1:
         raise IngestError(f"chunk_features must be a positive integer; got {chunk_features!r}")
     return (min(n, MAX_SAMPLES_PER_CHUNK), int(chunk_features))

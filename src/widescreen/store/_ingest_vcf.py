@@ -35,8 +35,8 @@ from collections.abc import Callable
 
 import numpy as np
 
-from ._format import MAX_SAMPLES_PER_CHUNK, MISSING_INT8, Dataset, DatasetWriter, default_chunks
-from ._ingest_text import IngestError, Source, check_unique
+from ._format import MISSING_INT8, Dataset, DatasetWriter
+from ._ingest_text import IngestError, Source, check_unique, chunk_shape
 
 #: Bytes of VCF text parsed per batch.
 BATCH_BYTES = 4 * 2**20
@@ -331,9 +331,7 @@ def import_vcf(
     try:
         samples, head, n_header = _read_header(source, name)
         parser = _Parser(name, samples, id_from, multiallelic)
-        chunks = default_chunks(samples.size, "int8")
-        if chunk_features is not None:
-            chunks = (min(samples.size, MAX_SAMPLES_PER_CHUNK), int(chunk_features))
+        chunks = chunk_shape(samples.size, "int8", chunk_features)
         all_ids, all_lines = [], []
         line = n_header + 1
         with DatasetWriter(
