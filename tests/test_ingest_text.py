@@ -260,3 +260,20 @@ def test_failure_after_chunks_were_written_leaves_no_store(tmp_path, matrix, mon
     with pytest.raises(IngestError, match="'bad' is not a number"):
         import_table(src, tmp_path / "s", features_as_rows=True, chunk_features=4)
     assert_no_store(tmp_path / "s")
+
+
+def test_number_forms_match_python_float(tmp_path, rng):
+    x = rng.standard_normal(300) * 10.0 ** rng.integers(-12, 12, 300)
+    tokens = (
+        [repr(float(v)) for v in x] + [f"{v:.4f}" for v in x[:50]] + [f"{v:.15g}" for v in x[:50]]
+    )
+    tokens += ["-0", "+.5", "5.", "007", "-1e3", "1E-2", "inf", "-Infinity", " 3.5", "1_000"]
+    tokens += ["123456789012345", "1234567890123456", "0.000000000000001", "9007199254740993"]
+    src = tmp_path / "x.csv"
+    src.write_text(
+        "id," + ",".join(f"c{j}" for j in range(len(tokens))) + "\nr," + ",".join(tokens) + "\n"
+    )
+    ds = import_table(src, tmp_path / "s", dtype="float64")
+    # reference: Python's float() (correctly rounded decimal -> binary conversion)
+    np.testing.assert_array_equal(ds.X[0], [float(t) for t in tokens])
+    assert np.signbit(ds.X[0, tokens.index("-0")])

@@ -65,6 +65,8 @@ MEMORY_BUDGET = 128 * 2**20
 #: Numeric cells longer than this are parsed one by one (keeps the byte matrices small).
 LONG_CELL = 32
 _SLICE = 2**18  # cells converted per numpy call
+_PLAIN_WIDTH = 17  # sign, 15 digits and a point
+_POW10 = 10.0 ** np.arange(16)
 _NL, _CR, _QUOTE = 10, 13, 34
 
 Progress = Callable[[int, int], None] | None
@@ -284,7 +286,74 @@ def decode_cells(buf: np.ndarray, start: np.ndarray, stop: np.ndarray) -> np.nda
 
 
 def parse_numbers(buf: np.ndarray, start: np.ndarray, stop: np.ndarray) -> tuple[np.ndarray, int]:
-    """Numeric cells as float64 (missing tokens -> NaN) and the index of the first bad cell, or -1."""
+    """Numeric cells as float64 (missing tokens -> NaN) and the index of the first bad cell, or -1.
+
+    Plain decimals (``-12.5``, at most 15 digits) are converted by `_plain_decimals`; every other
+    cell (exponents, ``inf``, missing tokens, bad text) goes through numpy's string cast.
+    """
+    out = np.empty(start.size, np.float64)
+    for s0 in range(0, start.size, _SLICE):
+        sl = slice(s0, s0 + _SLICE)
+        out[sl], other = _plain_decimals(buf, start[sl], stop[sl] - start[sl])
+        idx = s0 + np.flatnonzero(other)
+        if idx.size:
+            out[idx], bad = _parse_general(buf, start[idx], stop[idx])
+            if bad >= 0:
+                return out, int(idx[bad])
+    return out, -1
+
+
+def _plain_decimals(
+    buf: np.ndarray, start: np.ndarray, length: np.ndarray
+) -> tuple[np.ndarray, np.ndarray]:
+    """Convert cells of the form ``[+-]digits[.digits]`` (1 to 15 digits) without Python code.
+
+    The digits are accumulated column by column into an exact int64 mantissa m; the value is
+    m / 10**f for f digits after the point. Both are exact doubles (m < 2**53, f <= 15), so the one
+    division rounds correctly: the result is the same double a decimal-to-binary conversion gives.
+
+    Returns the values and a mask of the cells not of that form (left for `_parse_general`).
+    """
+    k = start.size
+    width = int(min(length.max(initial=0), _PLAIN_WIDTH))
+    mant = np.zeros(k, np.float64)  # integers below 2**53 are exact in a double
+    step = np.empty(k, np.float64)
+    n_digits = np.zeros(k, np.int8)
+    n_frac = np.zeros(k, np.int8)
+    seen_dot = np.zeros(k, bool)
+    other = (length == 0) | (length > _PLAIN_WIDTH)
+    first = buf[start]
+    neg = first == ord("-")
+    signed = neg | (first == ord("+"))
+    pos = start.copy()
+    for j in range(width):  # one pass per character position, over all cells at once
+        live = length > j
+        c = buf.take(pos, mode="clip") if j else first
+        digit = (c - np.uint8(ord("0"))) <= 9  # uint8 wraps below '0'
+        digit &= live
+        dot = c == ord(".")
+        dot &= live
+        np.multiply(mant, 10.0, out=step)
+        step += c
+        step -= ord("0")
+        np.copyto(mant, step, where=digit)
+        n_digits += digit
+        n_frac += digit & seen_dot
+        other |= dot & seen_dot  # a second point
+        seen_dot |= dot
+        stray = live & ~(digit | dot)
+        if j == 0:
+            stray &= ~signed
+        other |= stray
+        pos += 1
+    other |= (n_digits == 0) | (n_digits > 15)
+    vals = mant / _POW10[np.minimum(n_frac, 15)]
+    np.negative(vals, out=vals, where=neg)
+    return vals, other
+
+
+def _parse_general(buf: np.ndarray, start: np.ndarray, stop: np.ndarray) -> tuple[np.ndarray, int]:
+    """Any cell through numpy's string-to-float cast (Python's float syntax); missing -> NaN."""
     k = start.size
     out = np.empty(k, np.float64)
     length = stop - start

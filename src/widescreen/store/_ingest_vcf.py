@@ -45,6 +45,13 @@ MULTIALLELIC = ("split", "nonref", "skip")
 FIXED = ("#CHROM", "POS", "ID", "REF", "ALT", "QUAL", "FILTER", "INFO", "FORMAT")
 _TAB, _NL, _CR, _COLON, _DOT, _BAR, _SLASH, _ZERO = 9, 10, 13, 58, 46, 124, 47, 48
 _ABSENT, _MISSING = -2, -1  # allele codes: no such allele (lower ploidy) / '.'
+_BAD = -3
+# Byte -> allele code (digit value, -1 for '.', _BAD otherwise) and byte -> "ends a GT".
+_CODE = np.full(256, _BAD, np.int16)
+_CODE[_ZERO : _ZERO + 10] = np.arange(10)
+_CODE[_DOT] = _MISSING
+_ENDS = np.zeros(256, bool)
+_ENDS[[_COLON, _TAB, _NL, _CR]] = True
 _GT_END = re.compile(rb"[:\t\r\n]")
 _ALLELE_SEP = re.compile(rb"[|/]")
 
@@ -161,42 +168,37 @@ class _Parser:
         return chrom.decode(), int(pos), vid.decode(), ref.decode(), alts, self._gt(fmt, line)
 
     def _alleles(self, a, T, nl, meta, line_no) -> np.ndarray:
-        """Allele codes of every call, shape (m * n, ploidy): index, -1 for '.', -2 for none."""
+        """Allele codes of every call, shape (ploidy, m * n): index, -1 for '.', -2 for none."""
         n = self.n
         start = (T[:, 8:] + 1).ravel()
-        stop = np.concatenate([T[:, 9:], nl[:, None]], axis=1).ravel()
         g = np.array([x[5] for x in meta])
-        gs = start.copy()
-        absent = np.zeros(start.size, bool)
+        gs = start
+        absent = None
         if np.any(g > 0):  # GT not first: the (g)th colon inside the field precedes it
+            stop = np.concatenate([T[:, 9:], nl[:, None]], axis=1).ravel()
             colons = np.flatnonzero(a == _COLON)
             gf = np.repeat(g, n)
             sel = np.flatnonzero(gf > 0)
             j = np.searchsorted(colons, start[sel]) + gf[sel] - 1
-            at = colons[np.minimum(j, max(colons.size - 1, 0))] if colons.size else stop[sel]
+            at = colons[np.minimum(j, colons.size - 1)] if colons.size else stop[sel]
             found = (j < colons.size) & (at < stop[sel])
+            gs = start.copy()
             gs[sel] = np.where(found, at + 1, stop[sel])
+            absent = np.zeros(start.size, bool)
             absent[sel] = ~found
-        c0, c1, c2, c3 = a[gs], a[gs + 1], a[gs + 2], a[gs + 3]
-
-        def ends(c):
-            return (c == _COLON) | (c == _TAB) | (c == _NL) | (c == _CR)
-
-        def code(c):
-            return np.where(c == _DOT, _MISSING, c.astype(np.int16) - _ZERO)
-
-        def ok(c):
-            return (c == _DOT) | ((c >= _ZERO) & (c <= _ZERO + 9))
-
-        dip = ((c1 == _BAR) | (c1 == _SLASH)) & ends(c3) & ok(c0) & ok(c2)
-        hap = ends(c1) & ok(c0)
-        out = np.full((start.size, 2), _ABSENT, np.int16)
-        out[:, 0] = np.where(dip | hap, code(c0), _ABSENT)
-        out[:, 1] = np.where(dip, code(c2), _ABSENT)
-        out[absent, 0] = _MISSING
-        slow = np.flatnonzero(~(dip | hap | absent))
-        if slow.size:
-            out = self._slow_alleles(a, gs, slow, out, line_no)
+        # Look at fixed offsets from each GT start: "a|b" / "a/b" then a terminator, or "a" alone.
+        d0, c1, d2, c3 = _CODE[a[gs]], a[gs + 1], _CODE[a[gs + 2]], a[gs + 3]
+        hap = _ENDS[c1] & (d0 != _BAD)
+        dip = ((c1 == _BAR) | (c1 == _SLASH)) & _ENDS[c3] & (d0 != _BAD) & (d2 != _BAD)
+        out = np.empty((2, start.size), np.int16)
+        out[0] = d0
+        out[1] = np.where(dip, d2, _ABSENT)
+        fast = dip | hap
+        if absent is not None:
+            out[0, absent] = _MISSING
+            fast |= absent
+        if not fast.all():
+            out = self._slow_alleles(a, gs, np.flatnonzero(~fast), out, line_no)
         return out
 
     def _slow_alleles(self, a, gs, slow, out, line_no) -> np.ndarray:
@@ -213,19 +215,19 @@ class _Parser:
                 raise self.fail(line, f"genotype {text!r} is not like 0/1, 0|1, 1 or ./.", sample)
             parsed.append([_MISSING if x == b"." else int(x) for x in parts])
         ploidy = max(2, *(len(x) for x in parsed))
-        if ploidy > out.shape[1]:
-            wide = np.full((out.shape[0], ploidy), _ABSENT, out.dtype)
-            wide[:, : out.shape[1]] = out
+        if ploidy > out.shape[0]:
+            wide = np.full((ploidy, out.shape[1]), _ABSENT, out.dtype)
+            wide[: out.shape[0]] = out
             out = wide
         for f, codes in zip(slow, parsed, strict=True):
-            out[f, :] = _ABSENT
-            out[f, : len(codes)] = codes
+            out[:, f] = _ABSENT
+            out[: len(codes), f] = codes
         return out
 
     def _rows(self, alleles: np.ndarray, meta, line_no):
         n, m = self.n, len(meta)
         n_alt = np.array([len(x[4]) for x in meta])
-        top = alleles.max(axis=1).reshape(m, n)
+        top = alleles.max(axis=0).reshape(m, n)
         over = np.argwhere(top > n_alt[:, None])
         if over.size:
             i, s = over[0]
@@ -234,8 +236,8 @@ class _Parser:
                 f"allele index {top[i, s]} but the site has {n_alt[i]} ALT allele(s)",
                 int(s),
             )
-        missing = (alleles == _MISSING).any(axis=1).reshape(m, n)
-        nonref = (alleles >= 1).sum(axis=1, dtype=np.int8).reshape(m, n)
+        missing = (alleles == _MISSING).any(axis=0).reshape(m, n)
+        nonref = (alleles >= 1).sum(axis=0, dtype=np.int8).reshape(m, n)
         multi = n_alt > 1
         if self.multiallelic == "split":
             counts = np.where(multi, n_alt, 1)
@@ -243,10 +245,11 @@ class _Parser:
             counts = np.where(multi, 0, 1)
         else:
             counts = np.ones(m, np.int64)
-        rows = np.repeat(np.where(missing, np.int8(MISSING_INT8), nonref), counts, axis=0)
+        nonref[missing] = MISSING_INT8
+        rows = np.repeat(nonref, counts, axis=0) if np.any(counts != 1) else nonref
         ids, chrom = [], []
         offsets = np.r_[0, np.cumsum(counts)[:-1]]
-        al = alleles.reshape(m, n, -1)
+        al = alleles.reshape(alleles.shape[0], m, n)
         for i, (ch, pos, vid, ref, alts, _g) in enumerate(meta):
             if counts[i] == 0:
                 continue
@@ -255,7 +258,7 @@ class _Parser:
             for k, alt in enumerate(alts if split else [b",".join(alts) or b"."]):
                 alt = alt.decode()
                 if split:
-                    d = (al[i] == k + 1).sum(axis=1, dtype=np.int8)
+                    d = (al[:, i] == k + 1).sum(axis=0, dtype=np.int8)
                     rows[offsets[i] + k] = np.where(missing[i], np.int8(MISSING_INT8), d)
                     ids.append(f"{named}:{alt}" if named else f"{ch}:{pos}:{ref}:{alt}")
                 else:
