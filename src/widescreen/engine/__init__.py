@@ -1,26 +1,31 @@
-"""The pass engine: block sources, Dask graphs over feature blocks, checkpoints, schedulers, top-k."""
+"""The pass engine: block sources, Dask graphs over feature blocks, checkpoints, schedulers, top-k,
+memory plans."""
 
-from ._pass import (
-    ENGINE_COLUMNS,
-    FeatureFilter,
-    PassResult,
-    PassSpec,
-    build_pass,
-    fetch_columns,
-    process_block,
-    read_stats,
-    run_pass,
+from ._block import fetch_columns, process_block, read_marker
+from ._memory import (
+    BlockShape,
+    MemoryBudgetError,
+    MemoryPlan,
+    parse_budget,
+    plan_memory,
+    thread_bytes,
 )
+from ._pass import build_pass, read_stats, run_pass
 from ._runfolder import RunFolder, RunFolderError, RunLock, atomic_write, diff_config
-from ._scheduler import execute, n_cores
+from ._scheduler import Executor, WorkerAccessError, execute, n_cores, open_executor
 from ._source import ArraySource, BlockSource, StoreSource, as_source
+from ._spec import ENGINE_COLUMNS, FeatureFilter, PassResult, PassSpec
 from ._topk import TopK, block_topk, merge_all, merge_topk
 
 __all__ = [
     "ENGINE_COLUMNS",
     "ArraySource",
+    "BlockShape",
     "BlockSource",
+    "Executor",
     "FeatureFilter",
+    "MemoryBudgetError",
+    "MemoryPlan",
     "PassResult",
     "PassSpec",
     "RunFolder",
@@ -28,6 +33,7 @@ __all__ = [
     "RunLock",
     "StoreSource",
     "TopK",
+    "WorkerAccessError",
     "as_source",
     "atomic_write",
     "block_topk",
@@ -38,7 +44,12 @@ __all__ = [
     "merge_all",
     "merge_topk",
     "n_cores",
+    "open_executor",
+    "parse_budget",
+    "plan_memory",
     "process_block",
+    "read_marker",
     "read_stats",
     "run_pass",
+    "thread_bytes",
 ]

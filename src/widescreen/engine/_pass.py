@@ -2,249 +2,35 @@
 
 Building the work is separate from running it: `build_pass` returns a Dask graph of one task per block
 (named deterministically from the pass's inputs) and a tree of top-k merges; `run_pass` decides which
-blocks are already finished (checkpoints), runs the rest on the chosen scheduler and finishes the merge.
+blocks are already finished (checkpoints), plans the memory, runs the rest on the chosen scheduler and
+finishes the merge.
 
 With a run folder, each block task writes its statistics into the pass's Zarr group and then its
-completion marker, and returns only its top k, so the driver's memory does not grow with p.
+completion marker, and returns only its top k, so the driver's memory does not grow with p. A resumed
+pass merges the markers' top-k lists with the new blocks' and is bit-identical to an uninterrupted one
+(the sub-block width is recorded with the pass and kept).
 """
 
 from __future__ import annotations
 
 import json
+import shutil
 import time
 from collections.abc import Callable
-from dataclasses import dataclass, field
+from dataclasses import replace
 from pathlib import Path
 from typing import Any
 
 import numpy as np
 import zarr
-from dask.base import tokenize
 
-from ..store._reader import prepare_block
-from ._runfolder import RunFolder, atomic_write
+from ._block import fetch_columns, process_block, read_marker
+from ._memory import CLUSTER_SHARE, MemoryBudgetError, MemoryPlan, parse_budget, plan_memory
+from ._runfolder import RunFolder, RunFolderError, atomic_write
+from ._scheduler import Executor, n_cores, open_executor
 from ._source import BlockSource
-from ._topk import TopK, block_topk, merge_all
-
-#: Statistics every pass records beside the kernel's own columns.
-ENGINE_COLUMNS = ("missing_rate", "mean", "filtered")
-
-
-@dataclass(frozen=True)
-class FeatureFilter:
-    """Features excluded in the pass (they get score 0, ``filtered`` = True and stay off the shortlist).
-
-    Attributes
-    ----------
-    max_missing : float, optional
-        Exclude features whose missing rate exceeds this.
-    min_maf : float, optional
-        Dosage stores only: exclude features whose minor allele frequency is below this.
-    """
-
-    max_missing: float | None = None
-    min_maf: float | None = None
-
-    def to_dict(self) -> dict:
-        return {"max_missing": self.max_missing, "min_maf": self.min_maf}
-
-
-@dataclass(frozen=True)
-class PassSpec:
-    """Everything a pass needs besides the data.
-
-    Attributes
-    ----------
-    name : str
-        Name of the pass inside the run folder (for example ``"screen"`` or ``"iter2"``).
-    kernel : callable (Block, state) -> dict of arrays
-        A pure statistics kernel (module-level function, so it pickles to worker processes).
-    state : object
-        The kernel's response state.
-    columns : tuple of str
-        Kernel outputs recorded for every feature.
-    keep : int
-        Length of the top-k list kept (with the columns' values when ``keep_values``).
-    rows : ndarray of int, optional
-        Store rows of the analysed samples, in the order of the response; all rows when None.
-    exclude : ndarray of int
-        Store indices of features kept off the top-k list (the already selected ones).
-    filters : FeatureFilter
-    keep_values : bool
-    sub_block : int
-        Width of the sub-blocks a chunk is processed in; bounds the float64 working memory per thread.
-    """
-
-    name: str
-    kernel: Callable[[Any, Any], dict]
-    state: Any
-    columns: tuple[str, ...]
-    keep: int
-    rows: np.ndarray | None = None
-    exclude: np.ndarray = field(default_factory=lambda: np.empty(0, np.int64))
-    filters: FeatureFilter = FeatureFilter()
-    keep_values: bool = True
-    sub_block: int = 1024
-
-    def token(self, source: BlockSource) -> str:
-        return tokenize(
-            self.name,
-            self.kernel.__module__,
-            self.kernel.__qualname__,
-            self.state,
-            self.columns,
-            self.keep,
-            self.rows,
-            self.exclude,
-            self.filters.to_dict(),
-            source.token(),
-        )
-
-    @property
-    def all_columns(self) -> tuple[str, ...]:
-        return (*self.columns, *ENGINE_COLUMNS)
-
-
-@dataclass
-class PassResult:
-    """Outcome of a pass.
-
-    Attributes
-    ----------
-    topk : TopK
-        Strongest features (values filled in, also for blocks reused from a checkpoint).
-    stats : dict of ndarray of shape (n_features,), or None
-        All features' statistics when the pass ran without a run folder.
-    n_filtered, n_constant : int
-        Features excluded by the filters, and constant ones.
-    blocks_reused, blocks_computed : int
-    seconds : float
-    """
-
-    name: str
-    topk: TopK
-    stats: dict[str, np.ndarray] | None
-    n_features: int
-    n_filtered: int
-    n_constant: int
-    blocks_reused: int
-    blocks_computed: int
-    seconds: float
-
-    def summary(self) -> dict:
-        return {
-            "n_features": self.n_features,
-            "n_filtered": self.n_filtered,
-            "n_constant": self.n_constant,
-            "blocks_reused": self.blocks_reused,
-            "blocks_computed": self.blocks_computed,
-            "seconds": round(self.seconds, 3),
-        }
-
-
-# --------------------------------------------------------------------------------------------
-# The block task
-
-
-def _filter_mask(
-    spec: PassSpec, missing_rate: np.ndarray, mean: np.ndarray, dosage: bool
-) -> np.ndarray:
-    mask = np.zeros(missing_rate.shape, dtype=bool)
-    f = spec.filters
-    if f.max_missing is not None:
-        mask |= missing_rate > f.max_missing
-    if f.min_maf is not None and dosage:
-        af = mean / 2.0
-        mask |= np.minimum(af, 1.0 - af) < f.min_maf
-    return mask
-
-
-def process_block(source: BlockSource, spec: PassSpec, i: int, out_dir: str | None) -> dict:
-    """Read block ``i``, compute its statistics, record them, return its top k.
-
-    Returns a small record: the block's `TopK`, counts, and (without a run folder) its statistics.
-    """
-    t0 = time.perf_counter()
-    start, stop = source.bounds(i)
-    raw = source.read(i)
-    dosage = source.value_kind == "dosage"
-    cols: dict[str, list[np.ndarray]] = {c: [] for c in spec.all_columns}
-    best = TopK.empty(spec.keep, _n_nulls(spec.state))
-    n_constant = 0
-    for a in range(0, stop - start, spec.sub_block):
-        b = min(a + spec.sub_block, stop - start)
-        block = prepare_block(raw[:, a:b], start + a, spec.rows)
-        out = spec.kernel(block, spec.state)
-        filtered = _filter_mask(spec, block.missing_rate, block.mean, dosage)
-        score = np.where(filtered | block.constant, 0.0, out["score"])
-        out["score"] = score
-        eligible = ~(filtered | block.constant | out.get("degenerate", False)) & np.isfinite(score)
-        if spec.exclude.size:
-            eligible &= ~np.isin(np.arange(start + a, start + b), spec.exclude)
-        n_constant += int(block.constant.sum())
-        for c in spec.columns:
-            cols[c].append(np.asarray(out[c], dtype=np.float64))
-        cols["missing_rate"].append(block.missing_rate)
-        cols["mean"].append(block.mean)
-        cols["filtered"].append(filtered.astype(np.float64))
-        values = block.values if spec.keep_values else None
-        part = block_topk(spec.keep, start + a, score, values, eligible, out.get("null_score"))
-        best = merge_all([best, part], spec.keep, part.null_max.size)
-    stats = {c: np.concatenate(v) for c, v in cols.items()}
-    record = {
-        "block": i,
-        "start": start,
-        "stop": stop,
-        "topk": best,
-        "n_filtered": int(stats["filtered"].sum()),
-        "n_constant": n_constant,
-        "seconds": time.perf_counter() - t0,
-    }
-    if out_dir is None:
-        record["stats"] = stats
-        return record
-    group = zarr.open_group(Path(out_dir) / "stats", mode="r+")
-    for c, v in stats.items():
-        group[c][start:stop] = v
-    _write_marker(out_dir, record)
-    return record
-
-
-def _n_nulls(state: Any) -> int:
-    return int(getattr(state, "n_nulls", 0))
-
-
-def _write_marker(out_dir: str, record: dict) -> None:
-    top: TopK = record["topk"]
-    marker = {
-        "block": record["block"],
-        "start": record["start"],
-        "stop": record["stop"],
-        "index": top.index.tolist(),
-        # repr of floats round-trips exactly, so a resumed merge is bit-identical
-        "score": [float(s) for s in top.score],
-        "null_max": [float(s) for s in top.null_max],
-        "n_filtered": record["n_filtered"],
-        "n_constant": record["n_constant"],
-        "seconds": record["seconds"],
-    }
-    atomic_write(Path(out_dir) / "done" / f"{record['block']}.json", json.dumps(marker))
-
-
-def _record_from_marker(path, k: int) -> dict:
-    m = json.loads(path.read_text())
-    top = TopK(
-        k=k,
-        index=np.asarray(m["index"], dtype=np.int64),
-        score=np.asarray(m["score"], dtype=np.float64),
-        values=None,
-        null_max=np.asarray(m["null_max"], dtype=np.float64),
-    )
-    return {**m, "topk": top}
-
-
-# --------------------------------------------------------------------------------------------
-# Building and running
+from ._spec import ENGINE_COLUMNS, FeatureFilter, PassResult, PassSpec
+from ._topk import TopK, merge_all
 
 
 def _merge_records(records: list[dict], k: int, n_nulls: int) -> dict:
@@ -254,6 +40,7 @@ def _merge_records(records: list[dict], k: int, n_nulls: int) -> dict:
         "n_filtered": sum(r["n_filtered"] for r in records),
         "n_constant": sum(r["n_constant"] for r in records),
         "blocks": sum(r.get("blocks", 1) for r in records),
+        "busy": sum(r.get("busy", r.get("seconds", 0.0)) for r in records),
     }
 
 
@@ -266,49 +53,67 @@ def build_pass(
 ):
     """Dask graph of the block tasks and a tree of merges.
 
+    The source and the spec are single nodes of the graph that every block task refers to, so a
+    cluster ships them to each worker once rather than with every task.
+
     Returns
     -------
     graph : dict
     block_keys : list of keys, one per block (their records carry statistics without a run folder)
-    final_key : key of the merged record
+    final_key : key of the merged record, or None when there are no blocks
     """
     token = spec.token(source)
     name = f"widescreen-{spec.name}-{token[:12]}"
+    src_key, spec_key = f"{name}-source", f"{name}-spec-{spec.sub_block}"
     graph: dict = {}
     block_keys = []
     for i in blocks:
         key = (f"{name}-block", i)
-        graph[key] = (process_block, source, spec, i, out_dir)
+        graph[key] = (process_block, src_key, spec_key, i, out_dir)
         block_keys.append(key)
+    if block_keys:
+        graph[src_key] = source
+        graph[spec_key] = spec
     level, layer = 0, block_keys
-    n_nulls = _n_nulls(spec.state)
     while len(layer) > 1:
         nxt = []
         for j in range(0, len(layer), split_every):
             key = (f"{name}-merge{level}", j)
-            graph[key] = (_merge_records, list(layer[j : j + split_every]), spec.keep, n_nulls)
+            graph[key] = (_merge_records, list(layer[j : j + split_every]), spec.keep, spec.n_nulls)
             nxt.append(key)
         layer, level = nxt, level + 1
     final = layer[0] if layer else None
     if final is not None and final in block_keys:
         key = (f"{name}-merge0", 0)
-        graph[key] = (_merge_records, [final], spec.keep, n_nulls)
+        graph[key] = (_merge_records, [final], spec.keep, spec.n_nulls)
         final = key
     return graph, block_keys, final
 
 
-def _prepare_out_dir(run: RunFolder, source: BlockSource, spec: PassSpec) -> str:
-    """Create (or check) the pass's statistics group; a pass of other inputs under this name starts over."""
-    import shutil
+# --------------------------------------------------------------------------------------------
+# The pass folder
 
+
+def _prepare_out_dir(run: RunFolder, source: BlockSource, spec: PassSpec) -> tuple[str, dict]:
+    """Create (or check) the pass's statistics group; a pass of other inputs under this name starts over.
+
+    Returns the folder and its metadata (``pass.json``: token, statistic names, block plan, and the
+    sub-block width of the first session, or None when the folder is new).
+    """
     d = run.pass_dir(spec.name)
     token = spec.token(source)
-    meta = d / "pass.json"
-    if meta.exists():
-        if json.loads(meta.read_text()).get("token") == token:
-            return str(d)
+    meta_path = d / "pass.json"
+    if meta_path.exists():
+        try:
+            meta = json.loads(meta_path.read_text())
+        except ValueError:
+            meta = {}
+        if meta.get("token") == token:
+            _clean_partial_files(d)
+            return str(d), meta
+    if d.exists():
         shutil.rmtree(d)
-    d.mkdir(parents=True, exist_ok=True)
+    d.mkdir(parents=True)
     group = zarr.open_group(d / "stats", mode="w")
     for c in spec.all_columns:
         group.create_array(
@@ -317,10 +122,61 @@ def _prepare_out_dir(run: RunFolder, source: BlockSource, spec: PassSpec) -> str
             chunks=(source.block_width,),
             dtype="float64",
             fill_value=np.nan,
+            # A block's chunk file must exist once its marker does, whatever its values.
+            config={"write_empty_chunks": True},
         )
-    (d / "done").mkdir(exist_ok=True)
-    atomic_write(meta, json.dumps({"token": token, "columns": list(spec.all_columns)}))
-    return str(d)
+    (d / "done").mkdir()
+    meta = {
+        "token": token,
+        "columns": list(spec.all_columns),
+        "n_features": source.n_features,
+        "block_width": source.block_width,
+        "n_blocks": source.n_blocks,
+        "sub_block": None,
+    }
+    atomic_write(meta_path, json.dumps(meta))  # last: the folder counts as made once this exists
+    return str(d), meta
+
+
+def _clean_partial_files(d: Path) -> None:
+    """Temporary files that a killed writer left (zarr's ``*.partial``, our ``.*.tmp-*``)."""
+    for f in (d / "done").glob(".*.tmp-*"):
+        f.unlink(missing_ok=True)
+    for f in (d / "stats").glob("*/c/*.partial"):
+        f.unlink(missing_ok=True)
+
+
+def _choose_sub_block(
+    source: BlockSource, spec: PassSpec, ex: Executor, recorded: int | None
+) -> tuple[int, MemoryPlan | None]:
+    """The sub-block width of this call and the memory plan (see `widescreen.engine.plan_memory`)."""
+    cap = int(min(spec.sub_block, source.block_width))
+    if ex.memory_per_worker is None:
+        # No budget: keep a recorded width that is within the requested one.
+        return (recorded if recorded is not None and recorded <= cap else cap), None
+    budget = ex.memory_per_worker
+    if ex.kind == "distributed":
+        budget = int(budget * CLUSTER_SHARE)
+    plan = plan_memory(
+        budget,
+        source.block_shape(spec.n_analysed),
+        keep=spec.keep,
+        max_threads=ex.threads_per_worker,
+        max_sub_block=cap,
+        n_responses=spec.n_nulls + 1,
+        n_columns=len(spec.all_columns),
+        temporaries=spec.temporaries,
+        prefer_sub_block=recorded,
+    )
+    if ex.kind == "distributed" and plan.n_threads < ex.threads_per_worker:
+        raise MemoryBudgetError(
+            f"cluster workers with {ex.threads_per_worker} threads and {ex.memory_per_worker} "
+            f"bytes each cannot run this pass: it fits {plan.n_threads} thread(s) per worker; give "
+            "the workers more memory or fewer threads"
+        )
+    if ex.kind == "threads":
+        ex.threads_per_worker = plan.n_threads
+    return plan.sub_block, plan
 
 
 def run_pass(
@@ -329,6 +185,7 @@ def run_pass(
     run: RunFolder | None = None,
     scheduler: Any = None,
     progress: Callable[[int, int], None] | None = None,
+    memory_budget: int | str | None = None,
 ) -> PassResult:
     """Run one pass, resuming from the run folder's completion markers when there are any.
 
@@ -339,37 +196,74 @@ def run_pass(
     run : RunFolder, optional
         Without one, statistics are returned in memory (fine for modest p).
     scheduler : optional
-        Anything `widescreen.engine.get_scheduler` accepts; the threaded scheduler by default.
+        Anything `widescreen.engine.open_executor` accepts; the threaded scheduler by default.
     progress : callable(done, total), optional
-        Called as blocks finish.
-    """
-    from ._scheduler import execute
+        Called with the number of finished blocks (reused ones included) as blocks finish, on every
+        scheduler.
+    memory_budget : int or str, optional
+        Bytes (or a size such as "4GB") the pass may use; plans the sub-block width and the threads
+        (`widescreen.engine.plan_memory`). For ``"processes:N"`` the budget is shared by the N workers.
 
+    Raises
+    ------
+    MemoryBudgetError
+        The budget cannot hold one block.
+    widescreen.store.ChunkError
+        A chunk of X is missing or corrupt (the message names the chunk and its features); the blocks
+        finished before stay recorded.
+    WorkerAccessError
+        Cluster workers do not see the store or the run folder.
+    """
     t0 = time.perf_counter()
+    budget = parse_budget(memory_budget)
     n_blocks = source.n_blocks
-    out_dir = _prepare_out_dir(run, source, spec) if run is not None else None
-    done = run.done_blocks(spec.name) if run is not None else set()
+    if run is not None:
+        # Workers may run in another working folder (or on another machine): absolute paths only.
+        run = RunFolder(Path(run.path).resolve())
+    source = source.absolute()
+    out_dir, meta = (
+        _prepare_out_dir(run, source, spec) if run is not None else (None, {"sub_block": None})
+    )
+    reused = []
+    if run is not None:
+        for i in sorted(run.done_blocks(spec.name)):
+            if 0 <= i < n_blocks:
+                rec = read_marker(out_dir, i, spec.keep, source.bounds(i), spec.all_columns)
+                if rec is not None:
+                    reused.append(rec)
+    done = {r["block"] for r in reused}
     todo = [i for i in range(n_blocks) if i not in done]
-    reused = (
-        [_record_from_marker(run.marker(spec.name, i), spec.keep) for i in sorted(done)]
-        if done
-        else []
-    )
-    graph, block_keys, final = build_pass(source, spec, todo, out_dir)
-    if progress is not None:
-        progress(len(done), n_blocks)
-    results = execute(
-        graph,
-        block_keys,
-        final,
-        scheduler=scheduler,
-        progress=progress,
-        offset=len(done),
-        total=n_blocks,
-        want_blocks=out_dir is None,
-    )
+    notes: list[str] = []
+    with open_executor(scheduler, memory_budget=budget) as ex:
+        sub_block, plan = _choose_sub_block(source, spec, ex, meta.get("sub_block"))
+        spec = replace(spec, sub_block=sub_block)
+        if out_dir is not None:
+            _record_sub_block(Path(out_dir), meta, sub_block, bool(todo), notes)
+        if todo and out_dir is not None:
+            checks = [
+                ("run folder", Path(run.path), Path(out_dir, "pass.json").relative_to(run.path))
+            ]
+            location = source.location()
+            if location is not None:
+                checks.insert(0, ("store", location, "zarr.json"))
+            ex.check_reachable(checks)
+        graph, block_keys, final = build_pass(source, spec, todo, out_dir)
+        if progress is not None:
+            progress(len(done), n_blocks)
+        results = ex.run(
+            graph,
+            block_keys,
+            final,
+            progress=progress,
+            offset=len(done),
+            total=n_blocks,
+            want_blocks=out_dir is None,
+        )
+        fetch_threads = ex.threads_per_worker if ex.kind == "threads" else n_cores()
+        where = ex.describe()
+    computed = results["final"]
     merged = _merge_records(
-        [r for r in (results["final"], *reused) if r is not None], spec.keep, _n_nulls(spec.state)
+        [r for r in (computed, *reused) if r is not None], spec.keep, spec.n_nulls
     )
     stats = None
     if out_dir is None:
@@ -379,15 +273,11 @@ def run_pass(
             if recs
             else {}
         )
+    t_fetch = time.perf_counter()
     top = merged["topk"]
     if top.values is None and spec.keep_values and top.index.size:
-        top = TopK(
-            top.k,
-            top.index,
-            top.score,
-            fetch_columns(source, top.index, spec.rows, spec.sub_block),
-            top.null_max,
-        )
+        top = replace(top, values=_kept_values(source, spec, top, computed, fetch_threads))
+    t_fetch = time.perf_counter() - t_fetch if reused else 0.0
     return PassResult(
         name=spec.name,
         topk=top,
@@ -395,35 +285,53 @@ def run_pass(
         n_features=source.n_features,
         n_filtered=merged["n_filtered"],
         n_constant=merged["n_constant"],
-        blocks_reused=len(done),
+        blocks_reused=len(reused),
         blocks_computed=len(todo),
         seconds=time.perf_counter() - t0,
+        sub_block=sub_block,
+        scheduler=where,
+        plan=None if plan is None else plan.to_dict(),
+        seconds_blocks=0.0 if computed is None else float(computed["busy"]),
+        seconds_fetch=t_fetch,
+        notes=tuple(notes),
     )
 
 
-def fetch_columns(
-    source: BlockSource, index: np.ndarray, rows: np.ndarray | None, sub_block: int = 1024
-) -> np.ndarray:
-    """Imputed, centred float64 values of the given features, reading each block once.
+def _record_sub_block(d: Path, meta: dict, sub_block: int, computing: bool, notes: list) -> None:
+    first = meta.get("sub_block")
+    if first is None:
+        meta = {**meta, "sub_block": sub_block}
+        atomic_write(d / "pass.json", json.dumps(meta))
+    elif first != sub_block and computing:
+        widths = sorted({*meta.get("sub_blocks_used", [first]), sub_block})
+        meta = {**meta, "sub_blocks_used": widths}
+        atomic_write(d / "pass.json", json.dumps(meta))
+        notes.append(
+            f"blocks were computed with sub-block widths {widths} (the memory budget changed); "
+            "statistics may differ from an uninterrupted run in the last bits"
+        )
 
-    Each column is prepared within the same sub-block as in the pass, so the values are bit-identical
-    to those the pass kept.
-    """
-    index = np.asarray(index, dtype=np.int64)
-    n = source.n_samples if rows is None else len(rows)
-    out = np.empty((n, index.size), dtype=np.float64, order="F")
-    blocks = index // source.block_width
-    for i in np.unique(blocks):
-        start, stop = source.bounds(int(i))
-        raw = source.read(int(i))
-        sel = np.flatnonzero(blocks == i)
-        local = index[sel] - start
-        for a in np.unique(local // sub_block * sub_block):
-            b = min(int(a) + sub_block, stop - start)
-            block = prepare_block(raw[:, a:b], start + int(a), rows)
-            here = (local >= a) & (local < b)
-            out[:, sel[here]] = block.values[:, local[here] - a]
-    return out
+
+def _kept_values(
+    source: BlockSource, spec: PassSpec, top: TopK, computed: dict | None, n_threads: int
+) -> np.ndarray:
+    """Values of the final top-k: from the new blocks' lists where they are, read back otherwise."""
+    n = source.n_samples if spec.rows is None else len(spec.rows)
+    values = np.empty((n, top.index.size), dtype=np.float64, order="F")
+    have = np.zeros(top.index.size, dtype=bool)
+    ctop = None if computed is None else computed["topk"]
+    if ctop is not None and ctop.values is not None and ctop.index.size:
+        order = np.argsort(ctop.index)
+        pos = np.searchsorted(ctop.index[order], top.index)
+        pos = np.minimum(pos, ctop.index.size - 1)
+        have = ctop.index[order][pos] == top.index
+        values[:, have] = ctop.values[:, order[pos[have]]]
+    if not have.all():
+        missing = np.flatnonzero(~have)
+        values[:, missing] = fetch_columns(
+            source, top.index[missing], spec.rows, spec.sub_block, n_threads=n_threads
+        )
+    return values
 
 
 def read_stats(
@@ -433,7 +341,50 @@ def read_stats(
     start: int = 0,
     stop: int | None = None,
 ) -> dict[str, np.ndarray]:
-    """Statistics of a finished pass, read back from the run folder."""
-    group = zarr.open_group(run.pass_dir(name) / "stats", mode="r")
-    cols = columns or tuple(json.loads((run.pass_dir(name) / "pass.json").read_text())["columns"])
+    """Statistics of a finished pass, read back from the run folder.
+
+    Returns
+    -------
+    dict of ndarray of shape (stop - start,)
+
+    Raises
+    ------
+    RunFolderError
+        The run folder or the pass is missing, or the pass has unfinished blocks.
+    """
+    d = run.pass_dir(name)
+    if not run.path.is_dir():
+        raise RunFolderError(f"{run.path}: no such run folder")
+    try:
+        meta = json.loads((d / "pass.json").read_text())
+    except FileNotFoundError:
+        raise RunFolderError(f"{run.path}: has no pass {name!r}") from None
+    except ValueError as exc:
+        raise RunFolderError(f"{d / 'pass.json'}: unreadable: {exc}") from None
+    n_blocks = meta.get("n_blocks")
+    if n_blocks is not None:
+        finished = len([i for i in run.done_blocks(name) if i < n_blocks])
+        if finished < n_blocks:
+            raise RunFolderError(
+                f"{run.path}: pass {name!r} is not finished ({finished} of {n_blocks} blocks); "
+                "rerun the command to resume it"
+            )
+    cols = columns or tuple(meta["columns"])
+    unknown = [c for c in cols if c not in meta["columns"]]
+    if unknown:
+        raise KeyError(f"pass {name!r} has no statistic {unknown[0]!r}; it has {meta['columns']}")
+    group = zarr.open_group(d / "stats", mode="r")
     return {c: np.asarray(group[c][start:stop]) for c in cols}
+
+
+__all__ = [
+    "ENGINE_COLUMNS",
+    "FeatureFilter",
+    "PassResult",
+    "PassSpec",
+    "build_pass",
+    "fetch_columns",
+    "process_block",
+    "read_stats",
+    "run_pass",
+]

@@ -4,7 +4,7 @@ Layout::
 
     RUN/
       manifest.json                 config, dataset fingerprint, versions, state and timings of each pass
-      .lock                         held while a process works on the folder (pid, host, start time)
+      .lock                         flock-ed while a process works on the folder (pid, host, start time)
       passes/NAME/pass.json         the pass's input token and statistic names
       passes/NAME/stats/            Zarr v3 group: one (n_features,) float64 array per statistic, chunked like X
       passes/NAME/done/BLOCK.json   completion marker of one block: written after its statistics
@@ -16,11 +16,13 @@ finished only when its marker exists, which is written after its statistics.
 
 from __future__ import annotations
 
+import fcntl
 import json
 import os
 import socket
+import threading
 import time
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from pathlib import Path
 
 import numpy as np
@@ -31,16 +33,24 @@ class RunFolderError(RuntimeError):
 
 
 def atomic_write(path: Path, data: str | bytes) -> None:
-    """Write to a temporary name in the same folder, flush to disk, then rename over ``path``."""
+    """Write to a temporary name in the same folder, flush to disk, then rename over ``path``.
+
+    The temporary name is unique per process and thread, so two writers of the same file (a task run
+    twice on a cluster) never share one.
+    """
     path = Path(path)
     path.parent.mkdir(parents=True, exist_ok=True)
-    tmp = path.with_name(f".{path.name}.tmp-{os.getpid()}")
+    tmp = path.with_name(f".{path.name}.tmp-{os.getpid()}-{threading.get_ident()}")
     mode = "wb" if isinstance(data, bytes) else "w"
-    with open(tmp, mode) as f:
-        f.write(data)
-        f.flush()
-        os.fsync(f.fileno())
-    os.replace(tmp, path)
+    try:
+        with open(tmp, mode) as f:
+            f.write(data)
+            f.flush()
+            os.fsync(f.fileno())
+        os.replace(tmp, path)
+    except BaseException:
+        tmp.unlink(missing_ok=True)
+        raise
 
 
 def _pid_alive(pid: int) -> bool:
@@ -57,14 +67,54 @@ def _pid_alive(pid: int) -> bool:
 class RunLock:
     """An exclusive lock on a run folder that a killed process does not leave stuck.
 
-    The lock file records pid and host; a lock whose process is gone (same host) is taken over.
-    Creation uses O_EXCL, so two processes cannot both take it.
+    The lock is an advisory ``flock`` on the file ``path``, which the operating system drops when its
+    process ends in any way (also SIGKILL or the out-of-memory killer), so there is no stale lock to
+    clear. The file records pid, host and start time, for the message another process gets. Where the
+    file system has no ``flock``, the lock falls back to creating the file exclusively, and a lock
+    whose process is gone (same host) is taken over.
     """
 
     path: Path
+    _fd: int | None = field(default=None, init=False, repr=False)
 
     def acquire(self) -> None:
+        if self._fd is not None:
+            raise RunFolderError(f"{self.path.parent}: this lock is already held")
         info = {"pid": os.getpid(), "host": socket.gethostname(), "started": time.time()}
+        for _ in range(20):
+            fd = os.open(self.path, os.O_RDWR | os.O_CREAT, 0o644)
+            try:
+                fcntl.flock(fd, fcntl.LOCK_EX | fcntl.LOCK_NB)
+            except BlockingIOError:
+                os.close(fd)
+                raise self._busy() from None
+            except OSError:
+                os.close(fd)
+                self._acquire_exclusive(info)
+                return
+            try:
+                same = os.fstat(fd).st_ino == os.stat(self.path).st_ino
+            except FileNotFoundError:
+                same = False
+            if not same:
+                # The holder released (and removed) the file between our open and our lock: retry.
+                os.close(fd)
+                continue
+            os.ftruncate(fd, 0)
+            os.pwrite(fd, json.dumps(info).encode(), 0)
+            self._fd = fd
+            return
+        raise RunFolderError(f"{self.path.parent}: could not take the lock")
+
+    def _busy(self) -> RunFolderError:
+        holder = self._holder()
+        who = f"pid {holder.get('pid')} on {holder.get('host')}" if holder else "another process"
+        return RunFolderError(
+            f"{self.path.parent}: in use by {who}; wait for it to finish or use another folder"
+        )
+
+    def _acquire_exclusive(self, info: dict) -> None:
+        """Fallback without flock: O_EXCL creation, taking over a lock of a dead process."""
         for _ in range(2):
             try:
                 fd = os.open(self.path, os.O_CREAT | os.O_EXCL | os.O_WRONLY, 0o644)
@@ -77,17 +127,10 @@ class RunLock:
                 ):
                     self.path.unlink(missing_ok=True)  # stale: its process was killed
                     continue
-                who = (
-                    f"pid {holder.get('pid')} on {holder.get('host')}"
-                    if holder
-                    else "another process"
-                )
-                raise RunFolderError(
-                    f"{self.path.parent}: in use by {who}; wait for it to finish "
-                    f"(or remove {self.path.name} if that process is gone)"
-                ) from None
+                raise self._busy() from None
             with os.fdopen(fd, "w") as f:
                 json.dump(info, f)
+            self._fd = -1
             return
         raise RunFolderError(f"{self.path.parent}: could not take the lock")
 
@@ -97,10 +140,18 @@ class RunLock:
         except (OSError, ValueError):
             return None
 
+    @property
+    def held(self) -> bool:
+        return self._fd is not None
+
     def release(self) -> None:
-        holder = self._holder()
-        if holder is not None and holder.get("pid") == os.getpid():
-            self.path.unlink(missing_ok=True)
+        if self._fd is None:
+            return
+        fd, self._fd = self._fd, None
+        # Remove the file while still holding it: a process waiting on the old file sees it is gone.
+        self.path.unlink(missing_ok=True)
+        if fd >= 0:
+            os.close(fd)
 
     def __enter__(self) -> RunLock:
         self.acquire()

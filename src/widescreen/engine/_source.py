@@ -6,13 +6,17 @@ an in-memory numpy or Dask array another (used by the scikit-learn estimators).
 
 from __future__ import annotations
 
+import os
+import socket
 from abc import ABC, abstractmethod
 from dataclasses import dataclass
+from pathlib import Path
 
 import numpy as np
 
-from ..store._format import MISSING_INT8, Dataset
-from ..store._reader import ChunkLayout, read_block
+from ..store._format import MISSING_INT8, Dataset, StoreError
+from ..store._reader import ChunkError, ChunkLayout, read_block
+from ._memory import BlockShape
 
 
 class BlockSource(ABC):
@@ -42,6 +46,34 @@ class BlockSource(ABC):
     def describe(self) -> str:
         return f"{self.n_samples} x {self.n_features} {self.value_kind}"
 
+    @property
+    def chunk_shape(self) -> tuple[int, int]:
+        """(rows, features) of the unit the source decodes at once."""
+        return self.n_samples, self.block_width
+
+    @property
+    def itemsize(self) -> int:
+        return 8
+
+    def block_shape(self, n_analysed: int | None = None) -> BlockShape:
+        """What one block costs to read, for `widescreen.engine.plan_memory`."""
+        rows, cols = self.chunk_shape
+        return BlockShape(
+            n_samples=self.n_samples,
+            n_analysed=self.n_samples if n_analysed is None else int(n_analysed),
+            chunk_rows=rows,
+            chunk_cols=cols,
+            itemsize=self.itemsize,
+        )
+
+    def location(self) -> Path | None:
+        """The folder the workers must reach, or None when the data travel with the tasks."""
+        return None
+
+    def absolute(self) -> BlockSource:
+        """The same source with absolute paths, for workers whose working folder differs."""
+        return self
+
 
 @dataclass
 class StoreSource(BlockSource):
@@ -58,7 +90,38 @@ class StoreSource(BlockSource):
         self._token: str | None = None
 
     def read(self, i: int) -> np.ndarray:
-        return read_block(self.dataset, i, self.layout)
+        try:
+            return read_block(self.dataset, i, self.layout)
+        except ChunkError:
+            if not self.dataset.path.is_dir():
+                # Not damage: this machine does not see the store (a cluster worker elsewhere).
+                raise StoreError(
+                    f"{self.dataset.path}: the store is not reachable from host "
+                    f"{socket.gethostname()} (pid {os.getpid()}); cluster workers must see it at "
+                    "the same path"
+                ) from None
+            raise
+
+    @property
+    def chunk_shape(self) -> tuple[int, int]:
+        return self.layout.chunk_rows, self.layout.chunk_cols
+
+    @property
+    def itemsize(self) -> int:
+        return int(self.layout.dtype.itemsize)
+
+    def location(self) -> Path:
+        return Path(self.dataset.path)
+
+    def absolute(self) -> StoreSource:
+        """The same source with an absolute store path (what cluster workers need)."""
+        from ..store._format import open_dataset
+
+        if self.dataset.path.is_absolute():
+            return self
+        src = StoreSource(open_dataset(self.dataset.path.resolve()))
+        src._token = self._token
+        return src
 
     def token(self) -> str:
         if self._token is None:
@@ -92,6 +155,11 @@ class ArraySource(BlockSource):
             self.block_width = int(max(1, min(self.width, self.n_features)))
         dt = np.dtype(self.array.dtype)
         self.value_kind = "dosage" if dt == np.int8 else "continuous"
+
+    @property
+    def itemsize(self) -> int:
+        dt = np.dtype(self.array.dtype)
+        return 8 if dt.kind == "i" and dt != np.int8 else int(dt.itemsize)
 
     def read(self, i: int) -> np.ndarray:
         start, stop = self.bounds(i)

@@ -1,13 +1,21 @@
 """A run session: lock the run folder, check it was made by the same command on the same data, record progress.
 
 Re-running the same command on the same folder resumes; a different configuration or dataset is refused
-with the differences spelt out, unless ``restart`` is asked for explicitly.
+with the differences spelt out, unless ``restart`` is asked for explicitly. Two processes cannot work on
+one folder at once (the second is refused, naming the holder); a killed holder leaves no stale lock.
+
+The manifest keeps one entry per session under ``sessions`` (start, end, status, versions, wall time;
+a session that was killed is marked ``interrupted`` by the next one) and, per pass, the summary of each
+session's run of it under ``passes.NAME.runs`` (``blocks_reused``, ``blocks_computed``, timings), tagged
+with the session's number.
 """
 
 from __future__ import annotations
 
+import os
 import platform
 import shutil
+import socket
 import time
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -34,6 +42,16 @@ def versions() -> dict[str, str]:
     }
 
 
+def _session_entry(*, resumed: bool) -> dict:
+    return {
+        "started": time.time(),
+        "resumed": resumed,
+        "pid": os.getpid(),
+        "host": socket.gethostname(),
+        "versions": versions(),
+    }
+
+
 @dataclass
 class RunSession:
     """An open, locked run folder and its manifest (a plain dict, written atomically on every update)."""
@@ -47,19 +65,36 @@ class RunSession:
     def save(self) -> None:
         self.run.write_manifest(self.manifest)
 
+    @property
+    def session_index(self) -> int:
+        """Number of this session in ``manifest["sessions"]`` (0 for the first)."""
+        return len(self.manifest.get("sessions", [])) - 1
+
     def record_pass(self, name: str, summary: dict) -> None:
+        """Record one finished pass of this session: the latest summary, and this run in ``runs``."""
         passes = self.manifest.setdefault("passes", {})
         prev = passes.get(name, {})
-        runs = prev.get("runs", [])
-        runs.append(summary)
-        passes[name] = {**summary, "runs": runs}
+        runs = list(prev.get("runs", []))
+        run = {**summary, "session": self.session_index}
+        runs.append(run)
+        passes[name] = {**run, "runs": runs}
         self.save()
+
+    def _end_session(self, status: str) -> None:
+        sessions = self.manifest.get("sessions", [])
+        if sessions:
+            sessions[-1].update(
+                ended=time.time(),
+                status=status,
+                seconds=round(time.perf_counter() - self.t0, 3),
+            )
 
     def finish(self, status: str = "complete", **extra) -> None:
         self.manifest["status"] = status
-        self.manifest.setdefault("timings", {})[
-            f"session_{len(self.manifest.get('sessions', []))}"
-        ] = round(time.perf_counter() - self.t0, 3)
+        self.manifest.setdefault("timings", {})[f"session_{self.session_index + 1}"] = round(
+            time.perf_counter() - self.t0, 3
+        )
+        self._end_session(status)
         self.manifest.update(extra)
         self.save()
 
@@ -70,16 +105,17 @@ class RunSession:
         return self
 
     def __exit__(self, exc_type, exc, tb) -> None:
-        if exc_type is not None and exc_type is not KeyboardInterrupt:
-            self.manifest["status"] = f"failed: {exc}"
-            try:
-                self.save()
-            except OSError:
-                pass
-        elif exc_type is KeyboardInterrupt:
-            self.manifest["status"] = "interrupted"
-            self.save()
-        self.close()
+        try:
+            if exc_type is not None:
+                status = "interrupted" if exc_type is KeyboardInterrupt else f"failed: {exc}"
+                self.manifest["status"] = status
+                self._end_session(status)
+                try:
+                    self.save()
+                except OSError:
+                    pass  # the folder itself may be what failed; the error says so
+        finally:
+            self.close()
 
 
 def open_session(
@@ -103,7 +139,10 @@ def open_session(
     run = RunFolder(out)
     if run.path.exists() and not run.path.is_dir():
         raise RunFolderError(f"{run.path}: exists and is not a folder")
-    lock = run.lock()
+    try:
+        lock = run.lock()
+    except OSError as exc:
+        raise RunFolderError(f"{run.path}: cannot create the run folder: {exc.strerror}") from None
     lock.acquire()
     try:
         old = run.read_manifest()
@@ -129,12 +168,16 @@ def open_session(
                 )
             if problems:
                 raise RunFolderError(
-                    f"{run.path}: made by another configuration; differences: "
+                    f"{run.path}: was made by another command, configuration or dataset; differences: "
                     + "; ".join(problems)
                     + ". Use another folder, or --restart to start over."
                 )
             manifest = old
-            manifest.setdefault("sessions", []).append({"started": time.time(), "resumed": True})
+            sessions = manifest.setdefault("sessions", [])
+            for prev in sessions:
+                # We hold the lock, so a session that never recorded its end was killed.
+                prev.setdefault("status", "interrupted")
+            sessions.append(_session_entry(resumed=True))
             manifest["status"] = "running"
             resumed = True
         else:
@@ -144,7 +187,7 @@ def open_session(
                 "dataset": dataset,
                 "versions": versions(),
                 "status": "running",
-                "sessions": [{"started": time.time(), "resumed": False}],
+                "sessions": [_session_entry(resumed=False)],
             }
             resumed = False
         session = RunSession(run=run, lock=lock, manifest=manifest, resumed=resumed)

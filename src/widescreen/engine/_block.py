@@ -1,0 +1,225 @@
+"""The block task of a pass, its completion marker, and reading kept columns back.
+
+A block task reads one block (a column of chunks of X), computes its statistics sub-block by
+sub-block, writes them into the pass's Zarr group, then writes its completion marker, and returns
+only its top k. The marker is what makes a block count as finished, so it is written last and
+atomically; it holds the block's top-k indices and scores (floats as their exact repr), which a
+resumed pass merges without reading the block again.
+"""
+
+from __future__ import annotations
+
+import json
+import os
+import socket
+import time
+from concurrent.futures import ThreadPoolExecutor
+from pathlib import Path
+
+import numpy as np
+import zarr
+
+from ..store._reader import prepare_block
+from ._runfolder import atomic_write
+from ._scheduler import WorkerAccessError
+from ._source import BlockSource
+from ._spec import PassSpec
+from ._topk import TopK, block_topk, merge_all
+
+
+def _filter_mask(
+    spec: PassSpec, missing_rate: np.ndarray, mean: np.ndarray, dosage: bool
+) -> np.ndarray:
+    mask = np.zeros(missing_rate.shape, dtype=bool)
+    f = spec.filters
+    if f.max_missing is not None:
+        mask |= missing_rate > f.max_missing
+    if f.min_maf is not None and dosage:
+        af = mean / 2.0
+        mask |= np.minimum(af, 1.0 - af) < f.min_maf
+    return mask
+
+
+def process_block(source: BlockSource, spec: PassSpec, i: int, out_dir: str | None) -> dict:
+    """Read block ``i``, compute its statistics, record them, return its top k.
+
+    Returns
+    -------
+    dict
+        ``block``, ``start``, ``stop``, ``topk`` (a `TopK` with the kept values), ``n_filtered``,
+        ``n_constant``, ``seconds``, and ``stats`` (dict of arrays of shape (width,)) without a run
+        folder.
+    """
+    t0 = time.perf_counter()
+    if out_dir is not None and not (Path(out_dir) / "stats").is_dir():
+        # Checked before the read so a worker that does not see the run folder says so plainly.
+        raise WorkerAccessError(
+            f"run folder {Path(out_dir).parent.parent} is not reachable from host "
+            f"{socket.gethostname()} (pid {os.getpid()}): no {Path(out_dir) / 'stats'}"
+        )
+    start, stop = source.bounds(i)
+    raw = source.read(i)
+    dosage = source.value_kind == "dosage"
+    cols: dict[str, list[np.ndarray]] = {c: [] for c in spec.all_columns}
+    best = TopK.empty(spec.keep, spec.n_nulls)
+    n_constant = 0
+    for a in range(0, stop - start, spec.sub_block):
+        b = min(a + spec.sub_block, stop - start)
+        block = prepare_block(raw[:, a:b], start + a, spec.rows)
+        out = spec.kernel(block, spec.state)
+        filtered = _filter_mask(spec, block.missing_rate, block.mean, dosage)
+        score = np.where(filtered | block.constant, 0.0, out["score"])
+        out["score"] = score
+        eligible = ~(filtered | block.constant | out.get("degenerate", False)) & np.isfinite(score)
+        if spec.exclude.size:
+            eligible &= ~np.isin(np.arange(start + a, start + b), spec.exclude)
+        n_constant += int(block.constant.sum())
+        for c in spec.columns:
+            cols[c].append(np.asarray(out[c], dtype=np.float64))
+        cols["missing_rate"].append(block.missing_rate)
+        cols["mean"].append(block.mean)
+        cols["filtered"].append(filtered.astype(np.float64))
+        values = block.values if spec.keep_values else None
+        part = block_topk(spec.keep, start + a, score, values, eligible, out.get("null_score"))
+        best = merge_all([best, part], spec.keep, part.null_max.size)
+    stats = {c: np.concatenate(v) for c, v in cols.items()}
+    record = {
+        "block": i,
+        "start": start,
+        "stop": stop,
+        "topk": best,
+        "n_filtered": int(stats["filtered"].sum()),
+        "n_constant": n_constant,
+        "sub_block": int(min(spec.sub_block, stop - start)),
+        "seconds": time.perf_counter() - t0,
+    }
+    if out_dir is None:
+        record["stats"] = stats
+        return record
+    group = zarr.open_group(Path(out_dir) / "stats", mode="r+")
+    for c, v in stats.items():
+        group[c][start:stop] = v
+    record["seconds"] = time.perf_counter() - t0
+    write_marker(out_dir, record)
+    return record
+
+
+# --------------------------------------------------------------------------------------------
+# Completion markers
+
+
+def write_marker(out_dir: str | Path, record: dict) -> None:
+    top: TopK = record["topk"]
+    marker = {
+        "block": record["block"],
+        "start": record["start"],
+        "stop": record["stop"],
+        "index": top.index.tolist(),
+        # repr of floats round-trips exactly, so a resumed merge is bit-identical
+        "score": [float(s) for s in top.score],
+        "null_max": [float(s) for s in top.null_max],
+        "n_filtered": record["n_filtered"],
+        "n_constant": record["n_constant"],
+        "sub_block": record.get("sub_block"),
+        "seconds": record["seconds"],
+    }
+    atomic_write(Path(out_dir) / "done" / f"{record['block']}.json", json.dumps(marker))
+
+
+def stats_chunk(out_dir: str | Path, column: str, block: int) -> Path:
+    """File of one block's chunk of a statistic (the pass creates the arrays with '/'-separated keys)."""
+    return Path(out_dir) / "stats" / column / "c" / str(block)
+
+
+def read_marker(
+    out_dir: str | Path, block: int, k: int, bounds: tuple[int, int], columns: tuple[str, ...]
+) -> dict | None:
+    """The record of a finished block, or None when its marker or statistics cannot be trusted.
+
+    A marker is trusted when it parses, names the block's feature range, and every statistic's chunk
+    file of the block exists and is not empty (an empty file is what a crash of the machine can leave
+    behind); otherwise the block is computed again.
+    """
+    path = Path(out_dir) / "done" / f"{block}.json"
+    try:
+        m = json.loads(path.read_text())
+        if (int(m["start"]), int(m["stop"])) != tuple(bounds):
+            return None
+        top = TopK(
+            k=k,
+            index=np.asarray(m["index"], dtype=np.int64),
+            score=np.asarray(m["score"], dtype=np.float64),
+            values=None,
+            null_max=np.asarray(m["null_max"], dtype=np.float64),
+        )
+    except (OSError, ValueError, KeyError, TypeError):
+        return None
+    for c in columns:
+        try:
+            if os.stat(stats_chunk(out_dir, c, block)).st_size == 0:
+                return None
+        except OSError:
+            return None
+    return {**m, "topk": top}
+
+
+# --------------------------------------------------------------------------------------------
+# Kept columns
+
+
+def fetch_columns(
+    source: BlockSource,
+    index: np.ndarray,
+    rows: np.ndarray | None,
+    sub_block: int = 1024,
+    n_threads: int = 1,
+) -> np.ndarray:
+    """Imputed, centred float64 values of the given features, reading each block once.
+
+    Each column is prepared within the same sub-block as in the pass, so the values are bit-identical
+    to those the pass kept.
+
+    Parameters
+    ----------
+    source : BlockSource
+    index : ndarray of int, shape (m,)
+        Store indices of the features, in the order wanted.
+    rows : ndarray of int, optional
+        Store rows of the analysed samples.
+    sub_block : int
+    n_threads : int
+        Blocks read at once.
+
+    Returns
+    -------
+    ndarray of shape (n_analysed, m), Fortran order
+    """
+    index = np.asarray(index, dtype=np.int64)
+    n = source.n_samples if rows is None else len(rows)
+    out = np.empty((n, index.size), dtype=np.float64, order="F")
+    if index.size == 0:
+        return out
+    if index.min() < 0 or index.max() >= source.n_features:
+        raise IndexError(f"feature indices must lie in 0..{source.n_features - 1}")
+    blocks = index // source.block_width
+
+    def one(i: int) -> None:
+        start, stop = source.bounds(i)
+        raw = source.read(i)
+        sel = np.flatnonzero(blocks == i)
+        local = index[sel] - start
+        for a in np.unique(local // sub_block * sub_block):
+            b = min(int(a) + sub_block, stop - start)
+            block = prepare_block(raw[:, a:b], start + int(a), rows)
+            here = (local >= a) & (local < b)
+            out[:, sel[here]] = block.values[:, local[here] - a]
+
+    todo = [int(i) for i in np.unique(blocks)]
+    if n_threads <= 1 or len(todo) == 1:
+        for i in todo:
+            one(i)
+    else:
+        # Each thread decodes into its own reused buffers; the columns written are disjoint.
+        with ThreadPoolExecutor(max_workers=n_threads) as pool:
+            list(pool.map(one, todo))
+    return out

@@ -1,0 +1,279 @@
+"""Plan a pass to a memory budget: the sub-block width and the number of worker threads.
+
+The rule (what one worker thread holds at its peak while it processes a block)::
+
+    column   = n_row_chunks * chunk_rows * chunk_cols * itemsize   the block's chunk column, decoded whole
+                                                                   (a chunk cannot be decoded in parts)
+    encoded  = chunk_rows * chunk_cols * itemsize * (1 + 1/256) + 64   one chunk file read into memory,
+                                                                   at worst incompressible
+    sub(w)   = n * w * (itemsize + 8 * (1 + t)) + 2 * m * w * 8     the analysed rows of a sub-block of w
+                                                                   features (copy), its float64 values, t
+                                                                   kernel temporaries of the same size, and
+                                                                   the cross-products and null scores of
+                                                                   the m responses
+    topk     = n * 8 * (2 * min(keep, chunk_cols) + min(keep, w))  the block's running top-k values, one
+                                                                   sub-block's list and their merge
+    stats    = 2 * c * chunk_cols * 8                              the block's c statistic columns
+    thread(w) = column + encoded + sub(w) + topk + stats
+
+and what the process holds besides::
+
+    shared(T) = baseline + (split_every + T + 1) * n * keep * 8    interpreter and libraries, and the top-k
+                                                                   records waiting for a merge
+
+A plan with T threads and sub-block width w fits when ``shared(T) + T * thread(w) <= budget``. The planner
+takes as many threads as there are cores (or workers' threads) while a sub-block of at least
+``MIN_SUB_BLOCK`` features still fits, then the widest sub-block that fits: the requested width, else the
+largest power of two below it. With one thread and one feature per sub-block the chunk column alone may
+not fit: then the budget is refused with the numbers, since a chunk must be decoded whole.
+
+None of these terms grows with the number of features p, so a pass's peak memory is flat in p.
+
+The sub-block width changes the last bits of the kernel's statistics (matrix products round by width), so
+the width is recorded with the pass and a resumed pass keeps it whenever it still fits with at least one
+thread.
+"""
+
+from __future__ import annotations
+
+from dataclasses import asdict, dataclass
+
+from dask.utils import format_bytes, parse_bytes
+
+#: Resident memory of a process with the interpreter, numpy, scipy, dask and zarr loaded (measured at
+#: about 130-180 MiB on Linux; rounded up).
+BASELINE_BYTES = 256 * 2**20
+#: Below this sub-block width the per-call overhead outweighs the memory saved; fewer threads first.
+MIN_SUB_BLOCK = 128
+#: Float64 (n, width) temporaries a kernel makes at its peak, unless the pass says otherwise.
+DEFAULT_TEMPORARIES = 2.0
+#: Share of a cluster worker's memory limit a plan may use: distributed pauses a worker at 80%.
+CLUSTER_SHARE = 0.75
+
+
+class MemoryBudgetError(ValueError):
+    """The memory budget cannot hold even one worker thread with a one-feature sub-block."""
+
+
+@dataclass(frozen=True)
+class BlockShape:
+    """What a pass reads per block, for the memory plan.
+
+    Attributes
+    ----------
+    n_samples : int
+        Rows in the store (all of them are decoded).
+    n_analysed : int
+        Rows analysed (after the outcome join).
+    chunk_rows, chunk_cols : int
+        Chunk shape of X.
+    itemsize : int
+        Bytes per stored value (1 for int8 dosages).
+    """
+
+    n_samples: int
+    n_analysed: int
+    chunk_rows: int
+    chunk_cols: int
+    itemsize: int
+
+    @property
+    def column_bytes(self) -> int:
+        n_row_chunks = -(-self.n_samples // self.chunk_rows)
+        return n_row_chunks * self.chunk_rows * self.chunk_cols * self.itemsize
+
+    @property
+    def encoded_bytes(self) -> int:
+        raw = self.chunk_rows * self.chunk_cols * self.itemsize
+        return raw + raw // 256 + 64
+
+
+@dataclass(frozen=True)
+class MemoryPlan:
+    """A pass planned to a budget.
+
+    Attributes
+    ----------
+    budget : int
+        Bytes the process (or one cluster worker) may use.
+    sub_block : int
+        Features prepared and scored at once inside a block.
+    n_threads : int
+        Concurrent block tasks in the process (or per cluster worker).
+    thread_bytes : int
+        Peak bytes of one worker thread at ``sub_block``.
+    shared_bytes : int
+        Bytes held besides the threads (baseline and top-k records awaiting a merge).
+    """
+
+    budget: int
+    sub_block: int
+    n_threads: int
+    thread_bytes: int
+    shared_bytes: int
+
+    @property
+    def peak_bytes(self) -> int:
+        return self.shared_bytes + self.n_threads * self.thread_bytes
+
+    def to_dict(self) -> dict:
+        return {**asdict(self), "peak_bytes": self.peak_bytes}
+
+
+def parse_budget(value: int | str | None) -> int | None:
+    """Bytes from an int or a text such as ``"4GB"`` or ``"512MiB"``; None stays None."""
+    if value is None:
+        return None
+    if isinstance(value, bool):
+        raise ValueError(
+            f"the memory budget must be a number of bytes or a size text; got {value!r}"
+        )
+    try:
+        out = int(value) if isinstance(value, int) else int(parse_bytes(str(value)))
+    except (ValueError, TypeError):
+        raise ValueError(
+            f"the memory budget must be a number of bytes or a size such as '4GB'; got {value!r}"
+        ) from None
+    if out <= 0:
+        raise ValueError(f"the memory budget must be positive; got {value!r}")
+    return out
+
+
+def thread_bytes(
+    shape: BlockShape,
+    sub_block: int,
+    *,
+    keep: int,
+    n_responses: int = 1,
+    n_columns: int = 8,
+    temporaries: float = DEFAULT_TEMPORARIES,
+) -> int:
+    """Peak bytes of one worker thread processing one block with sub-blocks of ``sub_block`` features."""
+    w = min(sub_block, shape.chunk_cols)
+    n = shape.n_analysed
+    sub = n * w * (shape.itemsize + 8 * (1.0 + temporaries)) + 2 * n_responses * w * 8
+    # The block's running list, one sub-block's list, and their merge.
+    top = n * 8 * (2 * min(keep, shape.chunk_cols) + min(keep, w))
+    stats = 2 * n_columns * shape.chunk_cols * 8
+    return int(shape.column_bytes + shape.encoded_bytes + sub + top + stats)
+
+
+def shared_bytes(
+    shape: BlockShape, n_threads: int, *, keep: int, split_every: int = 8, baseline: int
+) -> int:
+    return int(baseline + (split_every + n_threads + 1) * shape.n_analysed * keep * 8)
+
+
+def _widths(max_sub_block: int) -> list[int]:
+    """The requested width, then the powers of two below it (they stay aligned with chunk widths)."""
+    out = [max_sub_block]
+    w = 1 << (max_sub_block.bit_length() - 1)
+    if w == max_sub_block:
+        w //= 2
+    while w >= 1:
+        out.append(w)
+        w //= 2
+    return out
+
+
+def plan_memory(
+    budget: int | str,
+    shape: BlockShape,
+    *,
+    keep: int,
+    max_threads: int,
+    max_sub_block: int = 1024,
+    n_responses: int = 1,
+    n_columns: int = 8,
+    temporaries: float = DEFAULT_TEMPORARIES,
+    split_every: int = 8,
+    baseline: int = BASELINE_BYTES,
+    prefer_sub_block: int | None = None,
+) -> MemoryPlan:
+    """Choose the sub-block width and the number of threads that keep a pass within ``budget``.
+
+    Parameters
+    ----------
+    budget : int or str
+        Bytes (or a size text) the process may use in all.
+    shape : BlockShape
+    keep : int
+        Length of the top-k list whose values are kept.
+    max_threads : int
+        Threads available (cores, or a worker's threads).
+    max_sub_block : int
+        The pass's requested sub-block width; the plan never exceeds it.
+    n_responses : int
+        Responses scored at once (1 + the number of permuted copies).
+    n_columns : int
+        Statistics recorded per feature.
+    temporaries : float
+        Float64 (n, width) temporaries the kernel makes at its peak.
+    split_every : int
+        Fan-in of the top-k merge tree.
+    baseline : int
+        Bytes of the process before the pass.
+    prefer_sub_block : int, optional
+        A width already used by this pass (on resume): kept when it fits the chosen thread count, so
+        the resumed statistics stay bit-identical.
+
+    Returns
+    -------
+    MemoryPlan
+
+    Raises
+    ------
+    MemoryBudgetError
+        When one thread with a one-feature sub-block does not fit; the message gives the numbers.
+    """
+    total = parse_budget(budget)
+    if max_threads < 1:
+        raise ValueError(f"max_threads must be at least 1; got {max_threads}")
+    if max_sub_block < 1:
+        raise ValueError(f"the sub-block width must be at least 1; got {max_sub_block}")
+    cap = min(max_sub_block, shape.chunk_cols)
+    widths = _widths(cap)
+    kw = {"keep": keep, "n_responses": n_responses, "n_columns": n_columns}
+
+    def fits(t: int, w: int) -> tuple[bool, int, int]:
+        per = thread_bytes(shape, w, temporaries=temporaries, **kw)
+        shared = shared_bytes(shape, t, keep=keep, split_every=split_every, baseline=baseline)
+        return shared + t * per <= total, per, shared
+
+    if prefer_sub_block is not None and prefer_sub_block <= cap:
+        # Bit-identical resumed statistics are worth a thread.
+        for t in range(max_threads, 0, -1):
+            ok, per, shared = fits(t, prefer_sub_block)
+            if ok:
+                return MemoryPlan(total, prefer_sub_block, t, per, shared)
+    floor_w = min(MIN_SUB_BLOCK, cap)
+    for t in range(max_threads, 0, -1):
+        if t > 1 and not fits(t, floor_w)[0]:
+            continue
+        for w in widths:
+            ok, per, shared = fits(t, w)
+            if ok:
+                return MemoryPlan(total, w, t, per, shared)
+    per = thread_bytes(shape, 1, temporaries=temporaries, **kw)
+    shared = shared_bytes(shape, 1, keep=keep, split_every=split_every, baseline=baseline)
+    n_row_chunks = -(-shape.n_samples // shape.chunk_rows)
+    raise MemoryBudgetError(
+        f"a memory budget of {format_bytes(total)} is too small for this pass: one worker thread "
+        f"needs at least {format_bytes(per)} (a chunk column of {n_row_chunks * shape.chunk_rows} x "
+        f"{shape.chunk_cols} values of {shape.itemsize} byte(s), {format_bytes(shape.column_bytes)}, "
+        f"is decoded whole; its chunk file takes up to {format_bytes(shape.encoded_bytes)}; the "
+        f"top-{keep} values {format_bytes(2 * shape.n_analysed * min(keep, shape.chunk_cols) * 8)}) on top of "
+        f"{format_bytes(shared)} for the process and pending merges; give at least "
+        f"{format_bytes(per + shared)}, or store X with fewer features per chunk"
+    )
+
+
+__all__ = [
+    "BASELINE_BYTES",
+    "BlockShape",
+    "MemoryBudgetError",
+    "MemoryPlan",
+    "parse_budget",
+    "plan_memory",
+    "thread_bytes",
+]

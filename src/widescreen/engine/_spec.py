@@ -1,0 +1,174 @@
+"""What a pass is asked to do (`PassSpec`, `FeatureFilter`) and what it reports (`PassResult`)."""
+
+from __future__ import annotations
+
+from collections.abc import Callable
+from dataclasses import dataclass, field
+from typing import Any
+
+import numpy as np
+from dask.base import tokenize
+
+from ._source import BlockSource
+from ._topk import TopK
+
+#: Statistics every pass records beside the kernel's own columns.
+ENGINE_COLUMNS = ("missing_rate", "mean", "filtered")
+
+
+@dataclass(frozen=True)
+class FeatureFilter:
+    """Features excluded in the pass (they get score 0, ``filtered`` = True and stay off the shortlist).
+
+    Attributes
+    ----------
+    max_missing : float, optional
+        Exclude features whose missing rate exceeds this.
+    min_maf : float, optional
+        Dosage stores only: exclude features whose minor allele frequency is below this.
+    """
+
+    max_missing: float | None = None
+    min_maf: float | None = None
+
+    def to_dict(self) -> dict:
+        return {"max_missing": self.max_missing, "min_maf": self.min_maf}
+
+
+@dataclass(frozen=True)
+class PassSpec:
+    """Everything a pass needs besides the data.
+
+    Attributes
+    ----------
+    name : str
+        Name of the pass inside the run folder (for example ``"screen"`` or ``"iter2"``).
+    kernel : callable (Block, state) -> dict of arrays
+        A pure statistics kernel (module-level function, so it pickles to worker processes).
+    state : object
+        The kernel's response state.
+    columns : tuple of str
+        Kernel outputs recorded for every feature.
+    keep : int
+        Length of the top-k list kept (with the columns' values when ``keep_values``).
+    rows : ndarray of int, optional
+        Store rows of the analysed samples, in the order of the response; all rows when None.
+    exclude : ndarray of int
+        Store indices of features kept off the top-k list (the already selected ones).
+    filters : FeatureFilter
+    keep_values : bool
+    sub_block : int
+        Largest width of the sub-blocks a chunk is processed in; bounds the float64 working memory per
+        thread. A memory budget may lower it (`widescreen.engine.plan_memory`).
+    temporaries : float
+        Float64 (n, sub_block) temporaries the kernel makes at its peak, for the memory plan.
+    """
+
+    name: str
+    kernel: Callable[[Any, Any], dict]
+    state: Any
+    columns: tuple[str, ...]
+    keep: int
+    rows: np.ndarray | None = None
+    exclude: np.ndarray = field(default_factory=lambda: np.empty(0, np.int64))
+    filters: FeatureFilter = FeatureFilter()
+    keep_values: bool = True
+    sub_block: int = 1024
+    temporaries: float = 2.0
+
+    def token(self, source: BlockSource) -> str:
+        """Deterministic name of the pass's inputs: the checkpoints of another token are not reused.
+
+        The sub-block width is left out on purpose: it is an operational setting (memory), recorded
+        with the pass instead, so a resumed pass with a smaller budget keeps its finished blocks.
+        """
+        return tokenize(
+            self.name,
+            self.kernel.__module__,
+            self.kernel.__qualname__,
+            self.state,
+            self.columns,
+            self.keep,
+            self.rows,
+            self.exclude,
+            self.filters.to_dict(),
+            source.token(),
+        )
+
+    @property
+    def all_columns(self) -> tuple[str, ...]:
+        return (*self.columns, *ENGINE_COLUMNS)
+
+    @property
+    def n_nulls(self) -> int:
+        return int(getattr(self.state, "n_nulls", 0))
+
+    @property
+    def n_analysed(self) -> int | None:
+        return None if self.rows is None else len(self.rows)
+
+
+@dataclass
+class PassResult:
+    """Outcome of a pass.
+
+    Attributes
+    ----------
+    topk : TopK
+        Strongest features (values filled in, also for blocks reused from a checkpoint).
+    stats : dict of ndarray of shape (n_features,), or None
+        All features' statistics when the pass ran without a run folder.
+    n_filtered, n_constant : int
+        Features excluded by the filters, and constant ones.
+    blocks_reused, blocks_computed : int
+        Blocks taken from completion markers, and blocks run in this call.
+    seconds : float
+        Wall time of the call.
+    sub_block : int
+        Sub-block width the blocks of this call were computed with.
+    scheduler : str
+        Where the blocks ran.
+    plan : dict, optional
+        The memory plan (`MemoryPlan.to_dict`) when a memory budget applied.
+    seconds_blocks : float
+        Time spent in the block tasks of this call, summed over tasks.
+    seconds_fetch : float
+        Time spent reading the kept values of features from reused blocks.
+    notes : tuple of str
+        Anything a reader of the results should know (for example mixed sub-block widths).
+    """
+
+    name: str
+    topk: TopK
+    stats: dict[str, np.ndarray] | None
+    n_features: int
+    n_filtered: int
+    n_constant: int
+    blocks_reused: int
+    blocks_computed: int
+    seconds: float
+    sub_block: int = 0
+    scheduler: str = ""
+    plan: dict | None = None
+    seconds_blocks: float = 0.0
+    seconds_fetch: float = 0.0
+    notes: tuple[str, ...] = ()
+
+    def summary(self) -> dict:
+        out = {
+            "n_features": self.n_features,
+            "n_filtered": self.n_filtered,
+            "n_constant": self.n_constant,
+            "blocks_reused": self.blocks_reused,
+            "blocks_computed": self.blocks_computed,
+            "seconds": round(self.seconds, 3),
+            "seconds_blocks": round(self.seconds_blocks, 3),
+            "seconds_fetch": round(self.seconds_fetch, 3),
+            "sub_block": self.sub_block,
+            "scheduler": self.scheduler,
+        }
+        if self.plan is not None:
+            out["memory_plan"] = dict(self.plan)
+        if self.notes:
+            out["notes"] = list(self.notes)
+        return out
