@@ -1,5 +1,6 @@
 """The ``widescreen`` command line."""
 
+from . import _report  # noqa: F401  (registers the report command)
 from ._app import app, main
 
 __all__ = ["app", "main"]

@@ -1,0 +1,29 @@
+"""The ``report`` command: pictures and a self-contained HTML page of a finished run."""
+
+from __future__ import annotations
+
+from pathlib import Path
+from typing import Annotated
+
+import typer
+
+from ._app import app, friendly
+
+
+@app.command("report")
+@friendly
+def report_cmd(
+    run: Annotated[Path, typer.Argument(help="Run folder of a finished `screen` or `run`.")],
+    top: Annotated[
+        int, typer.Option("--top", help="Rows of the ranking table shown on the page.")
+    ] = 50,
+) -> None:
+    """Write RUN/report.html (pictures embedded) and the pictures as PNG under RUN/figures/."""
+    from ..report._build import make_report
+
+    files = make_report(run, top)
+    typer.echo(f"report: {files.html}")
+    for path in files.figures:
+        typer.echo(f"figure: {path}")
+    if files.lambda_gc is not None:
+        typer.echo(f"lambda_GC = {files.lambda_gc:.4f}")
