@@ -1,0 +1,255 @@
+"""Marginal logistic and Poisson kernels against statsmodels GLM fitted one feature at a time."""
+
+from __future__ import annotations
+
+import numpy as np
+import pytest
+import scipy.stats as ss
+import statsmodels.api as sm
+
+from widescreen.kernels import _glm
+from widescreen.kernels._glm import (
+    logistic_statistics,
+    poisson_statistics,
+    prepare_logistic,
+    prepare_poisson,
+)
+from widescreen.store._reader import prepare_block
+
+FAMILIES = {
+    "logistic": (prepare_logistic, logistic_statistics, sm.families.Binomial),
+    "poisson": (prepare_poisson, poisson_statistics, sm.families.Poisson),
+}
+
+
+def _design(rng, n=200, p=20):
+    """Continuous, dosage-coded, binary and skewed features; covariates; an exposure-like offset."""
+    X = rng.standard_normal((n, p))
+    X[:, 3] = rng.integers(0, 3, n)
+    X[:, 4] = rng.integers(0, 2, n)
+    X[:, 5] = rng.exponential(size=n)
+    X[:, 6] = 5.0 + 0.01 * rng.standard_normal(n)  # small spread around a large level
+    Z = np.column_stack([rng.standard_normal(n), rng.integers(0, 2, n)])
+    offset = rng.uniform(-0.5, 0.5, n)
+    return X, Z, offset
+
+
+def _outcome(family, rng, X, Z, offset):
+    eta = -0.3 + 0.6 * X[:, 0] - 0.4 * X[:, 3] + 0.5 * Z[:, 0] + offset
+    if family == "logistic":
+        return (rng.random(X.shape[0]) < 1 / (1 + np.exp(-eta))).astype(float)
+    return rng.poisson(np.exp(eta)).astype(float)
+
+
+def _statsmodels_marginal(family, y, X, Z, offset, mode):
+    """beta, se, LR chi2 of x_j from statsmodels GLM fits, one feature at a time (the reference)."""
+    fam = FAMILIES[family][2]()
+    n = y.shape[0]
+    base = np.zeros(n) if offset is None else offset
+    if Z is not None and mode == "offset":
+        # The covariates-only fit, whose linear predictor becomes the offset of the marginal fits.
+        C = sm.add_constant(Z, has_constant="add")
+        null = sm.GLM(y, C, family=fam, offset=base).fit(tol=1e-14)
+        base = C @ null.params + base
+    out = []
+    for j in range(X.shape[1]):
+        if Z is not None and mode == "joint":
+            ex = np.column_stack([np.ones(n), Z, X[:, j]])
+        else:
+            ex = np.column_stack([np.ones(n), X[:, j]])
+        full = sm.GLM(y, ex, family=fam, offset=base).fit(tol=1e-14)
+        null = sm.GLM(y, ex[:, :-1], family=fam, offset=base).fit(tol=1e-14)
+        out.append([full.params[-1], full.bse[-1], 2.0 * (full.llf - null.llf)])
+    return np.array(out)
+
+
+@pytest.mark.parametrize("family", ["logistic", "poisson"])
+@pytest.mark.parametrize(
+    ("covariates", "use_offset", "mode"),
+    [
+        (False, False, "offset"),
+        (True, False, "offset"),
+        (True, True, "offset"),
+        (True, True, "joint"),
+    ],
+)
+def test_marginal_fits_equal_statsmodels_glm(rng, family, covariates, use_offset, mode):
+    X, Z, offset = _design(rng)
+    y = _outcome(family, rng, X, Z, offset)
+    Z = Z if covariates else None
+    offset = offset if use_offset else None
+    prepare, statistics, _ = FAMILIES[family]
+    res = statistics(prepare_block(X, 0), prepare(y, Z, offset, covariate_mode=mode))
+    # statsmodels GLM (Binomial / Poisson), IRLS to a tight tolerance, per feature
+    ref = _statsmodels_marginal(family, y, X, Z, offset, mode)
+    np.testing.assert_allclose(res["beta"], ref[:, 0], rtol=1e-6)
+    np.testing.assert_allclose(res["std_error"], ref[:, 1], rtol=1e-6)
+    np.testing.assert_allclose(res["lr_chi2"], ref[:, 2], rtol=1e-6, atol=1e-9)
+    np.testing.assert_allclose(res["z"], ref[:, 0] / ref[:, 1], rtol=1e-6)
+    # p-value of the likelihood ratio: chi-square with 1 df (scipy.stats.chi2)
+    np.testing.assert_allclose(res["p_value"], ss.chi2.sf(ref[:, 2], 1), rtol=1e-5, atol=1e-12)
+    np.testing.assert_allclose(res["score"], ref[:, 2] / 2, rtol=1e-6, atol=1e-9)
+    # beta per standard deviation (population sd, numpy ddof=0)
+    np.testing.assert_allclose(res["std_beta"], ref[:, 0] * X.std(axis=0), rtol=1e-6)
+    assert res["converged"].all() and not res["degenerate"].any()
+
+
+@pytest.mark.parametrize("family", ["logistic", "poisson"])
+def test_small_tiles_and_shrinking_working_set_give_the_same_fits(rng, monkeypatch, family):
+    X, Z, offset = _design(rng, n=150, p=45)
+    X[:, 10:20] *= 3.0  # stronger columns converge later: the working set shrinks
+    y = _outcome(family, rng, X, Z, offset)
+    prepare, statistics, _ = FAMILIES[family]
+    monkeypatch.setattr(
+        _glm, "TILE_BYTES", 16 * 150 * 8
+    )  # tiles of 16 columns, the last one ragged
+    res = statistics(prepare_block(X, 0), prepare(y, Z))
+    ref = _statsmodels_marginal(family, y, X, Z, None, "offset")  # statsmodels GLM per feature
+    np.testing.assert_allclose(res["beta"], ref[:, 0], rtol=1e-6)
+    np.testing.assert_allclose(res["lr_chi2"], ref[:, 2], rtol=1e-6, atol=1e-9)
+
+
+def test_missing_values_are_fitted_as_mean_imputed(rng):
+    X, _, _ = _design(rng, n=180, p=8)
+    y = _outcome("logistic", rng, X, np.zeros((180, 2)), np.zeros(180))
+    Xm = X.copy()
+    Xm[rng.random(X.shape) < 0.1] = np.nan
+    res = logistic_statistics(prepare_block(Xm, 0), prepare_logistic(y))
+    imputed = np.where(np.isnan(Xm), np.nanmean(Xm, axis=0), Xm)
+    ref = _statsmodels_marginal("logistic", y, imputed, None, None, "offset")  # statsmodels GLM
+    np.testing.assert_allclose(res["beta"], ref[:, 0], rtol=1e-6)
+    np.testing.assert_allclose(res["lr_chi2"], ref[:, 2], rtol=1e-6, atol=1e-9)
+
+
+@pytest.mark.parametrize("family", ["logistic", "poisson"])
+@pytest.mark.parametrize("covariates", [False, True])
+def test_score_test_equals_statsmodels_score_test(rng, family, covariates):
+    X, Z, offset = _design(rng)
+    y = _outcome(family, rng, X, Z, offset)
+    Z = Z if covariates else None
+    prepare, statistics, fam = FAMILIES[family]
+    res = statistics(prepare_block(X, 0), prepare(y, Z, offset, test="score"))
+    C = np.ones((y.size, 1)) if Z is None else sm.add_constant(Z, has_constant="add")
+    null = sm.GLM(y, C, family=fam(), offset=offset).fit(tol=1e-14)
+    # statsmodels GLMResults.score_test: Rao score test of adding one column to the null model
+    ref = np.array([null.score_test(exog_extra=X[:, [j]])[0] for j in range(X.shape[1])]).ravel()
+    np.testing.assert_allclose(res["score_chi2"], ref, rtol=1e-8)
+    np.testing.assert_allclose(res["p_value"], ss.chi2.sf(ref, 1), rtol=1e-6, atol=1e-12)
+    np.testing.assert_allclose(res["score"], ref / 2, rtol=1e-8)
+    # U / I: the one-step estimate from the null fit (hand computation from statsmodels' fit)
+    mu = null.fittedvalues
+    w = mu * (1 - mu) if family == "logistic" else mu
+    Xc = X - X.mean(axis=0)
+    u = Xc.T @ (y - mu)
+    proj = Xc - C @ np.linalg.solve(C.T @ (C * w[:, None]), C.T @ (Xc * w[:, None]))
+    info = np.einsum("ij,ij,i->j", proj, proj, w)
+    np.testing.assert_allclose(res["beta"], u / info, rtol=1e-8)
+    np.testing.assert_allclose(res["std_error"], 1 / np.sqrt(info), rtol=1e-8)
+
+
+@pytest.mark.parametrize("family", ["logistic", "poisson"])
+@pytest.mark.parametrize("test", ["lr", "score"])
+def test_constant_features_score_zero_and_nothing_is_nan(rng, family, test):
+    n = 120
+    raw = rng.integers(0, 3, (n, 8)).astype(np.int8)
+    raw[:, 2] = 1  # constant
+    raw[:, 5] = -128  # all missing
+    raw[: n // 2, 6] = -128  # constant among the observed values
+    raw[n // 2 :, 6] = 2
+    y = (rng.random(n) < 0.5).astype(float) if family == "logistic" else rng.poisson(2, n) * 1.0
+    prepare, statistics, _ = FAMILIES[family]
+    res = statistics(prepare_block(raw, 0), prepare(y, test=test))
+    dead = np.array([2, 5, 6])
+    # common practice: a feature without variation carries no evidence (score 0, p-value 1)
+    assert np.all(res["score"][dead] == 0) and np.all(res["p_value"][dead] == 1)
+    assert np.all(res["beta"][dead] == 0) and np.all(res["degenerate"][dead])
+    assert not res["degenerate"][[0, 1, 3, 4, 7]].any()
+    for key, val in res.items():
+        assert not np.isnan(np.asarray(val, dtype=float)).any(), key
+
+
+def test_separating_feature_is_flagged(rng):
+    n = 200
+    y = (rng.random(n) < 0.5).astype(float)
+    X = rng.standard_normal((n, 5))
+    X[:, 1] = y + 0.1 * rng.random(n)  # complete separation: x > 1 exactly when y = 1
+    X[:, 3] = np.where(
+        y == 1, rng.integers(1, 3, n), rng.integers(0, 2, n)
+    )  # quasi-complete (x = 1 both)
+    res = logistic_statistics(prepare_block(X, 0), prepare_logistic(y))
+    # Albert & Anderson (1984): with (quasi-)complete separation the MLE does not exist (|beta| -> inf)
+    assert res["separated"][[1, 3]].all()
+    assert not res["separated"][[0, 2, 4]].any()
+    assert np.all(np.isfinite(res["beta"])) and np.all(np.isfinite(res["lr_chi2"]))
+
+
+def test_non_convergence_is_reported_not_raised(rng):
+    X, Z, offset = _design(rng, n=150, p=10)
+    X[:, 0] *= 4.0
+    y = _outcome("logistic", rng, X, Z, offset)
+    res = logistic_statistics(prepare_block(X, 0), prepare_logistic(y, max_iter=1))
+    assert not res["converged"].all()
+    assert np.all(res["n_iter"] <= 1)
+    for key in ("beta", "std_error", "lr_chi2", "p_value", "score"):
+        assert np.all(np.isfinite(res[key])), key
+
+
+@pytest.mark.parametrize("family", ["logistic", "poisson"])
+def test_true_signal_ranks_first(rng, family):
+    # Fan & Song (2010): the marginal likelihood reduction ranks an active feature above the noise
+    n, p = 300, 500
+    X = rng.standard_normal((n, p))
+    eta = 1.0 * X[:, 123] - (0.5 if family == "logistic" else 0.0)
+    y = (
+        (rng.random(n) < 1 / (1 + np.exp(-eta))) * 1.0
+        if family == "logistic"
+        else rng.poisson(np.exp(eta)) * 1.0
+    )
+    prepare, statistics, _ = FAMILIES[family]
+    for test in ("lr", "score"):
+        res = statistics(prepare_block(X, 0), prepare(y, test=test))
+        assert np.argmax(res["score"]) == 123
+        assert res["p_value"][123] < 1e-6
+
+
+def test_offset_mode_lr_is_at_most_the_joint_lr(rng):
+    # Same null, smaller alternative: the offset-mode likelihood ratio cannot exceed the joint one.
+    X, Z, offset = _design(rng)
+    X[:, 0] += 0.8 * Z[:, 0]  # a feature correlated with a covariate
+    y = _outcome("logistic", rng, X, Z, offset)
+    block = prepare_block(X, 0)
+    fixed = logistic_statistics(block, prepare_logistic(y, Z))["lr_chi2"]
+    joint = logistic_statistics(block, prepare_logistic(y, Z, covariate_mode="joint"))["lr_chi2"]
+    assert np.all(fixed <= joint + 1e-8)
+
+
+@pytest.mark.parametrize(
+    ("kwargs", "message"),
+    [
+        ({"y": np.array([0.0, 1.0, 2.0])}, "lie in"),
+        ({"y": np.zeros((3, 2))}, "1-D"),
+        ({"y": np.array([0.0, 1.0, 1.0]), "offset": np.zeros(4)}, "offset"),
+        ({"y": np.array([0.0, 1.0, 1.0]), "covariates": np.zeros((4, 1))}, "covariates"),
+        ({"y": np.array([0.0, 1.0, 1.0]), "covariate_mode": "both"}, "covariate_mode"),
+        ({"y": np.array([0.0, 1.0, 1.0]), "test": "wald"}, "test"),
+    ],
+)
+def test_bad_input_raises_a_clear_error(kwargs, message):
+    with pytest.raises(ValueError, match=message):
+        prepare_logistic(**kwargs)
+
+
+def test_poisson_rejects_negative_counts_and_block_size_mismatch(rng):
+    with pytest.raises(ValueError, match="non-negative"):
+        prepare_poisson(np.array([1.0, -1.0, 2.0]))
+    st = prepare_poisson(rng.poisson(1.0, 50) + 1.0)
+    with pytest.raises(ValueError, match="samples"):
+        poisson_statistics(prepare_block(rng.standard_normal((40, 3)), 0), st)
+    with pytest.raises(ValueError, match="logistic state"):
+        logistic_statistics(prepare_block(rng.standard_normal((50, 3)), 0), st)
+
+
+def test_covariates_that_separate_the_outcome_are_refused(rng):
+    y = (rng.random(80) < 0.5).astype(float)
+    with pytest.raises(ValueError, match="separate"):
+        prepare_logistic(y, covariates=y[:, None] + 0.01 * rng.random((80, 1)))
