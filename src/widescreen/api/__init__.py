@@ -3,3 +3,7 @@
 from ._selector import ScreeningSelector
 
 __all__ = ["ScreeningSelector"]
+
+from ._model import IterativeScreeningModel
+
+__all__ += ["IterativeScreeningModel"]

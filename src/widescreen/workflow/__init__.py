@@ -27,3 +27,29 @@ __all__ = [
     "read_outcome_table",
     "screen",
 ]
+
+from ._iterate import IterateConfig, IterativeResult, iterate
+from ._run import run
+from ._split import fetch_prepared, intersect_ranked, split_halves
+from ._thresholds import (
+    ThresholdRule,
+    bh_cutoff,
+    bh_cutoff_blocks,
+    bonferroni_cutoff,
+    permutation_cutoff,
+)
+
+__all__ += [
+    "IterateConfig",
+    "IterativeResult",
+    "ThresholdRule",
+    "bh_cutoff",
+    "bh_cutoff_blocks",
+    "bonferroni_cutoff",
+    "fetch_prepared",
+    "intersect_ranked",
+    "iterate",
+    "permutation_cutoff",
+    "run",
+    "split_halves",
+]

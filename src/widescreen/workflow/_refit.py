@@ -1,0 +1,215 @@
+"""The penalised refit of one iteration: fit on the union of the selected set and the new candidates.
+
+The fit sees the union's imputed, centred values (kept by the passes), the covariates unpenalised and the
+family's loss; the penalty level is tuned along the path by the chosen criterion. A fitted model is
+recorded in the manifest as plain numbers (floats round-trip exactly through JSON), so a resumed run
+reuses it bit for bit instead of refitting.
+"""
+
+from __future__ import annotations
+
+import time
+from dataclasses import dataclass
+
+import numpy as np
+import sklearn
+from dask.base import tokenize
+
+from ..fit import fit_path, select_model
+from ._problem import Problem
+
+
+@dataclass(frozen=True)
+class FitSettings:
+    """How the refit is done.
+
+    Attributes
+    ----------
+    penalty : str
+        ``"scad"``, ``"mcp"``, ``"lasso"``, ``"enet"``, ``"adaptive_lasso"`` or ``"dantzig"``.
+    criterion : {"ebic", "bic", "cv"}
+    ebic_gamma : float, optional
+    cv : int
+        Folds for ``"cv"``.
+    n_lambda : int
+    seed : int
+        Seed of the fold assignment.
+    """
+
+    penalty: str = "scad"
+    criterion: str = "ebic"
+    ebic_gamma: float | None = None
+    cv: int = 5
+    n_lambda: int = 100
+    seed: int = 0
+
+
+@dataclass(frozen=True)
+class FittedModel:
+    """One iteration's fitted model.
+
+    Attributes
+    ----------
+    union : ndarray of int of shape (u,)
+        Store indices of the features fitted (increasing).
+    index : ndarray of int of shape (k,)
+        Store indices of the selected features (non-zero coefficients), increasing.
+    coef : ndarray of shape (k,)
+        Their coefficients (original scale: per unit of the feature).
+    intercept : float
+        Intercept for the centred features (see `IterativeResult.intercept` for raw features).
+    covariate_coef : ndarray of shape (q,)
+    lambda_ : float or None
+        The chosen penalty level (None for the empty model).
+    criterion_value : float
+        The tuning criterion at that level.
+    seconds : float
+    path : dict, optional
+        The tuning path of the fit, for the report: ``lambdas``, ``coefs`` (L x u), ``features``,
+        ``criterion``, ``criterion_values`` and the chosen ``lambda``.
+    """
+
+    union: np.ndarray
+    index: np.ndarray
+    coef: np.ndarray
+    intercept: float
+    covariate_coef: np.ndarray
+    lambda_: float | None
+    criterion_value: float
+    seconds: float = 0.0
+    path: dict | None = None
+
+    def linear_predictor(self, values: np.ndarray, covariates: np.ndarray | None) -> np.ndarray:
+        """Linear predictor of shape (n,) from the selected features' centred values (n, k)."""
+        eta = self.intercept + values @ self.coef
+        if covariates is not None and self.covariate_coef.size:
+            eta = eta + covariates @ self.covariate_coef
+        return eta
+
+    def record(self) -> dict:
+        return {
+            "union": self.union.tolist(),
+            "index": self.index.tolist(),
+            "coef": [float(c) for c in self.coef],
+            "intercept": float(self.intercept),
+            "covariate_coef": [float(c) for c in self.covariate_coef],
+            "lambda": None if self.lambda_ is None else float(self.lambda_),
+            "criterion_value": float(self.criterion_value),
+            "seconds": round(self.seconds, 3),
+            "path": self.path,
+        }
+
+    @classmethod
+    def from_record(cls, r: dict) -> FittedModel:
+        return cls(
+            union=np.asarray(r["union"], dtype=np.int64),
+            index=np.asarray(r["index"], dtype=np.int64),
+            coef=np.asarray(r["coef"], dtype=np.float64),
+            intercept=float(r["intercept"]),
+            covariate_coef=np.asarray(r["covariate_coef"], dtype=np.float64),
+            lambda_=None if r["lambda"] is None else float(r["lambda"]),
+            criterion_value=float(r["criterion_value"]),
+            seconds=float(r.get("seconds", 0.0)),
+            path=r.get("path"),
+        )
+
+
+def fit_response(problem: Problem) -> np.ndarray:
+    """The response as the fit wants it: (n,), or (n, 2) of (time, event) for the Cox loss."""
+    resp = problem.response
+    if problem.family.loss == "cox":
+        return np.column_stack([resp.y, resp.event])
+    return resp.y
+
+
+def fit_token(problem: Problem, union: np.ndarray, settings: FitSettings, n_candidates: int) -> str:
+    """Deterministic name of a refit from its inputs (the data, the union, the settings)."""
+    resp = problem.response
+    return tokenize(
+        problem.source.token(),
+        problem.rows,
+        resp.y,
+        resp.event,
+        problem.covariates,
+        problem.family.loss,
+        np.asarray(union, dtype=np.int64),
+        settings,
+        int(n_candidates),
+    )
+
+
+def fit_union(
+    problem: Problem,
+    union: np.ndarray,
+    values: np.ndarray,
+    settings: FitSettings,
+    n_candidates: int,
+) -> FittedModel:
+    """Fit the penalised model on the union and choose the penalty level.
+
+    Parameters
+    ----------
+    problem : Problem
+    union : ndarray of int of shape (u,)
+        Store indices, increasing.
+    values : ndarray of shape (n, u)
+        Their imputed, centred values on the analysed samples.
+    settings : FitSettings
+    n_candidates : int
+        Features the model was chosen from (those screened), for the EBIC.
+    """
+    t0 = time.perf_counter()
+    y = fit_response(problem)
+    n = problem.n
+    Z = problem.covariates
+    empty = union.size == 0
+    # An empty union still needs the intercept and covariates: one constant column never enters.
+    X = np.zeros((n, 1)) if empty else values
+    # The fit validates its own inputs; scikit-learn's per-call parameter checks in its inner solver
+    # would otherwise cost about as much as the solves on a shortlist this small.
+    with sklearn.config_context(skip_parameter_validation=True):
+        path = fit_path(
+            X,
+            y,
+            penalty="lasso" if empty else settings.penalty,
+            loss=problem.family.loss,
+            unpenalized=Z,
+            n_lambda=1 if empty else settings.n_lambda,
+        )
+        best = select_model(
+            path,
+            settings.criterion if not empty or settings.criterion != "cv" else "bic",
+            n_candidates=max(int(n_candidates), X.shape[1]),
+            gamma=settings.ebic_gamma,
+            cv=settings.cv,
+            seed=settings.seed,
+        )
+    support = np.empty(0, dtype=np.int64) if empty else best.support
+    return FittedModel(
+        union=np.asarray(union, dtype=np.int64),
+        index=np.asarray(union, dtype=np.int64)[support],
+        coef=np.asarray(best.coef[support], dtype=np.float64),
+        intercept=float(best.intercept),
+        covariate_coef=np.asarray(best.unpenalized_coef, dtype=np.float64),
+        lambda_=None if empty else float(best.lambda_),
+        criterion_value=float(best.criterion_values[best.index]),
+        seconds=time.perf_counter() - t0,
+        path=None
+        if empty
+        else {
+            "criterion": best.criterion,
+            "lambda": float(best.lambda_),
+            "lambdas": _plain(best.lambdas),
+            "criterion_values": _plain(best.criterion_values),
+            "coefs": [_plain(row) for row in best.coefs],
+            "features": [str(f) for f in problem.feature_ids(union)],
+        },
+    )
+
+
+def _plain(a) -> list:
+    """Floats for JSON (which has no inf or NaN: those become None)."""
+    return [float(v) if np.isfinite(v) else None for v in np.asarray(a, dtype=np.float64)]
+
+
+__all__ = ["FitSettings", "FittedModel", "fit_response", "fit_token", "fit_union"]
