@@ -121,7 +121,9 @@ def _coefficients(
     u = rng.random(s) < 0.4
     beta = np.where(u, -1.0, 1.0) * (a + np.abs(rng.standard_normal(s)))
     if cfg.outcome != "continuous":
-        beta = beta / max(np.abs(beta).max(), 1e-12)  # keep GLM linear predictors in a sane range
+        # Keep GLM linear predictors in a sane range: |beta| <= 2 on the logit scale, <= 1 on log scales.
+        top = 2.0 if cfg.outcome == "binary" else 1.0
+        beta = top * beta / max(np.abs(beta).max(), 1e-12)
     return beta, ("true",) * s
 
 

@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import functools
+import os
 import sys
 from pathlib import Path
 from typing import Annotated
@@ -58,6 +59,15 @@ def friendly(fn):
         except _expected_errors() as exc:
             typer.echo(f"error: {exc}", err=True)
             raise typer.Exit(code=1) from None
+        except Exception as exc:
+            if os.environ.get("WIDESCREEN_DEBUG"):
+                raise
+            typer.echo(
+                f"error: unexpected {type(exc).__name__}: {exc} "
+                "(a bug: rerun with WIDESCREEN_DEBUG=1 for the traceback and report it)",
+                err=True,
+            )
+            raise typer.Exit(code=2) from None
 
     return wrapper
 
@@ -109,7 +119,13 @@ def screen_cmd(
     out: Annotated[
         Path, typer.Option("--out", help="Run folder for the results (resumed if it exists).")
     ],
-    family: Annotated[str, typer.Option("--family", help="Outcome family: linear, ...")] = "linear",
+    family: Annotated[
+        str,
+        typer.Option(
+            "--family",
+            help="Outcome family: linear, logistic, poisson, cox, rank, rank-utility, dcor, spline, holp.",
+        ),
+    ] = "linear",
     covariates: Annotated[
         str | None, typer.Option("--covariates", help="Comma-separated columns to adjust for.")
     ] = None,

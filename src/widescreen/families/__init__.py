@@ -1,11 +1,30 @@
 """Outcome families: each supplies a screening kernel, a refit loss and a conditioning rule."""
 
 from ._base import Family, Response
+from ._glm import CoxFamily, LogisticFamily, PoissonFamily
 from ._linear import LinearFamily
+from ._modelfree import (
+    DistanceCorrelationFamily,
+    HolpFamily,
+    RankFamily,
+    RankUtilityFamily,
+    SplineFamily,
+)
 
 #: The registry: the names users give to ``--family``.
 FAMILIES: dict[str, Family] = {
-    LinearFamily.name: LinearFamily(),
+    f.name: f
+    for f in (
+        LinearFamily(),
+        LogisticFamily(),
+        PoissonFamily(),
+        CoxFamily(),
+        RankFamily(),
+        RankUtilityFamily(),
+        DistanceCorrelationFamily(),
+        SplineFamily(),
+        HolpFamily(),
+    )
 }
 
 
@@ -17,4 +36,18 @@ def get_family(name: str) -> Family:
         raise ValueError(f"unknown family {name!r}; choose one of: {', '.join(FAMILIES)}") from None
 
 
-__all__ = ["FAMILIES", "Family", "LinearFamily", "Response", "get_family"]
+__all__ = [
+    "FAMILIES",
+    "CoxFamily",
+    "DistanceCorrelationFamily",
+    "Family",
+    "HolpFamily",
+    "LinearFamily",
+    "LogisticFamily",
+    "PoissonFamily",
+    "RankFamily",
+    "RankUtilityFamily",
+    "Response",
+    "SplineFamily",
+    "get_family",
+]

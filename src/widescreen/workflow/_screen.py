@@ -91,9 +91,22 @@ def dataset_record(problem: Problem) -> dict:
 
 
 def screen_spec(
-    problem: Problem, config: ScreenConfig, keep: int, name: str = "screen", **prepare
+    problem: Problem,
+    config: ScreenConfig,
+    keep: int,
+    name: str = "screen",
+    *,
+    scheduler=None,
+    **prepare,
 ) -> PassSpec:
+    """The pass of a screen: the family's kernel and response state (after a Gram pass for HOLP)."""
     fam = problem.family
+    if getattr(fam, "needs_gram", False):
+        from ._gram import gram_pass
+
+        prepare["gram"] = gram_pass(
+            problem.source, problem.rows, scheduler=scheduler, sub_block=config.sub_block
+        )
     state = fam.prepare(problem.response, problem.covariates, **prepare)
     return PassSpec(
         name=name,
@@ -192,7 +205,7 @@ def screen(
         if problem.response.mapping:
             session.manifest["response_coding"] = problem.response.mapping
         session.manifest["shortlist_size"] = keep
-        spec = screen_spec(problem, config, listed)
+        spec = screen_spec(problem, config, listed, scheduler=scheduler)
         result = run_pass(problem.source, spec, session.run, scheduler=scheduler, progress=progress)
         session.record_pass("screen", result.summary())
         top = result.topk
