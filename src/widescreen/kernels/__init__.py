@@ -6,6 +6,56 @@ maps one `widescreen.store.Block` to a dict of per-feature arrays of shape (widt
 ``score`` (larger is stronger; 0 for a constant feature) and, where a test exists, ``p_value``.
 """
 
+from ._cox import CoxState, cox_statistics, prepare_cox
+from ._dcor import DcorState, dcor_statistics, prepare_dcor
+from ._glm import (
+    LogisticState,
+    PoissonState,
+    logistic_statistics,
+    poisson_statistics,
+    prepare_logistic,
+    prepare_poisson,
+)
+from ._holp import HolpState, check_holp_size, holp_gram, holp_statistics, prepare_holp
 from ._linear import LinearState, linear_statistics, prepare_linear
+from ._rank import (
+    RankUtilityState,
+    SpearmanState,
+    prepare_rank_utility,
+    prepare_spearman,
+    rank_utility_statistics,
+    spearman_statistics,
+)
+from ._spline import SplineState, prepare_spline, spline_statistics
 
-__all__ = ["LinearState", "linear_statistics", "prepare_linear"]
+__all__ = [
+    "CoxState",
+    "DcorState",
+    "HolpState",
+    "LinearState",
+    "LogisticState",
+    "PoissonState",
+    "RankUtilityState",
+    "SpearmanState",
+    "SplineState",
+    "check_holp_size",
+    "cox_statistics",
+    "dcor_statistics",
+    "holp_gram",
+    "holp_statistics",
+    "linear_statistics",
+    "logistic_statistics",
+    "poisson_statistics",
+    "prepare_cox",
+    "prepare_dcor",
+    "prepare_holp",
+    "prepare_linear",
+    "prepare_logistic",
+    "prepare_poisson",
+    "prepare_rank_utility",
+    "prepare_spearman",
+    "prepare_spline",
+    "rank_utility_statistics",
+    "spearman_statistics",
+    "spline_statistics",
+]
