@@ -8,7 +8,7 @@ least-squares fit y ~ 1 + Z + x_j, which is what the tests check against.
 
 from __future__ import annotations
 
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 
 import numpy as np
 from scipy import special
@@ -29,11 +29,19 @@ class LinearState:
         Residual responses (the real one first, then permuted copies), each scaled to unit norm.
     df : int
         Residual degrees of freedom of the t statistic.
+    lhs_t : ndarray of shape (m + q, n)
+        ``[y, basis]`` transposed and C-contiguous: the left factor of the block's one cross-product.
     """
 
     basis: np.ndarray
     y: np.ndarray
     df: int
+    lhs_t: np.ndarray = field(default=None, repr=False, compare=False)  # type: ignore[assignment]
+
+    def __post_init__(self) -> None:
+        if self.lhs_t is None:
+            lhs = np.hstack([self.y, self.basis]) if self.basis.shape[1] else self.y
+            object.__setattr__(self, "lhs_t", np.ascontiguousarray(lhs.T, dtype=np.float64))
 
     @property
     def n_nulls(self) -> int:
@@ -109,12 +117,11 @@ def linear_statistics(block: Block, state: LinearState) -> dict[str, np.ndarray]
         ``score`` = |correlation|; and ``null_score`` of shape (width, m - 1) when permuted copies
         of the response were given.
     """
-    x = block.values
     m = state.y.shape[1]
     q = state.basis.shape[1]
-    # One matrix product gives the cross-products with the responses and with the basis.
-    lhs = np.hstack([state.y, state.basis]) if q else state.y
-    cross = lhs.T @ x  # (m + q, width)
+    # One product gives the cross-products with the responses and with the basis; the block computes
+    # it from its stored values, without writing out the centred float64 block.
+    cross = block.cross(state.lhs_t)  # (m + q, width)
     ss = block.sumsq.copy()
     if q:
         ss -= np.einsum("ij,ij->j", cross[m:], cross[m:])

@@ -8,13 +8,15 @@ straight into a buffer kept per thread. Any other store goes through zarr's own 
 
 from __future__ import annotations
 
+import os
 import threading
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from pathlib import Path
 
 import numcodecs.blosc as blosc
 import numpy as np
 
+from . import _accel
 from ._format import Dataset, StoreError
 
 # Decoding runs inside Dask worker threads; Blosc's own thread pool would oversubscribe the cores.
@@ -81,6 +83,25 @@ def _scratch(shape: tuple[int, int], dtype: np.dtype, name: str) -> np.ndarray:
     return buf
 
 
+def _claim_values(shape: tuple[int, int]) -> tuple[np.ndarray, tuple[int, int]]:
+    """The per-thread float64 values buffer and a claim that is void once another block takes it."""
+    buf = _scratch(shape, np.float64, "values")
+    _local.claims = getattr(_local, "claims", 0) + 1
+    return buf, (threading.get_ident(), _local.claims)
+
+
+def _claim_valid(claim: tuple[int, int]) -> bool:
+    return claim == (threading.get_ident(), getattr(_local, "claims", 0))
+
+
+def _source_buffer(size: int) -> memoryview:
+    """A per-thread byte buffer of at least ``size`` bytes for the compressed chunk file."""
+    buf = getattr(_local, "src", None)
+    if buf is None or len(buf) < size:
+        buf = _local.src = bytearray(max(size, int(1.25 * len(buf or b""))))
+    return memoryview(buf)[:size]
+
+
 def read_block(ds: Dataset, col_chunk: int, layout: ChunkLayout | None = None) -> np.ndarray:
     """Read one column of chunks of X (all samples, the features of chunk column ``col_chunk``).
 
@@ -97,6 +118,7 @@ def read_block(ds: Dataset, col_chunk: int, layout: ChunkLayout | None = None) -
     n_row_chunks = -(-layout.n_rows // layout.chunk_rows)
     if not layout.fast:
         return np.asarray(ds.X[:, start:stop])
+    # zarr stores edge chunks at the full chunk shape, so every chunk decodes to the same size.
     buf = _scratch((n_row_chunks * layout.chunk_rows, layout.chunk_cols), layout.dtype, "block")
     for r in range(n_row_chunks):
         path = layout.root / "c" / str(r) / str(col_chunk)
@@ -108,62 +130,132 @@ def read_block(ds: Dataset, col_chunk: int, layout: ChunkLayout | None = None) -
 def _decode_chunk(path: Path, out: np.ndarray, start: int, stop: int) -> None:
     where = f"chunk {path.parent.name}/{path.name} of {path.parent.parent.parent} (features {start}..{stop - 1})"
     try:
-        raw = path.read_bytes()
+        # Read into a reused buffer: a fresh bytes object per chunk costs an allocation and page faults.
+        with open(path, "rb", buffering=0) as fh:
+            size = os.fstat(fh.fileno()).st_size
+            raw = _source_buffer(size)
+            got = fh.readinto(raw)
     except FileNotFoundError:
         raise ChunkError(f"missing {where}: the store is damaged; import it again") from None
     try:
         # Blosc header: bytes 4-8 hold the decoded size, 12-16 the frame size (little endian).
-        if len(raw) < 16:
-            raise ValueError(f"{len(raw)} bytes is shorter than a Blosc header")
+        if got < 16:
+            raise ValueError(f"{got} bytes is shorter than a Blosc header")
         nbytes = int.from_bytes(raw[4:8], "little")
         cbytes = int.from_bytes(raw[12:16], "little")
-        if cbytes != len(raw):
-            raise ValueError(f"truncated: {len(raw)} bytes on disk, the header says {cbytes}")
+        if cbytes != got:
+            raise ValueError(f"truncated: {got} bytes on disk, the header says {cbytes}")
         if nbytes != out.nbytes:
             raise ValueError(f"decodes to {nbytes} bytes, expected {out.nbytes}")
-        blosc.decompress(raw, out)
+        blosc.decompress(raw[:got], out)
     except Exception as exc:
         raise ChunkError(f"corrupt {where}: {exc}") from None
 
 
-@dataclass(frozen=True)
+@dataclass(frozen=True, eq=False)
 class Block:
     """One feature block ready for a kernel.
+
+    The per-feature summaries are computed when the block is made; the float64 values only when asked
+    for (`values`), since a kernel that needs cross-products alone gets them from `cross` straight from
+    the stored values.
 
     Attributes
     ----------
     start : int
         Index of the first feature in the store.
-    values : ndarray of shape (n_samples, width), float64
-        Missing values imputed by the feature's observed mean, then every column centred
-        (so imputed entries are exactly 0).
     mean : ndarray of shape (width,)
         Observed mean of each feature before centring.
     sumsq : ndarray of shape (width,)
-        Sum of squares of the centred column.
+        Sum of squares of the centred column (imputed entries contribute 0).
     missing_rate : ndarray of shape (width,)
     constant : ndarray of shape (width,), bool
         No variation among observed values; kernels must give such a feature score 0.
+    raw : ndarray of shape (n_samples, width)
+        The stored values of the analysed samples (int8 with the -128 sentinel, or floats with NaN).
+        A view of a per-thread buffer, like `values`.
+    n_missing : ndarray of shape (width,), int64
     """
 
     start: int
-    values: np.ndarray
     mean: np.ndarray
     sumsq: np.ndarray
     missing_rate: np.ndarray
     constant: np.ndarray
+    raw: np.ndarray = field(repr=False)
+    n_missing: np.ndarray = field(repr=False)
+    _memo: dict = field(default_factory=dict, repr=False)
 
     @property
     def width(self) -> int:
-        return self.values.shape[1]
+        return self.mean.shape[0]
+
+    @property
+    def n_samples(self) -> int:
+        return self.raw.shape[0]
 
     @property
     def stop(self) -> int:
         return self.start + self.width
 
+    @property
+    def any_missing(self) -> bool:
+        return bool(self.n_missing.any())
+
+    @property
+    def values(self) -> np.ndarray:
+        """ndarray of shape (n_samples, width), float64: missing values imputed by the feature's
+        observed mean, then every column centred (so imputed entries are exactly 0).
+
+        A per-thread reused buffer: valid until the same thread prepares its next block's values.
+        """
+        x = self._cached_values()
+        if x is None:
+            x, claim = _claim_values(self.raw.shape)
+            _accel.centre_into(self.raw, self.mean, x)
+            self._memo["values"] = (x, claim)
+        return x
+
+    def _cached_values(self) -> np.ndarray | None:
+        held = self._memo.get("values")
+        # The buffer is shared by the thread's blocks: use it only if no later block has taken it.
+        return held[0] if held is not None and _claim_valid(held[1]) else None
+
+    def cross(self, lhs_t: np.ndarray) -> np.ndarray:
+        """``lhs_t @ values`` of shape (m, width), computed without writing the values out.
+
+        Parameters
+        ----------
+        lhs_t : ndarray of shape (m, n_samples), float64
+        """
+        lhs_t = np.ascontiguousarray(lhs_t, dtype=np.float64)
+        if lhs_t.ndim != 2 or lhs_t.shape[1] != self.n_samples:
+            raise ValueError(
+                f"block at feature {self.start} has {self.n_samples} samples; "
+                f"the left factor has shape {lhs_t.shape}"
+            )
+        x = self._cached_values()
+        if x is not None:
+            return lhs_t @ x
+        tile = _scratch((self.n_samples, _accel.TILE), np.float64, "tile")
+        return _accel.cross(self.raw, self.mean, lhs_t, self.any_missing, tile)
+
+    def columns(self, index: np.ndarray) -> np.ndarray:
+        """Imputed, centred float64 values of the given columns, of shape (n_samples, len(index)).
+
+        A new array (not a per-thread buffer), element for element equal to ``values[:, index]``.
+        """
+        index = np.asarray(index, dtype=np.intp)
+        out = np.empty((self.n_samples, index.size), np.float64, order="F")
+        if index.size:
+            tmp = np.empty((self.n_samples, index.size), np.float64)
+            _accel.centre_into(self.raw[:, index], self.mean[index], tmp)
+            out[:] = tmp
+        return out
+
 
 def prepare_block(raw: np.ndarray, start: int, rows: np.ndarray | None = None) -> Block:
-    """Turn raw stored values into an imputed, centred float64 block.
+    """Summarise raw stored values into a `Block`: missing rate, observed mean, centred sum of squares.
 
     Parameters
     ----------
@@ -174,37 +266,51 @@ def prepare_block(raw: np.ndarray, start: int, rows: np.ndarray | None = None) -
     rows : ndarray of int, optional
         Samples to keep (the outcome table's join), in the order wanted; all when None.
     """
-    from ._format import MISSING_INT8
-
+    raw = np.asarray(raw)
+    if raw.ndim != 2:
+        raise ValueError(
+            f"a block must be 2-dimensional (samples, features); got shape {raw.shape}"
+        )
+    if raw.dtype != np.int8 and raw.dtype not in (np.float32, np.float64):
+        if raw.dtype.kind not in "biuf":
+            raise ValueError(f"block at feature {start}: values must be numeric, not {raw.dtype}")
+        raw = raw.astype(np.float64)
     if rows is not None:
-        raw = raw[rows]
-    n, width = raw.shape
-    x = _scratch((n, width), np.float64, "values")
-    np.copyto(x, raw, casting="unsafe")
-    if raw.dtype == np.int8:
-        mask = raw == MISSING_INT8
-    else:
-        mask = np.isnan(x)
-    n_missing = mask.sum(axis=0)
-    any_missing = bool(n_missing.any())
-    if any_missing:
-        x[mask] = 0.0
+        rows = np.asarray(rows, dtype=np.intp)
+        if rows.size and (rows.min() < 0 or rows.max() >= raw.shape[0]):
+            raise IndexError(f"block at feature {start}: sample rows outside 0..{raw.shape[0] - 1}")
+        sel = _scratch((rows.size, raw.shape[1]), raw.dtype, "rows")
+        raw = np.take(raw, rows, axis=0, out=sel, mode="clip")
+    elif raw.dtype != np.int8 and not raw.flags.c_contiguous:
+        # A float sub-block sliced from a chunk has rows of a few KiB at a stride of a power of two:
+        # streaming such rows runs at a third of the speed of contiguous ones, and the block is read
+        # twice more (moments, cross-products), so one contiguous copy pays for itself.
+        sel = _scratch(raw.shape, raw.dtype, "rows")
+        np.copyto(sel, raw)
+        raw = sel
+    n = raw.shape[0]
+    memo: dict = {}
+    # The numpy route for floats computes the centred values on the way: keep them.
+    values, claim = (
+        (None, None) if raw.dtype == np.int8 or _accel.use_numba else _claim_values(raw.shape)
+    )
+    n_missing, mean, sumsq, exact_zero, filled = _accel.moments(raw, values)
+    if filled:
+        memo["values"] = (values, claim)
     n_obs = n - n_missing
-    with np.errstate(invalid="ignore", divide="ignore"):
-        mean = x.sum(axis=0) / n_obs
-    mean = np.where(n_obs > 0, mean, 0.0)
-    x -= mean
-    if any_missing:
-        x[mask] = 0.0
-    sumsq = np.einsum("ij,ij->j", x, x)
-    # A column is constant when its spread is below rounding noise relative to its level.
-    scale = np.maximum(np.abs(mean), 1.0)
-    constant = (n_obs < 2) | (sumsq <= (1e-12 * scale) ** 2 * np.maximum(n_obs, 1))
+    if raw.dtype == np.int8:
+        constant = exact_zero | (n_obs < 2)
+    else:
+        # A column is constant when its spread is below rounding noise relative to its level.
+        scale = np.maximum(np.abs(mean), 1.0)
+        constant = (n_obs < 2) | (sumsq <= (1e-12 * scale) ** 2 * np.maximum(n_obs, 1))
     return Block(
         start=start,
-        values=x,
         mean=mean,
         sumsq=sumsq,
-        missing_rate=n_missing / n,
+        missing_rate=n_missing / max(n, 1),
         constant=constant,
+        raw=raw,
+        n_missing=n_missing,
+        _memo=memo,
     )
