@@ -52,7 +52,10 @@ def lambda_gc(p: np.ndarray) -> float:
     p = p[np.isfinite(p)]
     if p.size == 0:
         return float("nan")
-    return float(np.median(chi2_from_p(p)) / chi2_1_median())
+    # chi2.isf is decreasing, so only the middle p-values need transforming (see lambda_from_middle).
+    lo, hi = (p.size - 1) // 2, p.size // 2
+    part = np.partition(p, [lo, hi])
+    return lambda_from_middle(part[lo], part[hi])
 
 
 def lambda_from_middle(p_low: float, p_high: float) -> float:
