@@ -3,7 +3,7 @@
 Spearman
 --------
 Each feature and the response are replaced by their ranks (ties get the average rank) and correlated as in
-the linear kernel: ``rho``, its t statistic rho sqrt(df / (1 - rho^2)) with df = n - 2 (the usual large-sample
+the linear kernel (whose response state is reused): ``rho``, its t statistic rho sqrt(df / (1 - rho^2)) with df = n - 2 (the usual large-sample
 approximation) and the two-sided ``p_value``. With covariates Z, ``rho`` is the partial correlation of the
 ranks given [1, Z] (Z as given, not ranked) and df = n - 2 - rank(Z). Imputed entries of a feature share one
 tied rank, that of its observed mean.
@@ -23,9 +23,10 @@ from __future__ import annotations
 from dataclasses import dataclass
 
 import numpy as np
+from scipy import special
 
 from ..store._reader import Block
-from ._linear import LinearState, linear_statistics, prepare_linear
+from ._linear import LinearState, prepare_linear
 
 #: Features per tile: keeps the work arrays of the ranking sort and of the cumulative sums in cache.
 TILE = 128
@@ -69,19 +70,6 @@ def average_ranks(x: np.ndarray) -> np.ndarray:
     return out
 
 
-def _ranked_block(block: Block) -> Block:
-    ranks = average_ranks(block.values)
-    ranks -= 0.5 * (ranks.shape[0] + 1)
-    return Block(
-        start=block.start,
-        values=ranks,
-        mean=block.mean,
-        sumsq=np.einsum("ij,ij->j", ranks, ranks),
-        missing_rate=block.missing_rate,
-        constant=block.constant,
-    )
-
-
 @dataclass(frozen=True)
 class SpearmanState:
     """Response state of a Spearman pass: the linear state of the ranked response(s)."""
@@ -119,8 +107,36 @@ def spearman_statistics(block: Block, state: SpearmanState) -> dict[str, np.ndar
         ``rho``, ``t``, ``p_value`` (two-sided, t with n - 2 - q df), ``score`` = |rho|, ``degenerate``;
         and ``null_score`` of shape (width, m - 1) when permuted copies were given.
     """
-    out = linear_statistics(_ranked_block(block), state.linear)
-    out["rho"] = out.pop("correlation")
+    lin = state.linear
+    n = lin.y.shape[0]
+    if block.values.shape[0] != n:
+        raise ValueError(
+            f"the block has {block.values.shape[0]} samples but the response state {n}"
+        )
+    ranks = average_ranks(block.values)
+    ranks -= 0.5 * (n + 1)
+    sumsq = np.einsum("ij,ij->j", ranks, ranks)
+    m, q = lin.y.shape[1], lin.basis.shape[1]
+    # The linear kernel's computation on the ranks: one product with the responses and the basis.
+    cross = (np.hstack([lin.y, lin.basis]) if q else lin.y).T @ ranks
+    ss = sumsq - np.einsum("ij,ij->j", cross[m:], cross[m:]) if q else sumsq
+    degenerate = block.constant | (ss <= 1e-10 * np.maximum(sumsq, 1e-300))
+    r = np.where(degenerate, 0.0, cross[:m] / np.sqrt(np.where(degenerate, 1.0, ss)))
+    np.clip(r, -1.0, 1.0, out=r)
+    rho = r[0]
+    with np.errstate(divide="ignore", invalid="ignore"):
+        t = rho * np.sqrt(lin.df / np.maximum(1.0 - rho**2, 1e-300))
+    # Two-sided t tail through the regularised incomplete beta function.
+    p = np.where(degenerate, 1.0, special.betainc(0.5 * lin.df, 0.5, lin.df / (lin.df + t**2)))
+    out = {
+        "score": np.abs(rho),
+        "rho": rho,
+        "t": np.where(degenerate, 0.0, t),
+        "p_value": p,
+        "degenerate": degenerate,
+    }
+    if m > 1:
+        out["null_score"] = np.abs(r[1:]).T
     return out
 
 

@@ -41,7 +41,7 @@ from ..store._reader import Block
 from ._linear import _orthonormal_basis
 
 #: Features per tile: the basis of a tile, (n_basis + degree) arrays of shape (n, TILE), stays small.
-TILE = 256
+TILE = 128
 #: Relative eigenvalue below which a direction of the per-feature normal equations counts as absent.
 RANK_TOL = 1e-10
 
@@ -94,10 +94,11 @@ def prepare_spline(
     n_basis : int
         B-spline functions per feature (degrees of freedom of the fit with its intercept).
     degree : int
-        Polynomial degree of the splines (3: cubic).
+        Polynomial degree of the splines (3: cubic), at least 1.
     """
-    if not isinstance(degree, int | np.integer) or degree < 0:
-        raise ValueError(f"degree must be a non-negative int; got {degree!r}")
+    if not isinstance(degree, int | np.integer) or degree < 1:
+        # Degree 0 has no knot beyond the maximum, so the half-open spans would miss it.
+        raise ValueError(f"degree must be an int >= 1; got {degree!r}")
     if not isinstance(n_basis, int | np.integer) or n_basis < degree + 1:
         raise ValueError(f"n_basis must be an int >= degree + 1 = {degree + 1}; got {n_basis!r}")
     y = np.asarray(y, dtype=np.float64)
@@ -182,15 +183,20 @@ def bspline_basis(x: np.ndarray, knots: np.ndarray, degree: int) -> np.ndarray:
         nxt: list[np.ndarray | None] = []
         for q in range(K - 1 - d):
             acc = None
-            if B[q] is not None:
+            if B[q] is not None:  # (x - t_q) / (t_q+d - t_q) B_q,d-1
                 w1 = knots[q + d] - knots[q]
-                inv1 = np.divide(1.0, w1, out=np.zeros_like(w1), where=w1 > 0)
-                acc = (x - knots[q]) * inv1 * B[q]
-            if B[q + 1] is not None:
+                acc = np.subtract(x, knots[q])
+                acc *= np.divide(1.0, w1, out=np.zeros_like(w1), where=w1 > 0)
+                acc *= B[q]
+            if B[q + 1] is not None:  # (t_q+d+1 - x) / (t_q+d+1 - t_q+1) B_q+1,d-1
                 w2 = knots[q + d + 1] - knots[q + 1]
-                inv2 = np.divide(1.0, w2, out=np.zeros_like(w2), where=w2 > 0)
-                term = (knots[q + d + 1] - x) * inv2 * B[q + 1]
-                acc = term if acc is None else acc + term
+                term = np.subtract(knots[q + d + 1], x)
+                term *= np.divide(1.0, w2, out=np.zeros_like(w2), where=w2 > 0)
+                term *= B[q + 1]
+                if acc is None:
+                    acc = term
+                else:
+                    acc += term
             nxt.append(acc)
         B = nxt
     return np.stack([b if b is not None else np.zeros_like(x, dtype=np.float64) for b in B])
