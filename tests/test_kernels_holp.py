@@ -16,7 +16,9 @@ from widescreen.store._reader import prepare_block
 
 
 def _blocks(X, width):
-    return [prepare_block(X[:, a : a + width], start=a) for a in range(0, X.shape[1], width)]
+    # One block at a time, as a pass reads them: a block's buffers are reused by the next one.
+    for a in range(0, X.shape[1], width):
+        yield prepare_block(X[:, a : a + width], start=a)
 
 
 def _run(X, y, width=7, **kw):
