@@ -180,11 +180,19 @@ def store_annotations(manifest: dict, n_features: int, notes: list[str]):
 
 
 def find_path_record(obj) -> dict | None:
-    """The last record in the manifest that holds a lambda path (a dict with a ``lambdas`` list)."""
+    """The last record in the manifest that holds a lambda path.
+
+    That is a dict with a ``lambdas`` list and beside it ``coefs`` or ``criterion_values`` (a bare
+    list of lambdas, such as a configured grid, is not a path).
+    """
     found = None
     if isinstance(obj, dict):
         lam = obj.get("lambdas")
-        if isinstance(lam, list) and len(lam) >= 2:
+        has_path = any(
+            isinstance(obj.get(k), list)
+            for k in ("coefs", "coef_path", "criterion_values", "criterion_path")
+        )
+        if isinstance(lam, list) and len(lam) >= 2 and has_path:
             found = obj
         for v in obj.values():
             found = find_path_record(v) or found
