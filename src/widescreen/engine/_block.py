@@ -14,10 +14,10 @@ import os
 import socket
 import time
 from concurrent.futures import ThreadPoolExecutor
+from dataclasses import replace
 from pathlib import Path
 
 import numpy as np
-import zarr
 
 from ..store._reader import prepare_block
 from ._runfolder import atomic_write
@@ -79,8 +79,10 @@ def process_block(source: BlockSource, spec: PassSpec, i: int, out_dir: str | No
         cols["missing_rate"].append(block.missing_rate)
         cols["mean"].append(block.mean)
         cols["filtered"].append(filtered.astype(np.float64))
-        values = block.values if spec.keep_values else None
-        part = block_topk(spec.keep, start + a, score, values, eligible, out.get("null_score"))
+        part = block_topk(spec.keep, start + a, score, None, eligible, out.get("null_score"))
+        if spec.keep_values:
+            # Only the kept columns are materialised (the block's float64 values are lazy).
+            part = replace(part, values=block.columns(part.index - (start + a)))
         best = merge_all([best, part], spec.keep, part.null_max.size)
     stats = {c: np.concatenate(v) for c, v in cols.items()}
     record = {
@@ -96,16 +98,43 @@ def process_block(source: BlockSource, spec: PassSpec, i: int, out_dir: str | No
     if out_dir is None:
         record["stats"] = stats
         return record
-    group = zarr.open_group(Path(out_dir) / "stats", mode="r+")
-    for c, v in stats.items():
-        group[c][start:stop] = v
+    write_stats(out_dir, i, stats, source.block_width)
     record["seconds"] = time.perf_counter() - t0
     write_marker(out_dir, record)
     return record
 
 
 # --------------------------------------------------------------------------------------------
-# Completion markers
+# Statistics and completion markers
+
+
+def write_stats(out_dir: str | Path, block: int, stats: dict[str, np.ndarray], width: int) -> None:
+    """Write one block's chunk of every statistic straight to its file.
+
+    The pass creates its statistic arrays uncompressed (Zarr v3 ``bytes`` codec, little endian), one
+    chunk per block, so a chunk file is just the float64 values, padded with NaN to the chunk length
+    at the last block. Writing it directly costs a file write instead of zarr's per-call machinery
+    (which took longer than the statistics of a small block). Each file is written to a temporary
+    name and renamed, so a chunk file that exists is whole.
+    """
+    for c, v in stats.items():
+        buf = np.full(width, np.nan, dtype="<f8")
+        buf[: v.size] = v
+        atomic_write(stats_chunk(out_dir, c, block), buf.tobytes(), sync=False)
+
+
+def stats_codecs_ok(array) -> bool:
+    """Whether a statistic array has the layout `write_stats` writes (checked when the pass is made)."""
+    meta = array.metadata.to_dict()
+    codecs = meta.get("codecs", [])
+    key = meta.get("chunk_key_encoding", {})
+    return (
+        len(codecs) == 1
+        and codecs[0].get("name") == "bytes"
+        and (codecs[0].get("configuration") or {}).get("endian", "little") == "little"
+        and key.get("name") == "default"
+        and (key.get("configuration") or {}).get("separator", "/") == "/"
+    )
 
 
 def write_marker(out_dir: str | Path, record: dict) -> None:
@@ -212,7 +241,7 @@ def fetch_columns(
             b = min(int(a) + sub_block, stop - start)
             block = prepare_block(raw[:, a:b], start + int(a), rows)
             here = (local >= a) & (local < b)
-            out[:, sel[here]] = block.values[:, local[here] - a]
+            out[:, sel[here]] = block.columns(local[here] - a)
 
     todo = [int(i) for i in np.unique(blocks)]
     if n_threads <= 1 or len(todo) == 1:

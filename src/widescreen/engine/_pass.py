@@ -24,7 +24,7 @@ from typing import Any
 import numpy as np
 import zarr
 
-from ._block import fetch_columns, process_block, read_marker
+from ._block import fetch_columns, process_block, read_marker, stats_codecs_ok
 from ._memory import CLUSTER_SHARE, MemoryBudgetError, MemoryPlan, parse_budget, plan_memory
 from ._runfolder import RunFolder, RunFolderError, atomic_write
 from ._scheduler import Executor, n_cores, open_executor
@@ -116,15 +116,18 @@ def _prepare_out_dir(run: RunFolder, source: BlockSource, spec: PassSpec) -> tup
     d.mkdir(parents=True)
     group = zarr.open_group(d / "stats", mode="w")
     for c in spec.all_columns:
-        group.create_array(
+        arr = group.create_array(
             c,
             shape=(source.n_features,),
             chunks=(source.block_width,),
-            dtype="float64",
+            dtype="<f8",
             fill_value=np.nan,
-            # A block's chunk file must exist once its marker does, whatever its values.
-            config={"write_empty_chunks": True},
+            # Uncompressed: block tasks write their chunk files directly (see `write_stats`).
+            compressors=None,
+            filters=None,
         )
+        if not stats_codecs_ok(arr):  # pragma: no cover - guards against a zarr default change
+            raise RuntimeError(f"{d / 'stats' / c}: unexpected array layout {arr.metadata}")
     (d / "done").mkdir()
     meta = {
         "token": token,

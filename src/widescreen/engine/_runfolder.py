@@ -32,11 +32,12 @@ class RunFolderError(RuntimeError):
     """The run folder cannot be used as asked: held by another process, or made by another config."""
 
 
-def atomic_write(path: Path, data: str | bytes) -> None:
-    """Write to a temporary name in the same folder, flush to disk, then rename over ``path``.
+def atomic_write(path: Path, data: str | bytes, *, sync: bool = True) -> None:
+    """Write to a temporary name in the same folder, flush it to disk, then rename over ``path``.
 
     The temporary name is unique per process and thread, so two writers of the same file (a task run
-    twice on a cluster) never share one.
+    twice on a cluster) never share one. ``sync=False`` skips the flush to disk (the rename alone
+    already makes the file whole or absent for any process; the flush guards against a machine crash).
     """
     path = Path(path)
     path.parent.mkdir(parents=True, exist_ok=True)
@@ -45,8 +46,9 @@ def atomic_write(path: Path, data: str | bytes) -> None:
     try:
         with open(tmp, mode) as f:
             f.write(data)
-            f.flush()
-            os.fsync(f.fileno())
+            if sync:
+                f.flush()
+                os.fsync(f.fileno())
         os.replace(tmp, path)
     except BaseException:
         tmp.unlink(missing_ok=True)
