@@ -210,9 +210,8 @@ def _dominance(xp: np.ndarray, order: np.ndarray, yp: np.ndarray) -> np.ndarray:
         groups = N // (2 * s)
         x4 = xp.reshape(w, groups, 2, s)
         later_y = yp.reshape(groups, 2, s)[:, 1, :]
-        d = np.maximum(
-            x4[:, :, 1, None, :] - x4[:, :, 0, :, None], 0.0
-        )  # (w, group, earlier, later)
+        # (w, group, earlier, later): every pair of the two halves of every group
+        d = np.maximum(x4[:, :, 1, None, :] - x4[:, :, 0, :, None], 0.0)
         D += np.einsum("wgij,gj->w", d, later_y)
     return D
 
