@@ -23,6 +23,12 @@ app = typer.Typer(
 QuietOpt = Annotated[
     bool, typer.Option("--quiet", "-q", help="No progress bar; only results and errors.")
 ]
+ReportOpt = Annotated[
+    bool,
+    typer.Option(
+        "--report/--no-report", help="Write report.html and figures/ into the run folder."
+    ),
+]
 
 
 def _expected_errors() -> tuple[type[BaseException], ...]:
@@ -160,6 +166,7 @@ def screen_cmd(
     restart: Annotated[
         bool, typer.Option("--restart", help="Discard what the run folder holds and start over.")
     ] = False,
+    report: ReportOpt = True,
     quiet: QuietOpt = False,
 ) -> None:
     """Rank every feature by its marginal association with the outcome (SIS) and write the shortlist."""
@@ -197,6 +204,10 @@ def screen_cmd(
             else ""
         )
     )
+    if report:
+        from ..report import build_report
+
+        typer.echo(f"report: {build_report(out)}")
 
 
 # ------------------------------------------------------------------------------------------------
