@@ -22,6 +22,10 @@ from ._split import fetch_prepared, intersect_ranked
 from ._thresholds import ThresholdRule, bh_cutoff_blocks, bonferroni_cutoff, permutation_cutoff
 
 
+class ConditioningError(ValueError):
+    """The family cannot condition on the current model (its message says why)."""
+
+
 @dataclass(frozen=True)
 class StepContext:
     """What every pass of one run shares.
@@ -115,7 +119,14 @@ def _one_pass(
             kwargs["conditioning"] = conditioning if sel is None else conditioning[sel]
         else:
             kwargs["offset"] = offset if sel is None else offset[sel]
-    state = fam.prepare(resp, Z, **kwargs)
+    try:
+        state = fam.prepare(resp, Z, **kwargs)
+    except ValueError as exc:
+        if not exclude.size:
+            raise
+        # The current model leaves nothing to condition on (no variation left, separation, too
+        # few samples for the selected columns): the iteration ends here, with the model it has.
+        raise ConditioningError(str(exc)) from exc
     spec = PassSpec(
         name=name,
         kernel=fam.kernel,
@@ -285,4 +296,12 @@ def screen_step(
     return Candidates(index, score, prep.values, prep.mean, passes, infos)
 
 
-__all__ = ["Candidates", "StepContext", "apply_threshold", "pass_seed", "screen_step", "stats_at"]
+__all__ = [
+    "Candidates",
+    "ConditioningError",
+    "StepContext",
+    "apply_threshold",
+    "pass_seed",
+    "screen_step",
+    "stats_at",
+]

@@ -22,7 +22,7 @@ import numpy as np
 from ..engine import FeatureFilter, PassResult, RunFolder
 from ..fit import make_penalty
 from ..store._reader import prepare_block
-from ._candidates import Candidates, StepContext, screen_step, stats_at
+from ._candidates import Candidates, ConditioningError, StepContext, screen_step, stats_at
 from ._problem import Problem, keep_size
 from ._refit import FitSettings, FittedModel, fit_token, fit_union
 from ._session import RunSession
@@ -196,17 +196,6 @@ class _Pool:
         self.index, self.values, self.mean = self.index[pos], self.values[:, pos], self.mean[pos]
 
 
-def _explained(problem: Problem, values: np.ndarray) -> bool:
-    """Whether the response lies (to rounding) in the span of the intercept, covariates and values."""
-    y = problem.response.y
-    parts = [np.ones((y.size, 1)), values]
-    if problem.covariates is not None:
-        parts.append(problem.covariates)
-    C = np.hstack(parts)
-    resid = y - C @ np.linalg.lstsq(C, y, rcond=None)[0]
-    return bool(np.linalg.norm(resid) <= 1e-9 * max(np.linalg.norm(y - y.mean()), 1e-300))
-
-
 def _ids(problem: Problem, index: np.ndarray) -> list[str]:
     return [str(f) for f in problem.feature_ids(index)] if index.size else []
 
@@ -233,7 +222,6 @@ def iterate(
     progress : callable(pass name) -> callable(done, total), optional
     """
     n, p = problem.n, problem.source.n_features
-    q = 0 if problem.covariates is None else problem.covariates.shape[1]
     d = keep_size(config.keep, n, p)
     run = session.run if session is not None else None
     halves = split_halves(n, config.seed) if config.split else None
@@ -255,19 +243,16 @@ def iterate(
         if budget <= 0:
             stop = "size budget reached"
             break
-        if k > 0 and problem.family.conditioning == "columns":
-            if selected.size + q > n - 3:
-                stop = "too few samples to condition on the selected set"
-                break
-            if _explained(problem, pool.values):
-                stop = "the selected set explains the response"
-                break
         eta = (
             model.linear_predictor(pool.values, problem.covariates)
             if model is not None and problem.family.conditioning == "offset"
             else None
         )
-        cands = screen_step(ctx, k, budget, selected, pool.values, eta, config.seed)
+        try:
+            cands = screen_step(ctx, k, budget, selected, pool.values, eta, config.seed)
+        except ConditioningError as exc:
+            stop = f"cannot condition on the selected set: {exc}"
+            break
         if k == 0:
             screen_passes = cands.passes
             n_screened = int(min(r.n_features - r.n_filtered for r in cands.passes))

@@ -227,7 +227,7 @@ def _search(blocks, alpha, m, edges, hist, below, n_bins, max_hold, depth) -> fl
             i += 1
         if held > max_hold and depth < 40:
             b = group[0]  # a single bin too full to hold: refine its range
-            lo = float(edges[b]) if b > 0 else -1.0
+            lo = float(edges[b])
             sub = (
                 np.geomspace(vmin[b], vmax[b], n_bins + 1)
                 if vmin[b] > 0
