@@ -136,7 +136,10 @@ class Executor:
         expected = []
         for what, folder, probe in paths:
             st = os.stat(Path(folder) / probe)
-            expected.append((what, str(folder), probe, st.st_size, st.st_mtime_ns))
+            expected.append((what, str(folder), str(probe), st.st_size, st.st_mtime_ns))
+        self._check_expected(expected)
+
+    def _check_expected(self, expected: list[tuple[str, str, str, int, int]]) -> None:
         answers = self.client.run(_probe_paths, expected)
         problems = [f"{addr}: {msg}" for addr, msgs in sorted(answers.items()) for msg in msgs]
         if problems:
