@@ -146,6 +146,17 @@ def test_values_buffer_is_reclaimed_safely(rng, route):
     np.testing.assert_array_equal(a.values, va)
 
 
+def test_stale_block_copy_is_refused(rng, route):
+    # A float sub-block view is copied into a per-thread buffer; a later block takes that buffer over.
+    X = sample_matrix(rng, "float32", 20, 16)
+    old = prepare_block(X[:, :8], 0)
+    prepare_block(X[:, 8:], 8)
+    with pytest.raises(RuntimeError, match="overwritten"):
+        old.cross(np.ones((1, 20)))
+    with pytest.raises(RuntimeError, match="overwritten"):
+        old.columns([0])
+
+
 def test_prepare_block_rejects_bad_input():
     with pytest.raises(ValueError, match="2-dimensional"):
         prepare_block(np.zeros(5), 0)

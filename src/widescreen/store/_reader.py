@@ -83,15 +83,23 @@ def _scratch(shape: tuple[int, int], dtype: np.dtype, name: str) -> np.ndarray:
     return buf
 
 
+def _claim(shape: tuple[int, int], dtype, name: str) -> tuple[np.ndarray, tuple[int, int]]:
+    """A per-thread buffer and a claim on it that is void once another block takes the buffer."""
+    buf = _scratch(shape, dtype, name)
+    counters = getattr(_local, "claims", None)
+    if counters is None:
+        counters = _local.claims = {}
+    counters[name] = counters.get(name, 0) + 1
+    return buf, (threading.get_ident(), counters[name])
+
+
+def _claim_valid(claim: tuple[int, int], name: str) -> bool:
+    counters = getattr(_local, "claims", None) or {}
+    return claim == (threading.get_ident(), counters.get(name, 0))
+
+
 def _claim_values(shape: tuple[int, int]) -> tuple[np.ndarray, tuple[int, int]]:
-    """The per-thread float64 values buffer and a claim that is void once another block takes it."""
-    buf = _scratch(shape, np.float64, "values")
-    _local.claims = getattr(_local, "claims", 0) + 1
-    return buf, (threading.get_ident(), _local.claims)
-
-
-def _claim_valid(claim: tuple[int, int]) -> bool:
-    return claim == (threading.get_ident(), getattr(_local, "claims", 0))
+    return _claim(shape, np.float64, "values")
 
 
 def _source_buffer(size: int) -> memoryview:
@@ -175,6 +183,9 @@ class Block:
         The stored values of the analysed samples (int8 with the -128 sentinel, or floats with NaN).
         A view of a per-thread buffer, like `values`.
     n_missing : ndarray of shape (width,), int64
+
+    A block lives as long as the buffers behind it: until the same thread reads its next chunk or
+    prepares its next block. Asking a stale block for values raises rather than answering wrongly.
     """
 
     start: int
@@ -211,6 +222,7 @@ class Block:
         """
         x = self._cached_values()
         if x is None:
+            self._check_raw()
             x, claim = _claim_values(self.raw.shape)
             _accel.centre_into(self.raw, self.mean, x)
             self._memo["values"] = (x, claim)
@@ -219,7 +231,15 @@ class Block:
     def _cached_values(self) -> np.ndarray | None:
         held = self._memo.get("values")
         # The buffer is shared by the thread's blocks: use it only if no later block has taken it.
-        return held[0] if held is not None and _claim_valid(held[1]) else None
+        return held[0] if held is not None and _claim_valid(held[1], "values") else None
+
+    def _check_raw(self) -> None:
+        held = self._memo.get("raw")
+        if held is not None and not _claim_valid(held, "rows"):
+            raise RuntimeError(
+                f"block at feature {self.start}: its stored values were a per-thread copy that a "
+                "later block on this thread has overwritten; use a block before preparing the next"
+            )
 
     def cross(self, lhs_t: np.ndarray) -> np.ndarray:
         """``lhs_t @ values`` of shape (m, width), computed without writing the values out.
@@ -237,6 +257,7 @@ class Block:
         x = self._cached_values()
         if x is not None:
             return lhs_t @ x
+        self._check_raw()
         tile = _scratch((self.n_samples, _accel.TILE), np.float64, "tile")
         return _accel.cross(self.raw, self.mean, lhs_t, self.any_missing, tile)
 
@@ -246,6 +267,7 @@ class Block:
         A new array (not a per-thread buffer), element for element equal to ``values[:, index]``.
         """
         index = np.asarray(index, dtype=np.intp)
+        self._check_raw()
         out = np.empty((self.n_samples, index.size), np.float64, order="F")
         if index.size:
             tmp = np.empty((self.n_samples, index.size), np.float64)
@@ -275,21 +297,22 @@ def prepare_block(raw: np.ndarray, start: int, rows: np.ndarray | None = None) -
         if raw.dtype.kind not in "biuf":
             raise ValueError(f"block at feature {start}: values must be numeric, not {raw.dtype}")
         raw = raw.astype(np.float64)
+    raw_claim = None
     if rows is not None:
         rows = np.asarray(rows, dtype=np.intp)
         if rows.size and (rows.min() < 0 or rows.max() >= raw.shape[0]):
             raise IndexError(f"block at feature {start}: sample rows outside 0..{raw.shape[0] - 1}")
-        sel = _scratch((rows.size, raw.shape[1]), raw.dtype, "rows")
+        sel, raw_claim = _claim((rows.size, raw.shape[1]), raw.dtype, "rows")
         raw = np.take(raw, rows, axis=0, out=sel, mode="clip")
     elif raw.dtype != np.int8 and not raw.flags.c_contiguous:
         # A float sub-block sliced from a chunk has rows of a few KiB at a stride of a power of two:
         # streaming such rows runs at a third of the speed of contiguous ones, and the block is read
         # twice more (moments, cross-products), so one contiguous copy pays for itself.
-        sel = _scratch(raw.shape, raw.dtype, "rows")
+        sel, raw_claim = _claim(raw.shape, raw.dtype, "rows")
         np.copyto(sel, raw)
         raw = sel
     n = raw.shape[0]
-    memo: dict = {}
+    memo: dict = {} if raw_claim is None else {"raw": raw_claim}
     # The numpy route for floats computes the centred values on the way: keep them.
     values, claim = (
         (None, None) if raw.dtype == np.int8 or _accel.use_numba else _claim_values(raw.shape)
