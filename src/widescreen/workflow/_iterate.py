@@ -7,7 +7,8 @@ Fan & Lv (2008) Section 4.2 and Fan, Samworth & Wu (2009, JMLR 10:2013), the "va
 3. rank every feature outside M conditionally on M (a pass over the whole store) and keep the top
    d - |M| new candidates that pass the threshold;
 4. refit on M plus the candidates (features may leave M); repeat from 3 until M stops changing, |M|
-   reaches d, no new candidate passes, M returns to an earlier set, or ``max_iter`` conditional passes.
+   reaches d, no new candidate passes, M returns to an earlier set, M is empty, the family cannot
+   condition on the model (for example no variation left), or after ``max_iter`` conditional passes.
 
 With ``split`` every step screens two random halves of the samples and keeps only features in the top
 list of both (the "var" variant of FSW 2009, see `_split`). ``max_iter = 0`` gives plain SIS + refit.
@@ -286,6 +287,9 @@ def iterate(
         pool.keep(new.index)
         model = new
         key = tuple(new.index.tolist())
+        if new.index.size == 0:
+            stop = "empty model"  # conditioning on nothing would only repeat the screen
+            break
         if k > 0 and np.array_equal(new.index, selected):
             stop = "converged"
             break

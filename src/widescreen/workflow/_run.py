@@ -4,7 +4,8 @@ Writes into the run folder, besides ``manifest.json`` and ``passes/NAME/`` (``sc
 ``screen_a`` / ``screen_b``, ... after sample splitting):
 
 ``model.tsv``
-    The final model: a row ``(intercept)`` (for the features as stored, missing values at their mean),
+    The final model: a row ``(intercept)`` (for the features as stored, missing values at their mean;
+    none for the Cox family, whose partial likelihood has no intercept),
     one row ``covariate:NAME`` per covariate, then one row per selected feature with its coefficient,
     the iteration it entered (0 = the screen), its marginal statistics on all analysed samples
     (``score`` and the family's columns, ``missing_rate``), the imputation ``mean`` and its store index.
@@ -35,23 +36,24 @@ def model_columns(result: IterativeResult) -> dict[str, list]:
     problem = result.problem
     stat_names = list(result.marginal)
     order = np.lexsort((result.index, -result.marginal["score"], result.entered))
-    q = len(problem.covariate_names)
-    na = [float("nan")] * (1 + q)
+    # The Cox partial likelihood has no intercept: its row would only be a shift that cancels.
+    head = [] if problem.family.loss == "cox" else ["(intercept)"]
+    head_coef = [] if problem.family.loss == "cox" else [result.intercept]
+    head += [f"covariate:{c}" for c in problem.covariate_names]
+    na = [float("nan")] * len(head)
     cols: dict[str, list] = {
-        "feature": ["(intercept)"]
-        + [f"covariate:{c}" for c in problem.covariate_names]
-        + [str(f) for f in result.feature_ids[order]],
+        "feature": head + [str(f) for f in result.feature_ids[order]],
         "coefficient": [
-            result.intercept,
+            *head_coef,
             *result.covariate_coef.tolist(),
             *result.coef[order].tolist(),
         ],
-        "entered": ["NA"] * (1 + q) + result.entered[order].tolist(),
+        "entered": ["NA"] * len(head) + result.entered[order].tolist(),
     }
     for c in stat_names:
         cols[c] = na + result.marginal[c][order].tolist()
     cols["mean"] = na + result.mean[order].tolist()
-    cols["index"] = ["NA"] * (1 + q) + result.index[order].tolist()
+    cols["index"] = ["NA"] * len(head) + result.index[order].tolist()
     return cols
 
 
