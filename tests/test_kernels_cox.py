@@ -1,4 +1,7 @@
-"""Marginal Cox kernel against statsmodels PHReg (Breslow ties) fitted one feature at a time."""
+"""Marginal Cox kernel against statsmodels PHReg (Breslow ties) fitted one feature at a time.
+
+Every test runs twice: with the compiled sums of a Newton step (when numba is installed) and with numpy.
+"""
 
 from __future__ import annotations
 
@@ -9,7 +12,18 @@ from statsmodels.duration.hazard_regression import PHReg
 
 from widescreen.kernels import _glm
 from widescreen.kernels._cox import cox_statistics, prepare_cox
+from widescreen.store import _accel
 from widescreen.store._reader import prepare_block
+
+ROUTES = [pytest.param(False, id="numpy")]
+if _accel.HAVE_NUMBA:
+    ROUTES.insert(0, pytest.param(True, id="numba"))
+
+
+@pytest.fixture(params=ROUTES, autouse=True)
+def route(request, monkeypatch):
+    monkeypatch.setattr(_accel, "use_numba", request.param)
+    return request.param
 
 
 def _survival(rng, n=200, p=20, ties=True):
@@ -154,3 +168,11 @@ def test_block_with_other_samples_is_refused(rng):
     st = prepare_cox(rng.exponential(size=30), np.ones(30))
     with pytest.raises(ValueError, match="samples"):
         cox_statistics(prepare_block(rng.standard_normal((25, 3)), 0), st)
+
+
+def test_collinear_covariates_are_refused(rng):
+    z = rng.standard_normal(50)
+    with pytest.raises(ValueError, match="collinear"):
+        prepare_cox(rng.exponential(size=50), np.ones(50), covariates=np.column_stack([z, -z]))
+    with pytest.raises(ValueError, match="collinear"):
+        prepare_cox(rng.exponential(size=50), np.ones(50), covariates=np.full((50, 1), 3.0))

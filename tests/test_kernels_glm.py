@@ -1,4 +1,7 @@
-"""Marginal logistic and Poisson kernels against statsmodels GLM fitted one feature at a time."""
+"""Marginal logistic and Poisson kernels against statsmodels GLM fitted one feature at a time.
+
+Every test runs twice: with the compiled sums of a Newton step (when numba is installed) and with numpy.
+"""
 
 from __future__ import annotations
 
@@ -14,7 +17,19 @@ from widescreen.kernels._glm import (
     prepare_logistic,
     prepare_poisson,
 )
+from widescreen.store import _accel
 from widescreen.store._reader import prepare_block
+
+ROUTES = [pytest.param(False, id="numpy")]
+if _accel.HAVE_NUMBA:
+    ROUTES.insert(0, pytest.param(True, id="numba"))
+
+
+@pytest.fixture(params=ROUTES, autouse=True)
+def route(request, monkeypatch):
+    monkeypatch.setattr(_accel, "use_numba", request.param)
+    return request.param
+
 
 FAMILIES = {
     "logistic": (prepare_logistic, logistic_statistics, sm.families.Binomial),
@@ -253,3 +268,12 @@ def test_covariates_that_separate_the_outcome_are_refused(rng):
     y = (rng.random(80) < 0.5).astype(float)
     with pytest.raises(ValueError, match="separate"):
         prepare_logistic(y, covariates=y[:, None] + 0.01 * rng.random((80, 1)))
+
+
+def test_collinear_covariates_are_refused(rng):
+    y = (rng.random(60) < 0.5).astype(float)
+    z = rng.standard_normal(60)
+    with pytest.raises(ValueError, match="collinear"):
+        prepare_logistic(y, covariates=np.column_stack([z, 2 * z]))
+    with pytest.raises(ValueError, match="collinear"):
+        prepare_poisson(y + 1, covariates=np.ones((60, 1)))

@@ -26,9 +26,10 @@ from dataclasses import dataclass
 import numpy as np
 from scipy import special
 
+from ..store import _accel
 from ..store._reader import Block
 from . import _glm
-from ._glm import newton, sum_log
+from ._glm import check_rank, newton, sum_log
 
 
 @dataclass(frozen=True)
@@ -174,6 +175,7 @@ def prepare_cox(
     order = np.argsort(-time, kind="stable")
     ends, deaths = _tie_groups(time[order], ev[order])
     Zs = Z[order] - Z.mean(axis=0)
+    check_rank(Zs)  # centred: a constant covariate is a zero column
     eta0, dev0 = _cox_null_fit(Zs, off[order], ev[order], ends, deaths)
     return CoxState(
         order=order,
@@ -218,12 +220,15 @@ class _CoxWorkspace:
         c = tile.shape[1]
         self.idx = np.arange(c)
         self.x = self._x[: self.n_pad * c].reshape(self.n_pad, c)
-        np.take(tile, order, axis=0, out=self.x[: self.n])
+        if _accel.use_numba:
+            _gather_rows(tile, order, self.x[: self.n])
+        else:
+            np.take(tile, order, axis=0, out=self.x[: self.n])
         self.x[self.n :] = 0.0
         return self.x
 
     def take(self, cols: np.ndarray) -> np.ndarray:
-        if cols.size < 0.6 * self.idx.size:
+        if cols.size < _glm.SHRINK * self.idx.size:
             kept = self.x[:, np.searchsorted(self.idx, cols)]
             self.idx = cols
             self.x = self._x[: self.n_pad * cols.size].reshape(self.n_pad, cols.size)
@@ -258,15 +263,76 @@ class _CoxWorkspace:
         blocks[:, 1:] += totals[:, :-1, None, :]
 
 
+# ----------------------------------------------------------------------------------- compiled loops
+@_accel._jit
+def _gather_rows(x, order, out):  # pragma: no cover - compiled
+    # out[i] = x[order[i]] for a tile (a strided view of a block): numpy's take is slower on views.
+    for i in range(order.shape[0]):
+        src = x[order[i]]
+        dst = out[i]
+        for j in range(dst.shape[0]):
+            dst[j] = src[j]
+
+
+@_accel._jit
+def _risk_sums(r, x, ends, deaths, out):  # pragma: no cover - compiled
+    # Rows of r = exp(eta) and x in decreasing time. Walks the rows once, keeping the risk-set sums
+    # S0, S1, S2 per column, and at the last row of each event time adds to the rows of out:
+    # sum_g d_g log S0_g, sum_g d_g S1_g / S0_g, sum_g d_g S2_g / S0_g, sum_g d_g (S1_g / S0_g)^2.
+    n, c = r.shape
+    s0 = np.zeros(c)
+    s1 = np.zeros(c)
+    s2 = np.zeros(c)
+    prod = np.ones(c)
+    g = 0
+    for i in range(n):
+        for j in range(c):
+            u = r[i, j]
+            v = x[i, j]
+            s0[j] += u
+            s1[j] += u * v
+            s2[j] += u * v * v
+        if g < ends.shape[0] and ends[g] == i:
+            d = deaths[g]
+            for j in range(c):
+                inv = 1.0 / s0[j]
+                m1 = s1[j] * inv
+                out[1, j] += d * m1
+                out[2, j] += d * s2[j] * inv
+                out[3, j] += d * m1 * m1
+                if d == 1.0:  # a product of S0 values, logged before it leaves a safe range
+                    p = prod[j] * s0[j]
+                    if not (1e-200 < p < 1e200):
+                        out[0, j] += np.log(prod[j])
+                        p = s0[j]
+                    prod[j] = p
+                else:
+                    out[0, j] += d * np.log(s0[j])
+            g += 1
+    for j in range(c):
+        out[0, j] += np.log(prod[j])
+
+
 # ------------------------------------------------------------------------------------------- fitting
 def _risk_moments(st: CoxState, ws: _CoxWorkspace, b: np.ndarray | None):
-    """Risk-set sums at every distinct event time for the working columns at coefficients ``b``.
+    """Risk-set sums over the event times for the working columns at coefficients ``b``.
 
-    Returns ``log_s0`` (c,) = sum_g d_g log S0_g, ``m1``, ``m2`` (G, c) = S1 / S0, S2 / S0 (views of a
-    reused buffer). With ``b`` None the columns are at b = 0, where S0 is shared, exp() is not needed
-    and ``log_s0`` is not computed (the null deviance is known).
+    Returns four arrays of shape (c,): sum_g d_g log S0_g, sum_g d_g m1_g, sum_g d_g m2_g and
+    sum_g d_g m1_g^2, with m_p = S_p / S0. With ``b`` None the columns are at b = 0, where S0 is shared
+    and exp() is not needed; the first array is then not computed (the null deviance is known).
     """
     x, n = ws.x, st.n_samples
+    d = st.deaths
+    if _accel.use_numba:
+        r = ws.stacked(1)[0, :n]
+        if b is None:
+            np.copyto(r, np.exp(st.eta0)[:, None])
+        else:
+            _glm.linear_predictor(x[:n], b, np.zeros_like(b), st.eta0, 1.0, r)
+            np.exp(r, out=r)
+        out = np.zeros((4, x.shape[1]))
+        _risk_sums(r, x[:n], st.ends, d, out)
+        return out[0] if b is not None else None, out[1], out[2], out[3]
     if b is None:
         R = ws.stacked(2)
         r0 = np.zeros(ws.n_pad)
@@ -276,7 +342,8 @@ def _risk_moments(st: CoxState, ws: _CoxWorkspace, b: np.ndarray | None):
         ws.cumsum_rows(R)
         S = ws.at_times(R, st.ends)
         S /= np.cumsum(r0)[st.ends][:, None]
-        return None, S[0], S[1]
+        m1, m2 = S[0], S[1]
+        return None, d @ m1, d @ m2, np.einsum("g,gj,gj->j", d, m1, m1)
     R = ws.stacked(3)
     r = R[0]
     np.multiply(x, b, out=r)
@@ -289,12 +356,13 @@ def _risk_moments(st: CoxState, ws: _CoxWorkspace, b: np.ndarray | None):
     S = ws.at_times(R, st.ends)
     s0 = S[0]
     log_s0 = sum_log(s0)
-    tied = st.deaths > 1
+    tied = d > 1
     if tied.any():  # sum_g d_g log S0_g: the extra d_g - 1 copies of the (few) tied groups
-        log_s0 += (st.deaths[tied] - 1.0) @ np.log(s0[tied])
+        log_s0 += (d[tied] - 1.0) @ np.log(s0[tied])
     np.reciprocal(s0, out=s0)
     S[1:] *= s0
-    return log_s0, S[1], S[2]
+    m1, m2 = S[1], S[2]
+    return log_s0, d @ m1, d @ m2, np.einsum("g,gj,gj->j", d, m1, m1)
 
 
 def _evaluate(st: CoxState, ws: _CoxWorkspace, ex: np.ndarray, idx, params):
@@ -302,10 +370,10 @@ def _evaluate(st: CoxState, ws: _CoxWorkspace, ex: np.ndarray, idx, params):
     pos = ws.take(idx)
     b = np.zeros(ws.x.shape[1])
     b[pos] = params[:, 0]
-    log_s0, m1, m2 = _risk_moments(st, ws, b)
+    log_s0, dm1, dm2, dm1sq = _risk_moments(st, ws, b)
     ell = st.event @ st.eta0 + b * ex[ws.idx] - log_s0
-    g = ex[ws.idx] - st.deaths @ m1
-    H = st.deaths @ m2 - np.einsum("g,gj,gj->j", st.deaths, m1, m1)
+    g = ex[ws.idx] - dm1
+    H = dm2 - dm1sq
     return -2.0 * ell[pos], g[pos, None], H[pos, None, None]
 
 
@@ -313,10 +381,9 @@ def _fit_tile(st: CoxState, ws: _CoxWorkspace, tile: np.ndarray, dead: np.ndarra
     c = tile.shape[1]
     x = ws.load(tile, st.order)
     ex = st.event @ x[: st.n_samples]  # sum of the feature over the events
-    _, m1, m2 = _risk_moments(st, ws, None)
-    g0 = ex - st.deaths @ m1
-    second = st.deaths @ m2
-    H0 = second - np.einsum("g,gj,gj->j", st.deaths, m1, m1)
+    _, dm1, second, dm1sq = _risk_moments(st, ws, None)
+    g0 = ex - dm1
+    H0 = second - dm1sq
     # No information left: constant within every risk set that matters.
     dead = dead | ~(H0 > 1e-10 * second)
     H0 = np.where(dead, np.nan, H0)
@@ -357,7 +424,7 @@ def cox_statistics(block: Block, state: CoxState) -> dict[str, np.ndarray]:
         raise ValueError(
             f"block at feature {block.start} has {n} samples; the Cox state was built for {state.n_samples}"
         )
-    step = max(16, _glm.TILE_BYTES // (8 * max(n, 1)))
+    step = max(4, _glm.TILE_BYTES // (8 * max(n, 1)))
     tiles = [slice(lo, min(lo + step, width)) for lo in range(0, width, step)]
     ws = _CoxWorkspace.get(n, state.ends.size, step)
     parts = [_fit_tile(state, ws, x[:, sl], block.constant[sl]) for sl in tiles]

@@ -27,6 +27,17 @@ deviation of the feature; ``|std_beta|`` is the other utility of Fan & Song), ``
 intercept and every covariate whatever ``covariate_mode`` (at ``b_j = 0`` both modes share the null fit):
 ``score_chi2``, ``z``, ``p_value``, ``beta`` and ``std_error`` (the one-step estimate U / I and 1 / sqrt(I)),
 ``std_beta``, ``score`` = ``score_chi2 / 2`` (the quadratic approximation of the likelihood reduction).
+
+Newton iterations
+-----------------
+Every feature starts at the null fit (b_j = 0), where score and information are matrix products, so the
+first trial point is the one-step estimate. Each further evaluation is one pass of exp() over the tile and
+the sums over samples of the deviance, score and information. A step that raises the deviance is halved;
+a feature stops when the predicted deviance decrease ``g' H^-1 g`` of its next step is at most ``tol``
+(default 1e-10), and that step is then taken without another evaluation. Null features typically need two
+evaluations. A block is worked on in tiles of columns (`TILE_BYTES`), and a tile's working columns shrink
+as features converge. With numba installed (the store's switch ``_accel.use_numba``), the sums over
+samples are one compiled pass; the numpy route computes the same sums with array operations.
 """
 
 from __future__ import annotations
@@ -37,6 +48,7 @@ from dataclasses import dataclass
 import numpy as np
 from scipy import special
 
+from ..store import _accel
 from ..store._reader import Block
 
 FAMILIES = ("logistic", "poisson")
@@ -49,6 +61,9 @@ SEPARATION_ETA_RANGE = 20.0
 #: Columns per tile: each tile's Newton iterations run on arrays of about this many bytes, which stay in
 #: cache, instead of streaming the whole block through memory once per array operation.
 TILE_BYTES = 4 * 2**20
+#: A tile's working columns are copied smaller once fewer than this fraction still iterate: one copy
+#: costs less than a Newton evaluation of the converged columns.
+SHRINK = 0.8
 
 
 @dataclass(frozen=True)
@@ -66,9 +81,10 @@ class GLMState:
     design : ndarray of shape (n, k)
         Columns refitted with each feature: the intercept alone (offset mode) or intercept and covariates.
     score_basis : ndarray of shape (n, k_all)
-        ``W0 C (C' W0 C)^(-1/2)`` for C = [1, covariates]: removes the nuisance part of the information.
+        ``W0 C L^-T`` with ``L L' = C' W0 C`` for C = [1, covariates]: ``|score_basis' x|^2`` is the
+        part of ``x' W0 x`` the nuisance parameters explain.
     deviance0 : float
-        Deviance of the null fit (without the saturated-model constant, which cancels in every ratio).
+        -2 log-likelihood of the null fit, without the saturated-model constant (it cancels in ratios).
     covariate_mode, test : str
     max_iter : int
         Cap on Newton evaluations per feature (step halvings included).
@@ -168,9 +184,18 @@ def _fit_null(family: str, y: np.ndarray, C: np.ndarray, offset: np.ndarray, max
             f"the {family} null fit on the covariates did not converge in {max_iter} steps"
         )
     mu, w = _mean(family, eta)
-    if family == "logistic" and np.min(w) < 1e-12:
+    if family == "logistic" and C.shape[1] > 1 and np.min(w) < 1e-12:
         raise ValueError("the covariates separate the outcome: fitted probabilities reach 0 or 1")
     return gamma, eta, dev
+
+
+def check_rank(C: np.ndarray) -> None:
+    """Refuse adjustment columns that are constant or collinear (with each other or the intercept)."""
+    if C.shape[1] and np.linalg.matrix_rank(C) < C.shape[1]:
+        raise ValueError(
+            f"the {C.shape[1]} adjustment columns are collinear on these samples "
+            "(a covariate is constant or a combination of the others)"
+        )
 
 
 def _prepare(family, y, covariates, offset, covariate_mode, test, max_iter, tol) -> GLMState:
@@ -198,6 +223,7 @@ def _prepare(family, y, covariates, offset, covariate_mode, test, max_iter, tol)
     if Z.shape[0] != n or not np.all(np.isfinite(Z)):
         raise ValueError(f"'covariates' must be finite with {n} rows; got shape {Z.shape}")
     C = np.hstack([np.ones((n, 1)), Z])
+    check_rank(C)
     _, eta0, dev0 = _fit_null(family, y, C, off)
     mu0, w0 = _mean(family, eta0)
     # Whitened nuisance columns: x' W0 x - |G' x|^2 is the efficient information of b_j.
@@ -308,7 +334,10 @@ def _last_inverse(H: np.ndarray) -> np.ndarray:
         return 1.0 / H[:, 0, 0]
     if p == 2:
         return H[:, 0, 0] / (H[:, 0, 0] * H[:, 1, 1] - H[:, 0, 1] ** 2)
-    return np.linalg.inv(H)[:, -1, -1]
+    ok = np.all(np.isfinite(H), axis=(1, 2))
+    # pinv neither raises on a singular member of the stack nor needs a loop to skip it.
+    inv = np.linalg.pinv(np.where(ok[:, None, None], H, np.eye(p)))[:, -1, -1]
+    return np.where(ok, inv, np.nan)
 
 
 @dataclass(frozen=True)
@@ -400,22 +429,32 @@ class Workspace:
     def _view(self, i: int, c: int) -> np.ndarray:
         return self._flat[i][: self.n * c].reshape(self.n, c)
 
-    def load(self, x: np.ndarray) -> np.ndarray:
-        """Copy a tile (n, c) into the workspace and square it; returns the contiguous copy."""
-        self.idx = np.arange(x.shape[1])
-        self.x, self.xx = self._view(0, x.shape[1]), self._view(3, x.shape[1])
-        np.copyto(self.x, x)
-        np.multiply(self.x, self.x, out=self.xx)
-        return self.x
+    def load(self, x: np.ndarray, square: bool) -> np.ndarray:
+        """Start on a tile (n, c) of a block, and keep its square in `xx` if asked.
+
+        The tile itself is used in place until the working set shrinks; `release` drops it.
+        """
+        self.idx, self.x = np.arange(x.shape[1]), x
+        self.xx = self._view(3, x.shape[1] if square else 0)
+        if square:
+            np.multiply(x, x, out=self.xx)
+        return x
+
+    def release(self) -> None:
+        """Forget the tile: the block's values are a buffer the kernel must not hold on to."""
+        self.idx, self.x = np.arange(0), self._view(0, 0)
 
     def take(self, cols: np.ndarray) -> np.ndarray:
-        """Positions of ``cols`` in `x`, after shrinking `x` when they are under 60% of it."""
-        if cols.size < 0.6 * self.idx.size:
+        """Positions of ``cols`` in `x`, after shrinking `x` when they are under `SHRINK` of it."""
+        if cols.size < SHRINK * self.idx.size:
             keep = np.searchsorted(self.idx, cols)
-            kept, kept_sq = self.x[:, keep], self.xx[:, keep]
-            self.idx, self.x, self.xx = cols, self._view(0, cols.size), self._view(3, cols.size)
+            square = self.xx.shape[1] > 0
+            kept, kept_sq = self.x[:, keep], self.xx[:, keep] if square else None
+            self.idx, self.x = cols, self._view(0, cols.size)
             np.copyto(self.x, kept)
-            np.copyto(self.xx, kept_sq)
+            self.xx = self._view(3, cols.size if square else 0)
+            if square:
+                np.copyto(self.xx, kept_sq)
         return np.searchsorted(self.idx, cols)
 
     def scratch(self, i: int) -> np.ndarray:
@@ -439,6 +478,86 @@ def sum_log(a: np.ndarray) -> np.ndarray:
             if bad.any():
                 out[bad] = np.log(a[:, bad]).sum(axis=0)
     return out
+
+
+# ------------------------------------------------------------------------------------ compiled loops
+# With numba (optional, the store's switch `_accel.use_numba`) the sums over samples of a Newton step are
+# one fused pass over the tile instead of a dozen numpy passes; exp() stays with numpy, whose vectorised
+# version is several times faster than numba's scalar one. The numpy route computes the same sums.
+
+
+@_accel._jit
+def linear_predictor(x, b, a, eta0, sign, out):  # pragma: no cover - compiled
+    """``out = sign * (eta0_i + a_j + b_j x_ij)`` for a tile x (n, c)."""
+    n, c = x.shape
+    for i in range(n):
+        e = eta0[i]
+        for j in range(c):
+            out[i, j] = sign * (e + a[j] + b[j] * x[i, j])
+
+
+@_accel._jit
+def _logistic_sums(t, x, out):  # pragma: no cover - compiled
+    # t = exp(-eta). Rows of out: sum log(1 + t), then the sums of mu x^p and mu^2 x^p, p = 0, 1, 2.
+    n, c = t.shape
+    prod = np.ones(c)
+    for i0 in range(0, n, 16):
+        i1 = min(i0 + 16, n)
+        for i in range(i0, i1):
+            for j in range(c):
+                den = 1.0 + t[i, j]
+                prod[j] *= den
+                mu = 1.0 / den
+                m2 = mu * mu
+                v = x[i, j]
+                out[1, j] += mu
+                out[2, j] += mu * v
+                out[3, j] += mu * v * v
+                out[4, j] += m2
+                out[5, j] += m2 * v
+                out[6, j] += m2 * v * v
+        for j in range(c):
+            # One log per 16 factors >= 1; the product only overflows past |eta| ~ 44.
+            if prod[j] < 1e300:
+                out[0, j] += np.log(prod[j])
+            else:
+                for i in range(i0, i1):
+                    out[0, j] += np.log(1.0 + t[i, j])
+            prod[j] = 1.0
+
+
+@_accel._jit
+def _weighted_moments(e, x, w, out):  # pragma: no cover - compiled
+    # Rows of out: sum_i w_i e_ij x_ij^p, p = 0, 1, 2.
+    n, c = e.shape
+    for i in range(n):
+        wi = w[i]
+        for j in range(c):
+            u = wi * e[i, j]
+            v = x[i, j]
+            out[0, j] += u
+            out[1, j] += u * v
+            out[2, j] += u * v * v
+
+
+@_accel._jit
+def _weighted_sumsq(x, w, out):  # pragma: no cover - compiled
+    # out_j = sum_i w_i x_ij^2
+    n, c = x.shape
+    for i in range(n):
+        wi = w[i]
+        for j in range(c):
+            v = x[i, j]
+            out[j] += wi * v * v
+
+
+def weighted_sumsq(x: np.ndarray, w: np.ndarray) -> np.ndarray:
+    """``sum_i w_i x_ij^2`` of shape (c,) for x (n, c)."""
+    if _accel.use_numba:
+        out = np.zeros(x.shape[1])
+        _weighted_sumsq(x, w, out)
+        return out
+    return np.einsum("i,ij,ij->j", w, x, x)
 
 
 # ---------------------------------------------------------------------------------------- evaluators
@@ -500,22 +619,31 @@ def _evaluate_logistic(st: GLMState, ws: Workspace, yx: np.ndarray, sx: np.ndarr
     that only read (x^2 is kept from the start), instead of forming the weights and their products.
     """
     pos = ws.take(idx)
-    x, xx = ws.x, ws.xx
+    x = ws.x
     a, b = np.zeros(x.shape[1]), np.zeros(x.shape[1])
     a[pos], b[pos] = params[:, 0], params[:, 1]
-    t = np.multiply(x, -b, out=ws.scratch(1))
-    if st.eta0_constant:  # no covariates nor offset: eta0 folds into the intercepts
-        t -= a + st.eta0[0]
+    t = ws.scratch(1)
+    if _accel.use_numba:
+        linear_predictor(x, b, a, st.eta0, -1.0, t)
+        np.exp(t, out=t)
+        sums = np.zeros((7, x.shape[1]))
+        _logistic_sums(t, x, sums)
+        log_den, s0, s1, s2, q0, q1, q2 = sums
     else:
-        t -= a
-        t -= st.eta0[:, None]
-    np.exp(t, out=t)
-    t += 1.0
-    log_den = sum_log(t)  # sum log(1 + e^-eta)
-    mu = np.reciprocal(t, out=t)
-    m2 = np.multiply(mu, mu, out=ws.scratch(2))
-    s0, s1, s2 = mu.sum(axis=0), np.einsum("ij,ij->j", mu, x), np.einsum("ij,ij->j", mu, xx)
-    q0, q1, q2 = m2.sum(axis=0), np.einsum("ij,ij->j", m2, x), np.einsum("ij,ij->j", m2, xx)
+        xx = ws.xx
+        np.multiply(x, -b, out=t)
+        if st.eta0_constant:  # no covariates nor offset: eta0 folds into the intercepts
+            t -= a + st.eta0[0]
+        else:
+            t -= a
+            t -= st.eta0[:, None]
+        np.exp(t, out=t)
+        t += 1.0
+        log_den = sum_log(t)  # sum log(1 + e^-eta)
+        mu = np.reciprocal(t, out=t)
+        m2 = np.multiply(mu, mu, out=ws.scratch(2))
+        s0, s1, s2 = mu.sum(axis=0), np.einsum("ij,ij->j", mu, x), np.einsum("ij,ij->j", mu, xx)
+        q0, q1, q2 = m2.sum(axis=0), np.einsum("ij,ij->j", m2, x), np.einsum("ij,ij->j", m2, xx)
     v = 1.0 - st.y  # l = -sum (1 - y) eta - sum log(1 + e^-eta)
     yx, sx = yx[ws.idx], sx[ws.idx]
     ell = -(v @ st.eta0 + a * v.sum() + b * (sx - yx)) - log_den
@@ -532,13 +660,20 @@ def _evaluate_poisson_profile(st: GLMState, ws: Workspace, yx: np.ndarray, idx, 
     x = ws.x
     b = np.zeros(x.shape[1])
     b[pos] = params[:, 0]
-    e = np.multiply(x, b, out=ws.scratch(1))
-    np.exp(e, out=e)
-    s0 = st.mu0 @ e
-    e *= x
-    s1 = st.mu0 @ e
-    e *= x
-    s2 = st.mu0 @ e
+    e = ws.scratch(1)
+    if _accel.use_numba:
+        linear_predictor(x, b, np.zeros_like(b), np.zeros(x.shape[0]), 1.0, e)
+        np.exp(e, out=e)
+        s0, s1, s2 = sums = np.zeros((3, x.shape[1]))
+        _weighted_moments(e, x, st.mu0, sums)
+    else:
+        np.multiply(x, b, out=e)
+        np.exp(e, out=e)
+        s0 = st.mu0 @ e
+        e *= x
+        s1 = st.mu0 @ e
+        e *= x
+        s2 = st.mu0 @ e
     total = st.y.sum()
     m1 = s1 / s0
     # Log-likelihood gain over the null (where s0 = sum(y) and a = 0): sum(y) a + b y'x.
@@ -553,12 +688,13 @@ def _evaluate_poisson_profile(st: GLMState, ws: Workspace, yx: np.ndarray, idx, 
 def _fit_tile(st: GLMState, ws: Workspace, tile: np.ndarray, sumsq, dead) -> dict[str, np.ndarray]:
     """Marginal fits of the columns of one tile (n, c) of a block; ``dead`` columns are not fitted."""
     n, c = tile.shape
-    x = ws.load(tile)
     C, k = st.design, st.design.shape[1]
+    # x^2 is kept for the numpy route of the intercept-only logistic model.
+    x = ws.load(tile, square=st.family == "logistic" and k == 1 and not _accel.use_numba)
     lhs = np.column_stack([st.y, st.mu0, np.ones(n), C * st.w0[:, None]])
     cross = lhs.T @ x
     yx, mu0x, sx, Cw0x = cross[0], cross[1], cross[2], cross[3:]
-    w0xx = st.w0 @ ws.xx
+    w0xx = st.w0 @ ws.xx if ws.xx.shape[1] else weighted_sumsq(x, st.w0)
     profile = st.family == "poisson" and k == 1
     if profile:
         H0 = (w0xx - mu0x**2 / st.y.sum())[:, None, None]
@@ -616,7 +752,7 @@ def _fit_tile(st: GLMState, ws: Workspace, tile: np.ndarray, sumsq, dead) -> dic
 
 
 def _tiles(n: int, width: int) -> list[slice]:
-    step = max(16, TILE_BYTES // (8 * max(n, 1)))
+    step = max(4, TILE_BYTES // (8 * max(n, 1)))
     return [slice(lo, min(lo + step, width)) for lo in range(0, width, step)]
 
 
@@ -633,7 +769,10 @@ def _lr_statistics(block: Block, st: GLMState) -> dict[str, np.ndarray]:
     x, width = block.values, block.width
     tiles = _tiles(x.shape[0], width)
     ws = Workspace.get(x.shape[0], tiles[0].stop - tiles[0].start)
-    parts = [_fit_tile(st, ws, x[:, sl], block.sumsq[sl], block.constant[sl]) for sl in tiles]
+    try:
+        parts = [_fit_tile(st, ws, x[:, sl], block.sumsq[sl], block.constant[sl]) for sl in tiles]
+    finally:
+        ws.release()
     fit = {key: np.concatenate([part[key] for part in parts]) for key in parts[0]}
     dead = block.constant | ~np.isfinite(fit["var"]) | (fit["var"] <= 0)
     var = np.where(dead, np.inf, fit["var"])
@@ -664,7 +803,7 @@ def _score_statistics(block: Block, st: GLMState) -> dict[str, np.ndarray]:
     lhs = np.column_stack([st.y - st.mu0, st.score_basis])
     cross = lhs.T @ x
     u, gx = cross[0], cross[1:]
-    w0xx = np.einsum("i,ij,ij->j", st.w0, x, x)
+    w0xx = weighted_sumsq(x, st.w0)
     info = w0xx - np.einsum("ij,ij->j", gx, gx)
     dead = block.constant | ~(info > 1e-10 * w0xx)
     info = np.where(dead, 1.0, info)
