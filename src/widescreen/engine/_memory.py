@@ -1,37 +1,44 @@
 """Plan a pass to a memory budget: the sub-block width and the number of worker threads.
 
-The rule (what one worker thread holds at its peak while it processes a block)::
+Notation: n analysed samples (N stored ones), chunks of X of r rows x C features of s bytes each, a
+sub-block of w features, t float64 (n, w) temporaries of the kernel (`PassSpec.temporaries`, 2 by
+default), m responses scored at once (1 + permuted copies), c statistics per feature, k the top-k
+length, T worker threads, f the fan-in of the top-k merge tree (8).
 
-    column   = n_row_chunks * chunk_rows * chunk_cols * itemsize   the block's chunk column, decoded whole
-                                                                   (a chunk cannot be decoded in parts)
-    encoded  = chunk_rows * chunk_cols * itemsize * (1 + 1/256) + 64   one chunk file read into memory,
-                                                                   at worst incompressible
-    sub(w)   = n * w * (itemsize + 8 * (1 + t)) + 2 * m * w * 8     the analysed rows of a sub-block of w
-                                                                   features (copy), its float64 values, t
-                                                                   kernel temporaries of the same size, and
-                                                                   the cross-products and null scores of
-                                                                   the m responses
-    topk     = n * 8 * (2 * min(keep, chunk_cols) + min(keep, w))  the block's running top-k values, one
-                                                                   sub-block's list and their merge
-    stats    = 2 * c * chunk_cols * 8                              the block's c statistic columns
-    thread(w) = column + encoded + sub(w) + topk + stats
+What one worker thread holds at its peak while it processes one block::
 
-and what the process holds besides::
+    column     = ceil(N / r) * r * C * s          the block's chunk column, decoded whole: a chunk
+                                                  cannot be decoded in parts
+    encoded    = 1.25 * (r * C * s * 257/256 + 64)  one chunk file, read into a reused buffer
+                                                  (at worst incompressible)
+    sub(w)     = n * w * (s + 8 * (1 + t))        the analysed rows of one sub-block, its float64
+                 + 2 * m * w * 8                  values and the kernel's temporaries; the
+                                                  cross-products and null scores of the m responses
+    topk(w)    = 8 * n * (2 * min(k, C) + min(k, w))  the block's running top-k values, one
+                                                  sub-block's list and their merge
+    stats      = 2 * c * C * 8                    the block's statistics
+    thread(w)  = column + encoded + sub(w) + topk(w) + stats
 
-    shared(T) = baseline + (split_every + T + 1) * n * keep * 8    interpreter and libraries, and the top-k
-                                                                   records waiting for a merge
+and what the process holds besides the threads::
 
-A plan with T threads and sub-block width w fits when ``shared(T) + T * thread(w) <= budget``. The planner
-takes as many threads as there are cores (or workers' threads) while a sub-block of at least
-``MIN_SUB_BLOCK`` features still fits, then the widest sub-block that fits: the requested width, else the
-largest power of two below it. With one thread and one feature per sub-block the chunk column alone may
-not fit: then the budget is refused with the numbers, since a chunk must be decoded whole.
+    shared(T)  = baseline + (f + T + 1) * 8 * n * k   interpreter and libraries (256 MiB), and the
+                                                  top-k records waiting for a merge
 
-None of these terms grows with the number of features p, so a pass's peak memory is flat in p.
+A plan (T, w) fits when ``shared(T) + T * thread(w) <= budget``. The planner takes the most threads (up
+to the cores, or a cluster worker's threads) for which a sub-block of ``MIN_SUB_BLOCK`` (128) features
+still fits, then the widest sub-block that fits at that thread count: the requested width (never
+exceeded), else the largest power of two below it. If one thread with a one-feature sub-block does not
+fit, the budget is refused with the numbers: the chunk column alone must fit, since a chunk is decoded
+whole; the remedy is a larger budget or a store with fewer features per chunk.
 
-The sub-block width changes the last bits of the kernel's statistics (matrix products round by width), so
-the width is recorded with the pass and a resumed pass keeps it whenever it still fits with at least one
-thread.
+No term grows with the number of features p, so the peak memory of a pass is flat in p. On a cluster
+the budget is that of one worker process and the plan uses 3/4 of it, below the share at which
+distributed pauses a worker (80%).
+
+The sub-block width changes the last bits of the kernel's statistics (matrix products round by width),
+so the width is recorded with the pass, and a resumed pass keeps it whenever it fits at all (with fewer
+threads if need be); only a budget too small for it makes the resumed blocks use a narrower one, which
+the pass reports in its notes.
 """
 
 from __future__ import annotations
@@ -40,8 +47,8 @@ from dataclasses import asdict, dataclass
 
 from dask.utils import format_bytes, parse_bytes
 
-#: Resident memory of a process with the interpreter, numpy, scipy, dask and zarr loaded (measured at
-#: about 130-180 MiB on Linux; rounded up).
+#: Resident memory of a process with the interpreter, numpy, scipy, dask and zarr loaded, before its
+#: blocks: about 180 MiB measured (ru_maxrss of a small pass on Linux); rounded up for other platforms.
 BASELINE_BYTES = 256 * 2**20
 #: Below this sub-block width the per-call overhead outweighs the memory saved; fewer threads first.
 MIN_SUB_BLOCK = 128
@@ -84,8 +91,9 @@ class BlockShape:
 
     @property
     def encoded_bytes(self) -> int:
+        # At worst incompressible (Blosc adds a little), read into a reused buffer grown by 1.25x.
         raw = self.chunk_rows * self.chunk_cols * self.itemsize
-        return raw + raw // 256 + 64
+        return int(1.25 * (raw + raw // 256 + 64))
 
 
 @dataclass(frozen=True)
