@@ -1,0 +1,73 @@
+"""In-memory penalised fits on the shortlist: penalties, losses, lambda paths and tuning.
+
+Pure numpy / scipy / scikit-learn; no I/O. The usual call is::
+
+    path = fit_path(X, y, penalty="scad", loss="gaussian", unpenalized=Z)
+    best = select_model(path, "ebic", n_candidates=p)
+
+``best.coef``, ``best.intercept``, ``best.unpenalized_coef`` and ``best.support`` describe the chosen
+model; ``best.lambdas``, ``best.coefs`` and ``best.criterion_values`` the whole path.
+"""
+
+from ._criteria import bic, default_ebic_gamma, ebic, log_binomial
+from ._estimator import PenalizedRegression
+from ._losses import BinomialLoss, CoxLoss, GaussianLoss, Loss, PoissonLoss, make_loss
+from ._path import fit_path
+from ._penalties import (
+    MCP,
+    SCAD,
+    AdaptiveLasso,
+    Dantzig,
+    ElasticNet,
+    Lasso,
+    Penalty,
+    elastic_net_penalty,
+    lasso_penalty,
+    make_penalty,
+    mcp_derivative,
+    mcp_penalty,
+    mcp_threshold,
+    scad_derivative,
+    scad_penalty,
+    scad_threshold,
+    soft_threshold,
+)
+from ._results import FitResult, PathResult, SolverOptions
+from ._select import cross_validate, select_model
+
+__all__ = [
+    "MCP",
+    "SCAD",
+    "AdaptiveLasso",
+    "BinomialLoss",
+    "CoxLoss",
+    "Dantzig",
+    "ElasticNet",
+    "FitResult",
+    "GaussianLoss",
+    "Lasso",
+    "Loss",
+    "PathResult",
+    "PenalizedRegression",
+    "Penalty",
+    "PoissonLoss",
+    "SolverOptions",
+    "bic",
+    "cross_validate",
+    "default_ebic_gamma",
+    "ebic",
+    "elastic_net_penalty",
+    "fit_path",
+    "lasso_penalty",
+    "log_binomial",
+    "make_loss",
+    "make_penalty",
+    "mcp_derivative",
+    "mcp_penalty",
+    "mcp_threshold",
+    "scad_derivative",
+    "scad_penalty",
+    "scad_threshold",
+    "select_model",
+    "soft_threshold",
+]
