@@ -247,3 +247,12 @@ def test_cli_run_writes_the_tables_and_refuses_bad_options(tmp_path, study):
     assert "penalty" in res.output and "Traceback" not in res.output
     res = runner.invoke(app, [*args, "--out", str(out), "--threshold", "fdr", "-q"])
     assert res.exit_code == 1 and "'threshold' must be one of" in res.output
+
+
+def test_config_round_trips_and_validates():
+    cfg = IterateConfig(response="y", covariates=("age", "sex"), keep=12, split=True, seed=4)
+    assert IterateConfig.from_dict(cfg.to_dict()) == cfg
+    with pytest.raises(ValueError, match="'penalty' must be one of"):
+        IterateConfig(penalty="ridge")
+    with pytest.raises(ValueError, match="'max_iter' must be a non-negative integer"):
+        IterateConfig(max_iter=-1)
