@@ -277,3 +277,21 @@ def test_number_forms_match_python_float(tmp_path, rng):
     # reference: Python's float() (correctly rounded decimal -> binary conversion)
     np.testing.assert_array_equal(ds.X[0], [float(t) for t in tokens])
     assert np.signbit(ds.X[0, tokens.index("-0")])
+
+
+def test_damaged_or_failing_gzip(tmp_path, matrix, monkeypatch):
+    monkeypatch.setattr(ingest, "BATCH_BYTES", 256)  # many batches queued by the reader thread
+    src = write_table(tmp_path / "x.csv.gz", matrix)
+    data = src.read_bytes()
+    src.write_bytes(data[: len(data) // 2])  # truncated stream
+    with pytest.raises(IngestError, match="cannot decompress"):
+        import_table(src, tmp_path / "s")
+    assert_no_store(tmp_path / "s")
+    bad = matrix.copy()
+    bad[1, 2] = np.inf  # written as 'inf', then replaced below by text that is not a number
+    text = gzip.decompress(write_table(tmp_path / "y.csv.gz", bad).read_bytes()).replace(
+        b"inf", b"1x"
+    )
+    (tmp_path / "y.csv.gz").write_bytes(gzip.compress(text))
+    with pytest.raises(IngestError, match=r"line 3 \(sample 's1'\), column 4 \(feature 'f2'\)"):
+        import_table(tmp_path / "y.csv.gz", tmp_path / "s")

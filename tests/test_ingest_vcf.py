@@ -224,3 +224,16 @@ def test_bad_headers(tmp_path):
         "duplicate sample id 'a' at line 3, column 10 and line 3, column 12",
     )
     _fails(tmp_path, HEAD + "\ta\n", "no variant lines")
+
+
+def test_line_that_only_looks_fixed_width(tmp_path):
+    # "0" and "1/0/1" take as many bytes as two 3-character calls: the fixed-width reading must
+    # notice and fall back (haploid 0 -> 0; triploid 1/0/1 -> 2 ALT alleles).
+    lines = [
+        site("1", 1, "a", "A", "G", "GT", "0|1", "1/1"),
+        site("1", 2, "b", "A", "G", "GT", "0", "1/0/1"),
+        site("1", 3, "c", "A", "G", "GT", "1/0/1", "."),
+    ]
+    src = write(tmp_path / "x.vcf", vcf_text(["x", "y"], lines))
+    ds = import_vcf(src, tmp_path / "s")
+    np.testing.assert_array_equal(ds.X[:].T, [[1, 2], [0, 2], [2, M]])

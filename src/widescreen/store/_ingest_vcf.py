@@ -106,6 +106,7 @@ class _Parser:
         self.by_position = id_from == "position"
         self.multiallelic = multiallelic
         self.gt_index: dict[bytes, int] = {}
+        self.n_lines = 0
 
     def fail(self, line: int, msg: str, sample: int | None = None) -> IngestError:
         where = f"{self.name}: line {line}"
@@ -125,6 +126,8 @@ class _Parser:
     def parse(self, buf: bytes, line0: int):
         """Parse whole lines (``buf`` ends with a newline); ``line0`` is the 1-based first line.
 
+        Sets ``n_lines`` to the number of lines in ``buf`` (blank ones included).
+
         Returns
         -------
         rows : ndarray of shape (k, n_samples), int8
@@ -133,30 +136,85 @@ class _Parser:
         lines : ndarray of shape (k,), int64 (1-based line of each feature)
         """
         n = self.n
-        a = np.frombuffer(buf + b"\0\0\0\0", np.uint8)  # padding: fixed-offset looks stay inside
+        a = np.frombuffer(buf, np.uint8)
         nl = np.flatnonzero(a == _NL)
         ls = np.r_[0, nl[:-1] + 1]
         line_no = line0 + np.arange(nl.size)
+        self.n_lines = nl.size
         keep = nl > ls + (a[np.maximum(nl - 1, 0)] == _CR)  # skip blank lines
         nl, ls, line_no = nl[keep], ls[keep], line_no[keep]
         m = nl.size
         if m == 0:
             return np.empty((0, n), np.int8), [], [], np.empty(0, np.int64), np.empty(0, np.int64)
+        first = np.array([self._first_sample(buf, ls[i], nl[i], line_no[i]) for i in range(m)])
+        meta = [self._fixed(buf[ls[i] : first[i] - 1], int(line_no[i])) for i in range(m)]
+        g = np.array([x[5] for x in meta])
+        alleles = np.full((2, m, n), _ABSENT, np.int16)
+        slow = np.ones(m, bool)
+        # Fast path: FORMAT is GT alone and every call has 3 characters ("0|1"), so the sample
+        # part of the line is exactly 4n - 1 bytes and each call sits at a fixed offset.
+        fixed = np.flatnonzero((nl - first == 4 * n - 1) & (g == 0))
+        if fixed.size:
+            codes, good = self._fixed_width(a, first[fixed])
+            alleles[:, fixed[good]] = codes[:, good]
+            slow[fixed[good]] = False
+        slow = np.flatnonzero(slow)
+        if slow.size:
+            sub = b"".join(buf[ls[i] : nl[i] + 1] for i in slow)
+            codes = self._general(sub, [meta[i] for i in slow], line_no[slow])
+            if codes.shape[0] > alleles.shape[0]:
+                wide = np.full((codes.shape[0], m, n), _ABSENT, np.int16)
+                wide[: alleles.shape[0]] = alleles
+                alleles = wide
+            alleles[: codes.shape[0], slow] = codes.reshape(codes.shape[0], slow.size, n)
+        return self._rows(alleles.reshape(alleles.shape[0], m * n), meta, line_no)
+
+    def _first_sample(self, buf: bytes, start: int, stop: int, line: int) -> int:
+        """Byte offset of the first sample field of a line (after the ninth tab)."""
+        p = start
+        for _ in range(9):
+            p = buf.find(b"\t", p, stop)
+            if p < 0:
+                raise self._columns_error(buf, start, stop, line)
+            p += 1
+        return p
+
+    def _columns_error(self, buf: bytes, start: int, stop: int, line: int) -> IngestError:
+        hint = " (a '#' line after the header?)" if buf[start : start + 1] == b"#" else ""
+        n_cols = buf.count(b"\t", start, stop) + 1
+        return self.fail(
+            line,
+            f"{n_cols} tab-separated columns; expected {9 + self.n} "
+            f"(9 fixed and {self.n} samples){hint}",
+        )
+
+    def _fixed_width(self, a: np.ndarray, first: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+        """Allele codes (2, lines, n) of lines laid out as "a|b\ta/b\t...\n", and which lines are."""
+        n = self.n
+        M = np.empty((first.size, 4 * n), np.uint8)
+        for r, s in enumerate(first):  # one copy per line, no per-sample work
+            M[r] = a[s : s + 4 * n]
+        M = M.reshape(first.size, n, 4)
+        d0, d2 = _CODE[M[..., 0]], _CODE[M[..., 2]]
+        ok = (d0 != _BAD) & (d2 != _BAD) & ((M[..., 1] == _BAR) | (M[..., 1] == _SLASH))
+        ok[:, :-1] &= M[:, :-1, 3] == _TAB
+        ok[:, -1] &= M[:, -1, 3] == _NL
+        return np.stack([d0, d2]), ok.all(axis=1)
+
+    def _general(self, sub: bytes, meta, line_no) -> np.ndarray:
+        """Allele codes (ploidy, lines * n) of whole lines in any layout."""
+        n = self.n
+        a = np.frombuffer(sub + b"\0\0\0\0", np.uint8)  # padding: fixed-offset looks stay inside
+        nl = np.flatnonzero(a == _NL)
+        ls = np.r_[0, nl[:-1] + 1]
         tabs = np.flatnonzero(a == _TAB)
         n_tabs = np.searchsorted(tabs, nl) - np.searchsorted(tabs, ls)
         bad = np.flatnonzero(n_tabs != 8 + n)
         if bad.size:
             i = bad[0]
-            hint = " (a '#' line after the header?)" if a[ls[i]] == ord("#") else ""
-            raise self.fail(
-                int(line_no[i]),
-                f"{n_tabs[i] + 1} tab-separated columns; expected {9 + n} (9 fixed and {n} "
-                f"samples){hint}",
-            )
-        T = tabs.reshape(m, 8 + n)
-        meta = [self._fixed(buf[ls[i] : T[i, 8]], int(line_no[i])) for i in range(m)]
-        alleles = self._alleles(a, T, nl, meta, line_no)
-        return self._rows(alleles, meta, line_no)
+            raise self._columns_error(sub, int(ls[i]), int(nl[i]), int(line_no[i]))
+        T = tabs.reshape(nl.size, 8 + n)
+        return self._alleles(a, T, nl, meta, line_no)
 
     def _fixed(self, text: bytes, line: int):
         chrom, pos, vid, ref, alt, _qual, _filt, _info, fmt = text.split(b"\t")
@@ -349,7 +407,7 @@ def import_vcf(
         ) as writer:
             for buf in _batches(source, head):
                 rows, ids, chrom, pos, lines = parser.parse(buf, line)
-                line += buf.count(b"\n")
+                line += parser.n_lines
                 if ids:
                     writer.append(rows.T, ids, chrom, pos)
                     all_ids.append(np.asarray(ids, dtype=str))
