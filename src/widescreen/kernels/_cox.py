@@ -10,7 +10,10 @@ Risk-set sums for all features at once: samples are sorted by decreasing time on
 risk set of a time is a prefix of that order and its sums ``S_p = sum exp(eta) x^p`` (p = 0, 1, 2) are
 cumulative sums down the rows of an (n, width) array, read at the last row of each tie group (the first
 row of the group in increasing-time order: ties share the whole group in their risk set). Each Newton step
-is a handful of whole-tile array operations and a (width,)-vector update, never a loop over features.
+is a handful of whole-tile array operations and a (width,)-vector update, never a loop over features; with
+numba installed (the store's switch ``_accel.use_numba``) the risk-set sums and their event-time
+reductions are one compiled walk down the rows instead. Newton iterations, step halving and convergence
+are those of `widescreen.kernels._glm` (a feature starts at b = 0, where S0 is shared by all features).
 
 Statistics: ``beta`` (log hazard ratio per unit of the feature), ``std_error`` and ``z`` (Wald, observed
 information), ``lr_chi2`` (partial-likelihood ratio), ``p_value`` (chi-square, 1 df, of ``lr_chi2``),
