@@ -9,6 +9,7 @@ import io
 import numpy as np
 import pytest
 
+import widescreen.store._ingest_fields as fields
 import widescreen.store._ingest_text as ingest
 from widescreen.store import StoreError, open_dataset
 from widescreen.store._ingest_text import IngestError, import_table
@@ -67,7 +68,7 @@ def matrix(rng):
 @pytest.mark.parametrize("batch", [None, 37, 5])
 def test_csv_round_trip_matches_csv_module(tmp_path, matrix, monkeypatch, batch):
     if batch:  # tiny batches cut lines mid-row and even mid-field
-        monkeypatch.setattr(ingest, "BATCH_BYTES", batch)
+        monkeypatch.setattr(fields, "BATCH_BYTES", batch)
     src = write_table(tmp_path / "x.csv", matrix)
     ds = import_table(src, tmp_path / "s", chunk_features=16)
     fids, sids, ref = read_reference(src, ",")  # reference: csv module + float()
@@ -89,7 +90,7 @@ def test_tsv_gzip_float64_matches_loadtxt(tmp_path, rng):
 
 
 def test_transposed_file(tmp_path, matrix, monkeypatch):
-    monkeypatch.setattr(ingest, "BATCH_BYTES", 300)
+    monkeypatch.setattr(fields, "BATCH_BYTES", 300)
     src = write_table(tmp_path / "x.txt", matrix, delim="\t", missing="NA", transpose=True)
     ds = import_table(src, tmp_path / "s", features_as_rows=True, chunk_features=7)
     _, fids, ref = read_reference(src, "\t")  # rows of the file are features
@@ -141,7 +142,7 @@ def test_unicode_ids(tmp_path):
 
 
 def test_progress_reaches_total(tmp_path, matrix, monkeypatch):
-    monkeypatch.setattr(ingest, "BATCH_BYTES", 500)
+    monkeypatch.setattr(fields, "BATCH_BYTES", 500)
     src = write_table(tmp_path / "x.csv", matrix)
     calls = []
     import_table(src, tmp_path / "s", progress=lambda d, t: calls.append((d, t)))
@@ -188,7 +189,7 @@ def test_non_numeric_cell_transposed(tmp_path):
 
 
 def test_bad_cell_after_a_long_line_cut(tmp_path, monkeypatch):
-    monkeypatch.setattr(ingest, "BATCH_BYTES", 8)  # the sample id is in an earlier batch
+    monkeypatch.setattr(fields, "BATCH_BYTES", 8)  # the sample id is in an earlier batch
     _fails(
         tmp_path, "id,a,b,c,d\nr1,1,2,3,4\nrow2,1,2,3,?\n", "line 3 \\(sample 'row2'\\), column 5"
     )
@@ -253,7 +254,7 @@ def test_existing_store_refused_then_overwritten(tmp_path):
 
 
 def test_failure_after_chunks_were_written_leaves_no_store(tmp_path, matrix, monkeypatch):
-    monkeypatch.setattr(ingest, "BATCH_BYTES", 200)
+    monkeypatch.setattr(fields, "BATCH_BYTES", 200)
     src = write_table(tmp_path / "x.csv", matrix, transpose=True)
     with open(src, "a") as fh:
         fh.write("f_last," + ",".join(["1"] * 22) + ",bad\n")
@@ -280,7 +281,7 @@ def test_number_forms_match_python_float(tmp_path, rng):
 
 
 def test_damaged_or_failing_gzip(tmp_path, matrix, monkeypatch):
-    monkeypatch.setattr(ingest, "BATCH_BYTES", 256)  # many batches queued by the reader thread
+    monkeypatch.setattr(fields, "BATCH_BYTES", 256)  # many batches queued by the reader thread
     src = write_table(tmp_path / "x.csv.gz", matrix)
     data = src.read_bytes()
     src.write_bytes(data[: len(data) // 2])  # truncated stream

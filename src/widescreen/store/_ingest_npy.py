@@ -19,18 +19,16 @@ Conversions (``value_kind`` inferred from the dtype unless given):
 from __future__ import annotations
 
 import os
-from collections.abc import Callable, Sequence
+from collections.abc import Sequence
 from pathlib import Path
 
 import numpy as np
 
 from ._format import MISSING_INT8, Dataset, DatasetWriter
-from ._ingest_text import IngestError, check_unique, chunk_shape, read_columns
+from ._ingest_base import IngestError, Progress, check_unique, chunk_shape, read_columns
 
 #: Bytes of X read per group of feature columns.
 MEMORY_BUDGET = 128 * 2**20
-
-Progress = Callable[[int, int], None] | None
 
 
 def read_ids(ids, expected: int, what: str, default_prefix: str) -> np.ndarray:

@@ -12,11 +12,10 @@ removed; a cell may not contain the delimiter. Windows line ends are accepted.
 
 How memory stays bounded
 ------------------------
-The file is read in batches of bytes (`BATCH_BYTES`), cut at a line end or, inside a very long line, at
-a delimiter. Each batch is split into fields with numpy byte operations (positions of delimiters and
-newlines, then each field's line and column), and all its numeric cells are converted in one call
-(fixed-width byte strings cast to float), so no Python code runs per cell and no line is ever held
-whole: a single row of ten million features costs no more than a batch.
+The file is read in batches of bytes (``_ingest_fields.BATCH_BYTES``), cut at a line end or, inside a
+very long line, at a delimiter. Each batch is split into fields with numpy byte operations and all its
+numeric cells are converted together (see `_ingest_fields`), so no Python code runs per cell and no
+line is ever held whole: a single row of ten million features costs no more than a batch.
 
 * ``features_as_rows=True``: rows are features, which is the store's streaming direction. Complete rows
   are buffered up to one chunk of features and handed to the writer.
@@ -35,414 +34,31 @@ any error, so a failed import never leaves a store that `open_dataset` accepts.
 
 from __future__ import annotations
 
-import gzip
 import os
-import queue
 import tempfile
-import threading
-import zlib
-from collections.abc import Callable, Iterator
-from dataclasses import dataclass
 from pathlib import Path
 
 import numpy as np
 
-from ._format import (
-    MAX_SAMPLES_PER_CHUNK,
-    MISSING_INT8,
-    Dataset,
-    DatasetWriter,
-    StoreError,
-    default_chunks,
+from ._format import Dataset, DatasetWriter
+from ._ingest_base import (
+    IngestError,
+    Progress,
+    Source,
+    check_unique,
+    chunk_shape,
+    read_columns,
 )
+from ._ingest_fields import Fields, decode_cells, iter_fields, parse_dosages, parse_numbers
+
+__all__ = ["DELIMITERS", "MISSING_TOKENS", "IngestError", "import_table"]
 
 #: Known extensions (before an optional ``.gz``) and their delimiters.
 DELIMITERS = {".csv": ",", ".tsv": "\t", ".txt": "\t"}
 #: Cells read as missing.
 MISSING_TOKENS = ("", "NA", "NaN", "nan", ".")
-#: Bytes of text parsed per batch.
-BATCH_BYTES = 8 * 2**20
 #: Bytes of values held at once when writing chunks from the temporary file.
 MEMORY_BUDGET = 128 * 2**20
-#: Numeric cells longer than this are parsed one by one (keeps the byte matrices small).
-LONG_CELL = 32
-_SLICE = 2**18  # cells converted per numpy call
-_PLAIN_WIDTH = 17  # sign, 15 digits and a point
-_POW10 = 10.0 ** np.arange(16)
-_NL, _CR, _QUOTE = 10, 13, 34
-
-Progress = Callable[[int, int], None] | None
-
-
-class IngestError(StoreError):
-    """An input file cannot be imported: what is wrong and where (file, line, column)."""
-
-
-def check_unique(ids: np.ndarray, where_fn: Callable[[int], str], src: str, what: str) -> None:
-    """Raise `IngestError` naming the first duplicated id and both of its positions."""
-    if ids.size < 2:
-        return
-    order = np.argsort(ids, kind="stable")
-    srt = ids[order]
-    dup = np.flatnonzero(srt[1:] == srt[:-1])
-    if dup.size:
-        # Among all duplicated pairs report the one whose second occurrence comes first in the file.
-        second = order[dup + 1]
-        k = int(np.argmin(second))
-        i, j = int(order[dup[k]]), int(second[k])
-        raise IngestError(
-            f"{src}: duplicate {what} id {str(ids[j])!r} at {where_fn(i)} and {where_fn(j)}"
-        )
-
-
-def read_columns(
-    fd: int,
-    offset: int,
-    shape: tuple[int, int],
-    dtype: np.dtype,
-    start: int,
-    stop: int,
-    *,
-    fortran: bool = False,
-) -> np.ndarray:
-    """Read columns ``start:stop`` of a matrix stored raw in a file.
-
-    Parameters
-    ----------
-    fd : int
-        Open file descriptor.
-    offset : int
-        Byte offset of element (0, 0).
-    shape : (int, int)
-        (n_rows, n_cols) of the stored matrix.
-    dtype : numpy dtype
-    start, stop : int
-        Column range.
-    fortran : bool
-        Column-major storage (each column contiguous) instead of row-major.
-
-    Returns
-    -------
-    ndarray of shape (n_rows, stop - start), a new array
-    """
-    n_rows, n_cols = shape
-    dtype = np.dtype(dtype)
-    size = dtype.itemsize
-    width = stop - start
-    if fortran:
-        # Columns are contiguous: one read of the whole range.
-        out = np.empty((width, n_rows), dtype)
-        _pread_exact(fd, out, offset + start * n_rows * size)
-        return out.T
-    out = np.empty((n_rows, width), dtype)
-    if width == n_cols:
-        _pread_exact(fd, out, offset)
-        return out
-    row_bytes = n_cols * size
-    base = offset + start * size
-    for i in range(n_rows):  # one read per row (sample); the columns come in one piece
-        _pread_exact(fd, out[i], base + i * row_bytes)
-    return out
-
-
-def _pread_exact(fd: int, out: np.ndarray, pos: int) -> None:
-    view = memoryview(out).cast("B")
-    done = 0
-    while done < view.nbytes:
-        got = os.preadv(fd, [view[done:]], pos + done)
-        if got == 0:
-            raise IngestError(f"file ended early at byte {pos + done} (truncated?)")
-        done += got
-
-
-class Source:
-    """A binary reader over a plain or gzip file, and the compressed bytes consumed so far.
-
-    A gzip file is decompressed by a background thread, one batch ahead: zlib releases the GIL,
-    so decompression overlaps with parsing on a second core. At most two batches wait in memory.
-    """
-
-    def __init__(self, path: str) -> None:
-        self.raw = open(path, "rb")
-        self.name = path
-        self.size = os.fstat(self.raw.fileno()).st_size
-        self.gzip = self.raw.read(2) == b"\x1f\x8b"
-        self.raw.seek(0)
-        self._queue: queue.Queue | None = None
-        self._stop = threading.Event()
-
-    def _decompress(self, n: int) -> None:
-        try:
-            with gzip.GzipFile(fileobj=self.raw) as gz:
-                while not self._stop.is_set():
-                    chunk = gz.read(n)
-                    self._queue.put(chunk)
-                    if not chunk:
-                        return
-        except (OSError, EOFError, zlib.error) as exc:  # a damaged gzip stream
-            self._queue.put(IngestError(f"{self.name}: cannot decompress: {exc}"))
-
-    def read(self, n: int) -> bytes:
-        """The next piece of up to about ``n`` bytes; empty at the end."""
-        if not self.gzip:
-            return self.raw.read(n)
-        if self._queue is None:
-            self._queue = queue.Queue(maxsize=2)
-            self._thread = threading.Thread(target=self._decompress, args=(n,), daemon=True)
-            self._thread.start()
-        item = self._queue.get()
-        if isinstance(item, Exception):
-            raise item
-        return item
-
-    def tell(self) -> int:
-        return self.raw.tell()
-
-    def close(self) -> None:
-        if self._queue is not None:
-            self._stop.set()
-            while self._thread.is_alive():  # unblock a pending put, then let the thread end
-                try:
-                    self._queue.get(timeout=0.05)
-                except queue.Empty:
-                    pass
-        self.raw.close()
-
-
-@dataclass(frozen=True)
-class Fields:
-    """The fields of one batch of text.
-
-    Attributes
-    ----------
-    buf : ndarray of shape (n_bytes,), uint8
-    start, stop : ndarray of shape (k,), int64
-        Byte range of each field in ``buf`` (a carriage return before a newline excluded).
-    line, col : ndarray of shape (k,), int64
-        0-based line of the file and 0-based field index within the line.
-    eol : ndarray of shape (k,), bool
-        The field is the last of its line.
-    """
-
-    buf: np.ndarray
-    start: np.ndarray
-    stop: np.ndarray
-    line: np.ndarray
-    col: np.ndarray
-    eol: np.ndarray
-
-    def text(self, i: int, limit: int = 40) -> str:
-        s = self.buf[self.start[i] : self.stop[i]].tobytes().decode("utf-8", "replace")
-        return s if len(s) <= limit else s[:limit] + "..."
-
-
-def iter_fields(src: Source, delim: int, batch_bytes: int | None = None) -> Iterator[Fields]:
-    """Split a delimited file into batches of fields, each cut at a line end or at a delimiter."""
-    batch_bytes = batch_bytes or BATCH_BYTES
-    line, col = 0, 0
-    carry = b""
-    first = True
-    while True:
-        chunk = src.read(batch_bytes)
-        if first:
-            chunk = chunk.removeprefix(b"\xef\xbb\xbf")  # UTF-8 byte-order mark
-            first = False
-        buf = carry + chunk if carry else chunk
-        if not chunk:
-            if not buf:
-                return
-            if not buf.endswith(b"\n"):
-                buf += b"\n"
-            cut = len(buf)
-        else:
-            cut = buf.rfind(b"\n") + 1
-            if cut == 0:  # inside a line longer than the batch: cut at a delimiter
-                cut = buf.rfind(bytes([delim])) + 1
-                if cut == 0:  # inside a single huge field: read on
-                    carry = buf
-                    continue
-        carry = buf[cut:]
-        fields = _split(np.frombuffer(buf, np.uint8, count=cut), delim, line, col)
-        n_eol = int(fields.eol.sum())
-        line += n_eol
-        col = 0 if fields.eol[-1] else int(fields.col[-1]) + 1
-        yield fields
-
-
-def _split(a: np.ndarray, delim: int, line0: int, col0: int) -> Fields:
-    sep = np.flatnonzero((a == delim) | (a == _NL))  # a ends with a separator
-    k = sep.size
-    start = np.empty(k, np.int64)
-    start[0] = 0
-    start[1:] = sep[:-1] + 1
-    stop = sep.astype(np.int64)
-    eol = a[sep] == _NL
-    cr = np.flatnonzero(eol & (stop > start))
-    cr = cr[a[stop[cr] - 1] == _CR]
-    stop[cr] -= 1
-    ends_before = np.cumsum(eol) - eol  # lines finished before each field
-    first_field = np.flatnonzero(np.r_[True, eol[:-1]])
-    col = np.arange(k, dtype=np.int64) - first_field[ends_before]
-    col[ends_before == 0] += col0
-    return Fields(a, start, stop, line0 + ends_before, col, eol)
-
-
-def byte_strings(buf: np.ndarray, start: np.ndarray, length: np.ndarray, width: int) -> np.ndarray:
-    """Cells as a fixed-width byte-string array of shape (k,), dtype ``S{width}``, NUL padded."""
-    idx = start[:, None] + np.arange(width)
-    np.minimum(idx, buf.size - 1, out=idx)
-    m = buf[idx]
-    m[np.arange(width) >= length[:, None]] = 0
-    return m.view(f"S{width}").ravel()
-
-
-def decode_cells(buf: np.ndarray, start: np.ndarray, stop: np.ndarray) -> np.ndarray:
-    """Id cells as a unicode array, one surrounding pair of double quotes removed."""
-    start, stop = start.copy(), stop.copy()
-    q = np.flatnonzero(stop - start >= 2)
-    q = q[(buf[start[q]] == _QUOTE) & (buf[stop[q] - 1] == _QUOTE)]
-    start[q] += 1
-    stop[q] -= 1
-    length = stop - start
-    if length.size == 0:
-        return np.empty(0, "U1")
-    out = []
-    for s0 in range(0, length.size, _SLICE // 4):
-        sl = slice(s0, s0 + _SLICE // 4)
-        w = max(int(length[sl].max()), 1)
-        s = byte_strings(buf, start[sl], length[sl], w)
-        ascii_only = not np.any(s.view(np.uint8) >= 128)
-        out.append(s.astype(f"U{w}") if ascii_only else np.strings.decode(s, "utf-8"))
-    return np.concatenate(out) if len(out) > 1 else out[0]
-
-
-def parse_numbers(buf: np.ndarray, start: np.ndarray, stop: np.ndarray) -> tuple[np.ndarray, int]:
-    """Numeric cells as float64 (missing tokens -> NaN) and the index of the first bad cell, or -1.
-
-    Plain decimals (``-12.5``, at most 15 digits) are converted by `_plain_decimals`; every other
-    cell (exponents, ``inf``, missing tokens, bad text) goes through numpy's string cast.
-    """
-    out = np.empty(start.size, np.float64)
-    for s0 in range(0, start.size, _SLICE):
-        sl = slice(s0, s0 + _SLICE)
-        out[sl], other = _plain_decimals(buf, start[sl], stop[sl] - start[sl])
-        idx = s0 + np.flatnonzero(other)
-        if idx.size:
-            out[idx], bad = _parse_general(buf, start[idx], stop[idx])
-            if bad >= 0:
-                return out, int(idx[bad])
-    return out, -1
-
-
-def _plain_decimals(
-    buf: np.ndarray, start: np.ndarray, length: np.ndarray
-) -> tuple[np.ndarray, np.ndarray]:
-    """Convert cells of the form ``[+-]digits[.digits]`` (1 to 15 digits) without Python code.
-
-    The digits are accumulated column by column into an exact int64 mantissa m; the value is
-    m / 10**f for f digits after the point. Both are exact doubles (m < 2**53, f <= 15), so the one
-    division rounds correctly: the result is the same double a decimal-to-binary conversion gives.
-
-    Returns the values and a mask of the cells not of that form (left for `_parse_general`).
-    """
-    k = start.size
-    width = int(min(length.max(initial=0), _PLAIN_WIDTH))
-    mant = np.zeros(k, np.float64)  # integers below 2**53 are exact in a double
-    step = np.empty(k, np.float64)
-    n_digits = np.zeros(k, np.int8)
-    n_frac = np.zeros(k, np.int8)
-    seen_dot = np.zeros(k, bool)
-    other = (length == 0) | (length > _PLAIN_WIDTH)
-    first = buf[start]
-    neg = first == ord("-")
-    signed = neg | (first == ord("+"))
-    pos = start.copy()
-    for j in range(width):  # one pass per character position, over all cells at once
-        live = length > j
-        c = buf.take(pos, mode="clip") if j else first
-        digit = (c - np.uint8(ord("0"))) <= 9  # uint8 wraps below '0'
-        digit &= live
-        dot = c == ord(".")
-        dot &= live
-        np.multiply(mant, 10.0, out=step)
-        step += c
-        step -= ord("0")
-        np.copyto(mant, step, where=digit)
-        n_digits += digit
-        n_frac += digit & seen_dot
-        other |= dot & seen_dot  # a second point
-        seen_dot |= dot
-        stray = live & ~(digit | dot)
-        if j == 0:
-            stray &= ~signed
-        other |= stray
-        pos += 1
-    other |= (n_digits == 0) | (n_digits > 15)
-    vals = mant / _POW10[np.minimum(n_frac, 15)]
-    np.negative(vals, out=vals, where=neg)
-    return vals, other
-
-
-def _parse_general(buf: np.ndarray, start: np.ndarray, stop: np.ndarray) -> tuple[np.ndarray, int]:
-    """Any cell through numpy's string-to-float cast (Python's float syntax); missing -> NaN."""
-    k = start.size
-    out = np.empty(k, np.float64)
-    length = stop - start
-    long_cells = np.flatnonzero(length > LONG_CELL)
-    bad = -1
-    for s0 in range(0, k, _SLICE):
-        sl = slice(s0, s0 + _SLICE)
-        ln = np.where(length[sl] > LONG_CELL, 0, length[sl])
-        w = max(int(ln.max(initial=0)), 3)
-        s = byte_strings(buf, start[sl], ln, w)
-        s[(ln == 0) | (s == b"NA") | (s == b".")] = b"nan"
-        try:
-            out[sl] = s.astype(np.float64)
-        except ValueError:
-            bad = s0 + _first_bad(s)
-            break
-    for i in long_cells:
-        if 0 <= bad < i:
-            break
-        try:
-            out[i] = float(buf[start[i] : stop[i]].tobytes())
-        except ValueError:
-            bad = int(i) if bad < 0 else min(bad, int(i))
-            break
-    return out, bad
-
-
-def _first_bad(s: np.ndarray) -> int:
-    """Index of the first element of ``s`` that does not cast to float (bisection over casts)."""
-    lo, hi = 0, s.size
-    while hi - lo > 1:
-        mid = (lo + hi) // 2
-        try:
-            s[lo:mid].astype(np.float64)
-            lo = mid
-        except ValueError:
-            hi = mid
-    return lo
-
-
-def parse_dosages(buf: np.ndarray, start: np.ndarray, stop: np.ndarray) -> tuple[np.ndarray, int]:
-    """Dosage cells 0/1/2 as int8 (missing tokens -> -128) and the first bad cell's index, or -1."""
-    if start.size and np.all(stop - start == 1):  # fast path: single characters
-        c = buf[start]
-        d = c.astype(np.int16) - ord("0")
-        ok = (d >= 0) & (d <= 2)
-        miss = c == ord(".")
-        if np.all(ok | miss):
-            return np.where(miss, MISSING_INT8, d).astype(np.int8), -1
-    vals, bad = parse_numbers(buf, start, stop)
-    upto = vals.size if bad < 0 else bad
-    v = vals[:upto]
-    wrong = np.flatnonzero(~(np.isnan(v) | (v == 0) | (v == 1) | (v == 2)))
-    if wrong.size:
-        bad = int(wrong[0])
-    if bad >= 0:
-        return np.empty(0, np.int8), bad
-    return np.where(np.isnan(vals), MISSING_INT8, vals).astype(np.int8), -1
 
 
 def _delimiter_for(src: str, delimiter: str | None) -> int:
@@ -683,16 +299,6 @@ class _FeatureRows:
     def abort(self) -> None:
         if self.writer is not None:
             self.writer.abort()
-
-
-def chunk_shape(
-    n: int, dtype: str, chunk_features: int | None, n_features: int | None = None
-) -> tuple[int, int]:
-    if chunk_features is None:
-        return default_chunks(n, dtype, n_features)
-    if int(chunk_features) < 1:
-        raise IngestError(f"chunk_features must be a positive integer; got {chunk_features!r}")
-    return (min(n, MAX_SAMPLES_PER_CHUNK), int(chunk_features))
 
 
 def import_table(

@@ -31,12 +31,11 @@ from __future__ import annotations
 
 import os
 import re
-from collections.abc import Callable
 
 import numpy as np
 
 from ._format import MISSING_INT8, Dataset, DatasetWriter
-from ._ingest_text import IngestError, Source, check_unique, chunk_shape
+from ._ingest_base import IngestError, Progress, Source, check_unique, chunk_shape
 
 #: Bytes of VCF text parsed per batch.
 BATCH_BYTES = 4 * 2**20
@@ -54,8 +53,6 @@ _ENDS = np.zeros(256, bool)
 _ENDS[[_COLON, _TAB, _NL, _CR]] = True
 _GT_END = re.compile(rb"[:\t\r\n]")
 _ALLELE_SEP = re.compile(rb"[|/]")
-
-Progress = Callable[[int, int], None] | None
 
 
 def _read_header(source: Source, name: str) -> tuple[np.ndarray, bytes, int]:

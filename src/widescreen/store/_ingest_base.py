@@ -1,0 +1,161 @@
+"""Pieces shared by the importers: the error type, id checks, input files and raw matrix reads."""
+
+from __future__ import annotations
+
+import gzip
+import os
+import queue
+import threading
+import zlib
+from collections.abc import Callable
+
+import numpy as np
+
+from ._format import MAX_SAMPLES_PER_CHUNK, StoreError, default_chunks
+
+Progress = Callable[[int, int], None] | None
+
+
+class IngestError(StoreError):
+    """An input file cannot be imported: what is wrong and where (file, line, column)."""
+
+
+def check_unique(ids: np.ndarray, where_fn: Callable[[int], str], src: str, what: str) -> None:
+    """Raise `IngestError` naming the first duplicated id and both of its positions."""
+    if ids.size < 2:
+        return
+    order = np.argsort(ids, kind="stable")
+    srt = ids[order]
+    dup = np.flatnonzero(srt[1:] == srt[:-1])
+    if dup.size:
+        # Among all duplicated pairs report the one whose second occurrence comes first in the file.
+        second = order[dup + 1]
+        k = int(np.argmin(second))
+        i, j = int(order[dup[k]]), int(second[k])
+        raise IngestError(
+            f"{src}: duplicate {what} id {str(ids[j])!r} at {where_fn(i)} and {where_fn(j)}"
+        )
+
+
+def read_columns(
+    fd: int,
+    offset: int,
+    shape: tuple[int, int],
+    dtype: np.dtype,
+    start: int,
+    stop: int,
+    *,
+    fortran: bool = False,
+) -> np.ndarray:
+    """Read columns ``start:stop`` of a matrix stored raw in a file.
+
+    Parameters
+    ----------
+    fd : int
+        Open file descriptor.
+    offset : int
+        Byte offset of element (0, 0).
+    shape : (int, int)
+        (n_rows, n_cols) of the stored matrix.
+    dtype : numpy dtype
+    start, stop : int
+        Column range.
+    fortran : bool
+        Column-major storage (each column contiguous) instead of row-major.
+
+    Returns
+    -------
+    ndarray of shape (n_rows, stop - start), a new array
+    """
+    n_rows, n_cols = shape
+    dtype = np.dtype(dtype)
+    size = dtype.itemsize
+    width = stop - start
+    if fortran:
+        # Columns are contiguous: one read of the whole range.
+        out = np.empty((width, n_rows), dtype)
+        _pread_exact(fd, out, offset + start * n_rows * size)
+        return out.T
+    out = np.empty((n_rows, width), dtype)
+    if width == n_cols:
+        _pread_exact(fd, out, offset)
+        return out
+    row_bytes = n_cols * size
+    base = offset + start * size
+    for i in range(n_rows):  # one read per row (sample); the columns come in one piece
+        _pread_exact(fd, out[i], base + i * row_bytes)
+    return out
+
+
+def _pread_exact(fd: int, out: np.ndarray, pos: int) -> None:
+    view = memoryview(out).cast("B")
+    done = 0
+    while done < view.nbytes:
+        got = os.preadv(fd, [view[done:]], pos + done)
+        if got == 0:
+            raise IngestError(f"file ended early at byte {pos + done} (truncated?)")
+        done += got
+
+
+class Source:
+    """A binary reader over a plain or gzip file, and the compressed bytes consumed so far.
+
+    A gzip file is decompressed by a background thread, one batch ahead: zlib releases the GIL,
+    so decompression overlaps with parsing on a second core. At most two batches wait in memory.
+    """
+
+    def __init__(self, path: str) -> None:
+        self.raw = open(path, "rb")
+        self.name = path
+        self.size = os.fstat(self.raw.fileno()).st_size
+        self.gzip = self.raw.read(2) == b"\x1f\x8b"
+        self.raw.seek(0)
+        self._queue: queue.Queue | None = None
+        self._stop = threading.Event()
+
+    def _decompress(self, n: int) -> None:
+        try:
+            with gzip.GzipFile(fileobj=self.raw) as gz:
+                while not self._stop.is_set():
+                    chunk = gz.read(n)
+                    self._queue.put(chunk)
+                    if not chunk:
+                        return
+        except (OSError, EOFError, zlib.error) as exc:  # a damaged gzip stream
+            self._queue.put(IngestError(f"{self.name}: cannot decompress: {exc}"))
+
+    def read(self, n: int) -> bytes:
+        """The next piece of up to about ``n`` bytes; empty at the end."""
+        if not self.gzip:
+            return self.raw.read(n)
+        if self._queue is None:
+            self._queue = queue.Queue(maxsize=2)
+            self._thread = threading.Thread(target=self._decompress, args=(n,), daemon=True)
+            self._thread.start()
+        item = self._queue.get()
+        if isinstance(item, Exception):
+            raise item
+        return item
+
+    def tell(self) -> int:
+        return self.raw.tell()
+
+    def close(self) -> None:
+        if self._queue is not None:
+            self._stop.set()
+            while self._thread.is_alive():  # unblock a pending put, then let the thread end
+                try:
+                    self._queue.get(timeout=0.05)
+                except queue.Empty:
+                    pass
+        self.raw.close()
+
+
+def chunk_shape(
+    n: int, dtype: str, chunk_features: int | None, n_features: int | None = None
+) -> tuple[int, int]:
+    if chunk_features is None:
+        return default_chunks(n, dtype, n_features)
+    if int(chunk_features) < 1:
+        raise IngestError(f"chunk_features must be a positive integer; got {chunk_features!r}")
+    return (min(n, MAX_SAMPLES_PER_CHUNK), int(chunk_features))
