@@ -137,11 +137,14 @@ def test_missing_values_are_fitted_as_mean_imputed(rng):
 
 
 @pytest.mark.parametrize("family", ["logistic", "poisson"])
-@pytest.mark.parametrize("covariates", [False, True])
-def test_score_test_equals_statsmodels_score_test(rng, family, covariates):
+@pytest.mark.parametrize(
+    ("covariates", "use_offset"), [(False, False), (False, True), (True, True)]
+)
+def test_score_test_equals_statsmodels_score_test(rng, family, covariates, use_offset):
     X, Z, offset = _design(rng)
     y = _outcome(family, rng, X, Z, offset)
     Z = Z if covariates else None
+    offset = offset if use_offset else None
     prepare, statistics, fam = FAMILIES[family]
     res = statistics(prepare_block(X, 0), prepare(y, Z, offset, test="score"))
     C = np.ones((y.size, 1)) if Z is None else sm.add_constant(Z, has_constant="add")

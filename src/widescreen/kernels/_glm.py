@@ -799,11 +799,17 @@ def _lr_statistics(block: Block, st: GLMState) -> dict[str, np.ndarray]:
 def _score_statistics(block: Block, st: GLMState) -> dict[str, np.ndarray]:
     """Rao score test of b_j = 0: U = x'(y - mu0), I = x'W0 x - |G'x|^2, from one matrix product."""
     _check_block(block, st)
-    x = block.values
-    lhs = np.column_stack([st.y - st.mu0, st.score_basis])
-    cross = lhs.T @ x
+    lhs_t = np.vstack([st.y - st.mu0, st.score_basis.T])
+    if st.eta0_constant:
+        # Constant weights (no covariates nor offset): x' W0 x = w0 sumsq, and the block gives the
+        # cross-products straight from its stored values, without writing out the float64 block.
+        cross = block.cross(lhs_t)
+        w0xx = st.w0[0] * block.sumsq
+    else:
+        x = block.values
+        cross = lhs_t @ x
+        w0xx = weighted_sumsq(x, st.w0)
     u, gx = cross[0], cross[1:]
-    w0xx = weighted_sumsq(x, st.w0)
     info = w0xx - np.einsum("ij,ij->j", gx, gx)
     dead = block.constant | ~(info > 1e-10 * w0xx)
     info = np.where(dead, 1.0, info)
@@ -817,7 +823,7 @@ def _score_statistics(block: Block, st: GLMState) -> dict[str, np.ndarray]:
         "p_value": np.where(dead, 1.0, special.chdtrc(1, chi2)),
         "beta": beta,
         "std_error": np.where(dead, np.inf, 1.0 / np.sqrt(info)),
-        "std_beta": beta * np.sqrt(block.sumsq / x.shape[0]),
+        "std_beta": beta * np.sqrt(block.sumsq / st.n_samples),
         "degenerate": dead,
     }
 
