@@ -8,6 +8,7 @@ from ._memory import (
     MemoryPlan,
     parse_budget,
     plan_memory,
+    process_baseline,
     thread_bytes,
 )
 from ._pass import build_pass, read_stats, run_pass
@@ -47,6 +48,7 @@ __all__ = [
     "open_executor",
     "parse_budget",
     "plan_memory",
+    "process_baseline",
     "process_block",
     "read_marker",
     "read_stats",

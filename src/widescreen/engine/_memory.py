@@ -21,8 +21,10 @@ What one worker thread holds at its peak while it processes one block::
 
 and what the process holds besides the threads::
 
-    shared(T)  = baseline + (f + T + 1) * 8 * n * k   interpreter and libraries (256 MiB), and the
-                                                  top-k records waiting for a merge
+    shared(T)  = baseline + (f + T + 1) * 8 * n * k   the process itself, and the top-k records
+                                                  waiting for a merge; baseline = 256 MiB
+                                                  (interpreter and libraries), or the resident
+                                                  memory of the calling process when larger
 
 A plan (T, w) fits when ``shared(T) + T * thread(w) <= budget``. The planner takes the most threads (up
 to the cores, or a cluster worker's threads) for which a sub-block of ``MIN_SUB_BLOCK`` (128) features
@@ -112,6 +114,8 @@ class MemoryPlan:
         Peak bytes of one worker thread at ``sub_block``.
     shared_bytes : int
         Bytes held besides the threads (baseline and top-k records awaiting a merge).
+    baseline : int
+        The process's own memory counted in ``shared_bytes``.
     """
 
     budget: int
@@ -119,6 +123,7 @@ class MemoryPlan:
     n_threads: int
     thread_bytes: int
     shared_bytes: int
+    baseline: int = BASELINE_BYTES
 
     @property
     def peak_bytes(self) -> int:
@@ -126,6 +131,18 @@ class MemoryPlan:
 
     def to_dict(self) -> dict:
         return {**asdict(self), "peak_bytes": self.peak_bytes}
+
+
+def process_baseline() -> int:
+    """`BASELINE_BYTES`, or the resident memory of this process when that is larger (a budget is what
+    the whole process may use, so memory it already holds counts)."""
+    try:
+        import psutil
+
+        rss = int(psutil.Process().memory_info().rss)
+    except Exception:  # pragma: no cover - psutil is a dependency; keep planning without it
+        rss = 0
+    return max(BASELINE_BYTES, rss)
 
 
 def parse_budget(value: int | str | None) -> int | None:
@@ -220,7 +237,7 @@ def plan_memory(
     split_every : int
         Fan-in of the top-k merge tree.
     baseline : int
-        Bytes of the process before the pass.
+        Bytes of the process before the pass (`process_baseline` for the calling process).
     prefer_sub_block : int, optional
         A width already used by this pass (on resume): kept when it fits the chosen thread count, so
         the resumed statistics stay bit-identical.
@@ -253,7 +270,7 @@ def plan_memory(
         for t in range(max_threads, 0, -1):
             ok, per, shared = fits(t, prefer_sub_block)
             if ok:
-                return MemoryPlan(total, prefer_sub_block, t, per, shared)
+                return MemoryPlan(total, prefer_sub_block, t, per, shared, baseline)
     floor_w = min(MIN_SUB_BLOCK, cap)
     for t in range(max_threads, 0, -1):
         if t > 1 and not fits(t, floor_w)[0]:
@@ -261,7 +278,7 @@ def plan_memory(
         for w in widths:
             ok, per, shared = fits(t, w)
             if ok:
-                return MemoryPlan(total, w, t, per, shared)
+                return MemoryPlan(total, w, t, per, shared, baseline)
     per = thread_bytes(shape, 1, temporaries=temporaries, **kw)
     shared = shared_bytes(shape, 1, keep=keep, split_every=split_every, baseline=baseline)
     n_row_chunks = -(-shape.n_samples // shape.chunk_rows)
@@ -271,7 +288,8 @@ def plan_memory(
         f"{shape.chunk_cols} values of {shape.itemsize} byte(s), {format_bytes(shape.column_bytes)}, "
         f"is decoded whole; its chunk file takes up to {format_bytes(shape.encoded_bytes)}; the "
         f"top-{keep} values {format_bytes(2 * shape.n_analysed * min(keep, shape.chunk_cols) * 8)}) on top of "
-        f"{format_bytes(shared)} for the process and pending merges; give at least "
+        f"{format_bytes(shared)} for the process ({format_bytes(baseline)} of its own) and pending "
+        "merges; give at least "
         f"{format_bytes(per + shared)}, or store X with fewer features per chunk"
     )
 
@@ -283,5 +301,6 @@ __all__ = [
     "MemoryPlan",
     "parse_budget",
     "plan_memory",
+    "process_baseline",
     "thread_bytes",
 ]

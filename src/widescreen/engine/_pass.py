@@ -25,7 +25,15 @@ import numpy as np
 import zarr
 
 from ._block import fetch_columns, process_block, read_marker, stats_codecs_ok
-from ._memory import CLUSTER_SHARE, MemoryBudgetError, MemoryPlan, parse_budget, plan_memory
+from ._memory import (
+    BASELINE_BYTES,
+    CLUSTER_SHARE,
+    MemoryBudgetError,
+    MemoryPlan,
+    parse_budget,
+    plan_memory,
+    process_baseline,
+)
 from ._runfolder import RunFolder, RunFolderError, atomic_write
 from ._scheduler import Executor, n_cores, open_executor
 from ._source import BlockSource
@@ -157,9 +165,10 @@ def _choose_sub_block(
     if ex.memory_per_worker is None:
         # No budget: keep a recorded width that is within the requested one.
         return (recorded if recorded is not None and recorded <= cap else cap), None
-    budget = ex.memory_per_worker
+    budget, baseline = ex.memory_per_worker, process_baseline()
     if ex.kind == "distributed":
-        budget = int(budget * CLUSTER_SHARE)
+        # A worker's own memory before its first task is not known here: the fixed estimate.
+        budget, baseline = int(budget * CLUSTER_SHARE), BASELINE_BYTES
     plan = plan_memory(
         budget,
         source.block_shape(spec.n_analysed),
@@ -170,6 +179,7 @@ def _choose_sub_block(
         n_columns=len(spec.all_columns),
         temporaries=spec.temporaries,
         prefer_sub_block=recorded,
+        baseline=baseline,
     )
     if ex.kind == "distributed" and plan.n_threads < ex.threads_per_worker:
         raise MemoryBudgetError(
