@@ -7,6 +7,7 @@ worker thread runs its kernel single-threaded):
 * ``prepare``: `prepare_block` on the raw block plus materialising ``block.values`` (what any kernel that
   needs the centred values pays before its own work; the linear kernel needs only ``block.cross``);
 * each kernel on a block whose values are already materialised (kernel time proper), and per feature;
+  ``_score`` is the score-test option, ``_cov`` a logistic pass with 3 covariates (offset mode);
 * ``pass-like``: `prepare_block` + kernel from the raw block, the in-memory part of a pass (decoding and
   reading the chunk files come on top and are the same for every kernel);
 * a per-feature statsmodels loop (GLM Binomial / Poisson, PHReg Breslow) on ``--sm-features`` features,
@@ -68,6 +69,7 @@ def _outcomes(rng: np.random.Generator, x: np.ndarray) -> dict[str, np.ndarray]:
         "y_poisson": rng.poisson(np.exp(signal)).astype(float),
         "time": np.minimum(t_event, t_censor),
         "event": (t_event <= t_censor).astype(int),
+        "covariates": rng.standard_normal((n, 3)),
     }
 
 
@@ -132,6 +134,8 @@ def main() -> None:
         "linear": prepare_linear(out["y_linear"]),
         "logistic": prepare_logistic(out["y_logistic"]),
         "logistic_score": prepare_logistic(out["y_logistic"], test="score"),
+        "logistic_cov": prepare_logistic(out["y_logistic"], out["covariates"]),
+        "logistic_score_cov": prepare_logistic(out["y_logistic"], out["covariates"], test="score"),
         "poisson": prepare_poisson(out["y_poisson"]),
         "poisson_score": prepare_poisson(out["y_poisson"], test="score"),
         "cox": prepare_cox(out["time"], out["event"]),
@@ -140,6 +144,8 @@ def main() -> None:
         "linear": linear_statistics,
         "logistic": logistic_statistics,
         "logistic_score": logistic_statistics,
+        "logistic_cov": logistic_statistics,
+        "logistic_score_cov": logistic_statistics,
         "poisson": poisson_statistics,
         "poisson_score": poisson_statistics,
         "cox": cox_statistics,

@@ -421,12 +421,12 @@ def cox_statistics(block: Block, state: CoxState) -> dict[str, np.ndarray]:
         ``converged``, ``n_iter``, ``degenerate``. A constant feature has score 0, beta 0, p-value 1 and
         an infinite standard error.
     """
-    x, width = block.values, block.width
-    n = x.shape[0]
+    n, width = block.n_samples, block.width
     if n != state.n_samples:
         raise ValueError(
             f"block at feature {block.start} has {n} samples; the Cox state was built for {state.n_samples}"
         )
+    x = block.values
     step = max(4, _glm.TILE_BYTES // (8 * max(n, 1)))
     tiles = [slice(lo, min(lo + step, width)) for lo in range(0, width, step)]
     ws = _CoxWorkspace.get(n, state.ends.size, step)

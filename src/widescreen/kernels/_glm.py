@@ -757,9 +757,9 @@ def _tiles(n: int, width: int) -> list[slice]:
 
 
 def _check_block(block: Block, st: GLMState) -> None:
-    if block.values.shape[0] != st.n_samples:
+    if block.n_samples != st.n_samples:
         raise ValueError(
-            f"block at feature {block.start} has {block.values.shape[0]} samples; "
+            f"block at feature {block.start} has {block.n_samples} samples; "
             f"the {st.family} state was built for {st.n_samples}"
         )
 
