@@ -17,7 +17,7 @@ import numcodecs.blosc as blosc
 import numpy as np
 
 from . import _accel
-from ._format import Dataset, StoreError
+from ._format import MISSING_INT8, Dataset, StoreError
 
 # Decoding runs inside Dask worker threads; Blosc's own thread pool would oversubscribe the cores.
 blosc.use_threads = False
@@ -268,11 +268,15 @@ class Block:
         """
         index = np.asarray(index, dtype=np.intp)
         self._check_raw()
-        out = np.empty((self.n_samples, index.size), np.float64, order="F")
-        if index.size:
-            tmp = np.empty((self.n_samples, index.size), np.float64)
-            _accel.centre_into(self.raw[:, index], self.mean[index], tmp)
-            out[:] = tmp
+        # np.take gathers columns several times faster than fancy indexing; the result is converted
+        # and centred straight into the Fortran-ordered output.
+        src = np.take(self.raw, index, axis=1)
+        out = np.empty(src.shape, np.float64, order="F")
+        np.copyto(out, src, casting="unsafe")
+        out -= self.mean[index]
+        missing = src == MISSING_INT8 if src.dtype == np.int8 else np.isnan(src)
+        if missing.any():
+            out[missing] = 0.0
         return out
 
 
