@@ -294,6 +294,7 @@ def _run_distributed(
 
     futures = client.get(graph, [*list(block_keys), final_key], sync=False)
     block_futs, final_fut = futures[:-1], futures[-1]
+    del futures  # a block's result is released once merged, unless the caller wants it
     kept = list(block_futs) if want_blocks else []
     done = offset
     if progress is not None:
