@@ -296,3 +296,11 @@ def test_damaged_or_failing_gzip(tmp_path, matrix, monkeypatch):
     (tmp_path / "y.csv.gz").write_bytes(gzip.compress(text))
     with pytest.raises(IngestError, match=r"line 3 \(sample 's1'\), column 4 \(feature 'f2'\)"):
         import_table(tmp_path / "y.csv.gz", tmp_path / "s")
+
+
+def test_very_long_id_among_many(tmp_path):
+    fids = [f"f{j}" for j in range(999)] + ["L" * 3000]  # too wide for one byte matrix
+    src = tmp_path / "x.csv"
+    src.write_text("id," + ",".join(fids) + "\nr," + ",".join(["1"] * 1000) + "\n")
+    ds = import_table(src, tmp_path / "s")
+    assert list(ds.feature_ids()) == fids

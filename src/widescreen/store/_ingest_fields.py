@@ -20,6 +20,7 @@ BATCH_BYTES = 8 * 2**20
 #: Numeric cells longer than this are parsed one by one (keeps the byte matrices small).
 LONG_CELL = 32
 _SLICE = 2**18  # cells converted per numpy call
+_MAX_MATRIX = 2**21  # cells x width of one byte matrix (its index array takes 8 bytes per entry)
 _PLAIN_WIDTH = 17  # sign, 15 digits and a point
 _POW10 = 10.0 ** np.arange(16)
 _NL, _CR, _QUOTE = 10, 13, 34
@@ -126,6 +127,13 @@ def decode_cells(buf: np.ndarray, start: np.ndarray, stop: np.ndarray) -> np.nda
     for s0 in range(0, length.size, _SLICE // 4):
         sl = slice(s0, s0 + _SLICE // 4)
         w = max(int(length[sl].max()), 1)
+        if w * length[sl].size > _MAX_MATRIX:  # some very long ids: decode them one by one
+            cells = [
+                buf[a:b].tobytes().decode("utf-8", "replace")
+                for a, b in zip(start[sl], stop[sl], strict=True)
+            ]
+            out.append(np.asarray(cells, dtype=str))
+            continue
         s = byte_strings(buf, start[sl], length[sl], w)
         ascii_only = not np.any(s.view(np.uint8) >= 128)
         out.append(s.astype(f"U{w}") if ascii_only else np.strings.decode(s, "utf-8"))

@@ -230,6 +230,9 @@ class _SampleRows:
                 for j0 in range(g0, g1, width):
                     j1 = min(j0 + width, g1)
                     writer.append(vals[:, j0 - g0 : j1 - g0], self.feature_ids[j0:j1])
+                # Drop this group before reading the next, so only one is ever held (the writer
+                # keeps a view only of a final partial chunk, which has no successor).
+                del vals
                 if self.progress is not None:
                     self.progress(self.size + (self.size * g1) // p, 2 * self.size)
             return writer.finalize()

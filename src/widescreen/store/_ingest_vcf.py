@@ -20,11 +20,16 @@ Rules
   A split site's features get ``ID:ALT`` (or ``CHROM:POS:REF:ALT``) each. Duplicate ids are an error
   naming both lines. Annotations ``chrom`` and ``pos`` (the POS column) are stored for every feature.
 
-Speed: the text is parsed in batches of whole lines with numpy byte operations. Tab positions give
-every sample field at once; the usual genotypes (``a|b``, ``a/b`` with single-digit alleles or ``.``,
-and haploid ``a``) are decoded by looking at fixed offsets from each GT start, so Python code runs per
-line (the nine fixed columns) but not per sample; only unusual genotypes (multi-digit alleles,
-polyploid) fall back to a Python parse.
+Speed: the text is parsed in batches of whole lines with numpy byte operations; Python code runs per
+line (the nine fixed columns), never per call.
+
+* Fixed-width lines (FORMAT ``GT`` alone, every call three characters such as ``0|1`` or ``./.``): the
+  sample part of the line is exactly 4n - 1 bytes, so it is copied into an (n, 4) byte matrix and the
+  calls are read from its columns.
+* Any other line: tab positions give every sample field at once and the GT start of each (the g-th
+  colon for GT in FORMAT position g); the usual calls (``a|b``, ``a/b`` with one-digit alleles or
+  ``.``, haploid ``a``) are decoded from fixed offsets after that start. Only unusual calls
+  (multi-digit alleles, more than two alleles) go through a Python parse.
 """
 
 from __future__ import annotations
