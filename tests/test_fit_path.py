@@ -67,7 +67,8 @@ def test_elastic_net_path_equals_sklearn():
     np.testing.assert_allclose(path.coefs_standardized[20], one.coef_, atol=1e-6)
 
 
-def test_weighted_lasso_working_set_equals_sklearn_on_rescaled_columns():
+@pytest.mark.parametrize("reusable", [True, False])
+def test_weighted_lasso_working_set_equals_sklearn_on_rescaled_columns(reusable):
     # Per-feature weights by column rescaling (Zou 2006, Section 3.5); weight 0 = unpenalised (projected
     # out), inf = excluded. Reference: scikit-learn's Lasso on the rescaled, projected columns.
     X, y = _data(n=150, d=25, seed=3, scale=False)
@@ -77,7 +78,7 @@ def test_weighted_lasso_working_set_equals_sklearn_on_rescaled_columns():
     v = rng.uniform(0.3, 2.0, d)
     v[[0, 7]] = 0.0
     v[[3, 11]] = np.inf
-    prob = working_problem(Xs, np.ones((n, 1)), y, np.ones(n))
+    prob = working_problem(Xs, np.ones((n, 1)), y, np.ones(n), reusable=reusable)
     lam = 0.08
     b, ok = weighted_lasso(prob, [lam], v, np.zeros(d), tol=1e-13, max_iter=100_000)
     pen = np.isfinite(v) & (v > 0)

@@ -32,7 +32,7 @@ def dantzig_selector(prob: WorkingProblem, lam: float, active: np.ndarray) -> np
     -------
     ndarray of shape (d,)
     """
-    d = prob.gram.shape[0]
+    d = prob.d
     idx = np.flatnonzero(active)
     b = np.zeros(d)
     p = idx.size

@@ -14,6 +14,8 @@ whose fixed point is a stationary point of the penalised likelihood.
 
 from __future__ import annotations
 
+import contextlib
+
 import numpy as np
 from sklearn import config_context
 from threadpoolctl import threadpool_limits
@@ -248,10 +250,13 @@ def path_on_problem(
     # The solver calls enet_path hundreds of times with arguments it built itself: skip
     # scikit-learn's per-call parameter validation.
     with config_context(skip_parameter_validation=True):
-        if opts.blas_threads is None:
-            return _path(problem, pen, n_lambda, lambda_min_ratio, lambdas, opts)
-        with threadpool_limits(limits=opts.blas_threads, user_api="blas"):
-            return _path(problem, pen, n_lambda, lambda_min_ratio, lambdas, opts)
+        return _path(problem, pen, n_lambda, lambda_min_ratio, lambdas, opts)
+
+
+def _blas_limit(opts: SolverOptions):
+    if opts.blas_threads is None:
+        return contextlib.nullcontext()
+    return threadpool_limits(limits=opts.blas_threads, user_api="blas")
 
 
 def _path(problem, pen, n_lambda, lambda_min_ratio, lambdas, opts) -> PathResult:
@@ -290,16 +295,17 @@ def _path(problem, pen, n_lambda, lambda_min_ratio, lambdas, opts) -> PathResult
         G = wp0.unpenalized(B.T).T
     else:
         b, eta, wp = np.zeros(d), eta0, wp0
-        for i, level in enumerate(lam):
-            b, g, eta, wp, conv[i] = _solve_lambda(problem, pen, wp, b, eta, level, v, opts)
-            B[i], G[i] = b, g
-            if not loss.quadratic:
-                if not np.all(np.isfinite(eta)):
-                    L = i  # diverged: drop this point and stop
-                    break
-                if 1.0 - loss.deviance(problem.y, eta) / null_dev > opts.max_deviance_ratio:
-                    L = i + 1
-                    break
+        with _blas_limit(opts):
+            for i, level in enumerate(lam):
+                b, g, eta, wp, conv[i] = _solve_lambda(problem, pen, wp, b, eta, level, v, opts)
+                B[i], G[i] = b, g
+                if not loss.quadratic:
+                    if not np.all(np.isfinite(eta)):
+                        L = i  # diverged: drop this point and stop
+                        break
+                    if 1.0 - loss.deviance(problem.y, eta) / null_dev > opts.max_deviance_ratio:
+                        L = i + 1
+                        break
         lam, B, G, conv = lam[:L], B[:L], G[:L], conv[:L]
 
     eta = problem.offset[:, None] + problem.C @ G.T + problem.Xs @ B.T  # (n, L)

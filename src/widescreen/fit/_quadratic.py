@@ -29,12 +29,16 @@ from sklearn.linear_model import enet_path
 class WorkingProblem:
     """A weighted least-squares problem in Gram form, with the unpenalised block profiled out.
 
+    Either the Gram matrix is held (``reusable``: the Gaussian loss, where every solve of the path
+    shares it) or only the projected design ``Xt``, from which the blocks a solve touches are formed
+    on demand: an IRLS step's solve usually touches a small working set, so forming all of
+    ``Xt^T Xt`` (O(n d^2)) at every step would dominate.
+
     Attributes
     ----------
-    gram : ndarray of shape (d, d)
-        ``Xt^T Xt`` with ``Xt`` the weighted standardised features projected off the unpenalised columns.
     xty : ndarray of shape (d,)
-        ``Xt^T zt``.
+        ``Xt^T zt`` with ``Xt`` (``zt``) the weighted standardised features (working response)
+        projected off the unpenalised columns.
     yty : float
         ``zt^T zt``.
     n : int
@@ -46,11 +50,12 @@ class WorkingProblem:
     r : ndarray of shape (q, q)
         The triangular factor ``R``.
     reusable : bool
-        True when many solves share this problem (the Gaussian loss): then the inverse Gram is worth
-        computing once to profile out large unpenalised sets cheaply.
+        True when many solves share this problem: the Gram matrix is formed once, and also its
+        inverse when large unpenalised sets are to be profiled out.
+    design : ndarray of shape (n, d) or None
+        ``Xt``, kept when the Gram matrix is formed lazily.
     """
 
-    gram: np.ndarray
     xty: np.ndarray
     yty: float
     n: int
@@ -58,7 +63,35 @@ class WorkingProblem:
     qtx: np.ndarray
     r: np.ndarray
     reusable: bool = False
+    design: np.ndarray | None = field(default=None, repr=False)
     _cache: dict = field(default_factory=dict, repr=False, compare=False)
+
+    @property
+    def d(self) -> int:
+        return self.xty.shape[0]
+
+    @property
+    def gram(self) -> np.ndarray:
+        """The full Gram matrix ``Xt^T Xt`` of shape (d, d) (formed once on first use)."""
+        if "gram" not in self._cache:
+            self._cache["gram"] = np.ascontiguousarray(self.design.T @ self.design)
+        return self._cache["gram"]
+
+    def block(self, rows: np.ndarray, cols: np.ndarray) -> np.ndarray:
+        """``G[rows][:, cols]`` for boolean masks of shape (d,)."""
+        if "gram" in self._cache:
+            G = self._cache["gram"]
+            if rows.all() and cols.all():
+                return G
+            return G[np.ix_(rows, cols)]
+        return self.design[:, rows].T @ self.design[:, cols]
+
+    def gram_times(self, b: np.ndarray) -> np.ndarray:
+        """``G b`` of shape (d,)."""
+        if "gram" in self._cache:
+            return self._cache["gram"] @ b
+        nz = b != 0
+        return self.design.T @ (self.design[:, nz] @ b[nz])
 
     def inverse(self, keep: np.ndarray) -> np.ndarray | None:
         """Inverse of ``G[keep][:, keep]`` (cached), or None when that block is singular."""
@@ -134,10 +167,19 @@ def working_problem(
         R = np.zeros((0, 0))
         qtx, qtz = np.zeros((0, d)), np.zeros(0)
         Xt, zt = Xw, zw
-    gram = np.ascontiguousarray(Xt.T @ Xt)
-    return WorkingProblem(
-        gram=gram, xty=Xt.T @ zt, yty=float(zt @ zt), n=n, qtz=qtz, qtx=qtx, r=R, reusable=reusable
+    prob = WorkingProblem(
+        xty=Xt.T @ zt,
+        yty=float(zt @ zt),
+        n=n,
+        qtz=qtz,
+        qtx=qtx,
+        r=R,
+        reusable=reusable,
+        design=None if reusable else np.asfortranarray(Xt),
     )
+    if reusable:
+        prob._cache["gram"] = np.ascontiguousarray(Xt.T @ Xt)
+    return prob
 
 
 def _solve_psd(A: np.ndarray, B: np.ndarray) -> np.ndarray:
@@ -164,7 +206,7 @@ def _profile_free(prob: WorkingProblem, free: np.ndarray, pen: np.ndarray, inv: 
     cached = prob._cache.get("profile")
     if cached is not None and cached[0] == key:
         return cached[1]
-    G, c = prob.gram, prob.xty
+    c = prob.xty
     if inv is not None:
         # Block inverse: with M^-1 = [[I_UU, I_UP], [I_PU, I_PP]], the Schur complement of G_UU is
         # I_PP^-1 and G_UU^-1 G_UP = -I_UP I_PP^-1; O(|P|^3 + |U| |P|^2) instead of O(|U|^3).
@@ -177,10 +219,10 @@ def _profile_free(prob: WorkingProblem, free: np.ndarray, pen: np.ndarray, inv: 
         c_u = c[free]
         g_u = inv[np.ix_(fu, fu)] @ c_u + H @ (I_up.T @ c_u)
     else:
-        G_up = G[np.ix_(free, pen)]
-        sol = _solve_psd(G[np.ix_(free, free)], np.column_stack([c[free], G_up]))
+        G_up = prob.block(free, pen)
+        sol = _solve_psd(prob.block(free, free), np.column_stack([c[free], G_up]))
         g_u, H = sol[:, 0], sol[:, 1:]
-        Gp = G[np.ix_(pen, pen)] - G_up.T @ H
+        Gp = prob.block(pen, pen) - G_up.T @ H
     cp = c[pen] - H.T @ c[free]
     yy = prob.yty - float(c[free] @ g_u)
     out = (Gp, cp, yy, g_u, H)
@@ -242,15 +284,13 @@ def coordinate_descent(
 
 def _core(prob, alphas, weights, coef_init, l1_ratio, tol, max_iter, inv=None):
     """Weighted elastic net over ``alphas`` on the features with finite weight (see `weighted_lasso`)."""
-    d = prob.gram.shape[0]
-    coefs = np.zeros((d, alphas.shape[0]))
+    coefs = np.zeros((prob.d, alphas.shape[0]))
     pen = np.isfinite(weights) & (weights > 0)
     free = weights == 0
-    G = prob.gram
     if free.any():
         Gp, cp, yy, g_u, H = _profile_free(prob, free, pen, inv)
     else:
-        Gp = G[np.ix_(pen, pen)] if not pen.all() else G
+        Gp = prob.block(pen, pen)
         cp, yy = prob.xty[pen], prob.yty
     converged = np.ones(alphas.shape[0], dtype=bool)
     if pen.any():
@@ -314,15 +354,11 @@ def weighted_lasso(
         inv = prob.inverse(free | pen)
         if inv is not None:
             return _core(prob, alphas, weights, coef_init, l1_ratio, tol, max_iter, inv)
-    b = (
-        np.zeros(prob.gram.shape[0])
-        if coef_init is None
-        else np.asarray(coef_init, dtype=np.float64)
-    )
+    b = np.zeros(prob.d) if coef_init is None else np.asarray(coef_init, dtype=np.float64)
     level = alphas[0] * l1_ratio * prob.n * weights
     work = pen & (b != 0)
     for round_ in range(50):
-        grad = np.abs(prob.xty - prob.gram @ b)
+        grad = np.abs(prob.xty - prob.gram_times(b))
         # KKT check with a small slack for the solver's own tolerance.
         violators = pen & ~work & (grad > level * (1.0 + 1e-9))
         if round_ and not violators.any():

@@ -39,7 +39,8 @@ class SolverOptions:
         For non-Gaussian losses the path stops once this share of the null deviance is explained
         (glmnet's rule, common practice): beyond it the fit is saturated and may diverge.
     blas_threads : int or None
-        BLAS threads while the path is solved. The per-lambda work is many small matrix products,
+        BLAS threads in the per-lambda loop (SCAD, MCP, GLM and Cox paths; the Gram matrix of a
+        Gaussian fit is computed before it with the process setting). That loop is many small products,
         which lose more to thread hand-offs than they gain (badly so on a busy machine); None leaves
         the process setting alone.
     """
