@@ -7,7 +7,6 @@ from scipy.special import comb
 from sklearn.linear_model import lasso_path
 
 from widescreen.fit import (
-    PenalizedRegression,
     bic,
     cross_validate,
     default_ebic_gamma,
@@ -118,22 +117,3 @@ def test_cv_is_deterministic_and_works_for_glm_and_cox():
     yc = np.column_stack([T, (rng.random(150) < 0.8).astype(float)])
     fit = select_model(fit_path(X, yc, loss="cox", penalty="lasso", n_lambda=15), "cv", cv=3)
     assert 0 in fit.support and np.all(np.isfinite(fit.criterion_values))
-
-
-def test_estimator_fit_predict_and_params():
-    from sklearn.base import clone
-
-    X, y, support = _fan_lv_design(n=150, d=40, s=4, seed=7)
-    est = PenalizedRegression(penalty="scad", criterion="ebic", n_candidates=500)
-    assert clone(est).get_params() == est.get_params()
-    est.fit(X, y)
-    np.testing.assert_array_equal(est.support_, support)
-    pred = est.predict(X[:5])
-    np.testing.assert_allclose(pred, est.intercept_ + X[:5] @ est.coef_)
-    assert est.n_features_in_ == 40 and est.lambda_ == est.result_.lambda_
-    est2 = PenalizedRegression(
-        penalty="enet", penalty_params={"l1_ratio": 0.5}, criterion="bic"
-    ).fit(X, y)
-    assert set(support) <= set(est2.support_)
-    with pytest.raises(ValueError, match="unpenalised"):
-        PenalizedRegression(criterion="bic").fit(X, y, unpenalized=X[:, :1] ** 2).predict(X)

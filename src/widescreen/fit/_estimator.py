@@ -4,7 +4,7 @@ from __future__ import annotations
 
 import numpy as np
 from sklearn.base import BaseEstimator
-from sklearn.utils.validation import check_is_fitted
+from sklearn.utils.validation import check_is_fitted, validate_data
 
 from ._path import fit_path
 from ._results import SolverOptions
@@ -90,6 +90,9 @@ class PenalizedRegression(BaseEstimator):
             raise ValueError(
                 f"The 'options' must be a SolverOptions; got {type(self.options).__name__}."
             )
+        # scikit-learn's own checks (dense, finite, 2-D; records n_features_in_), then ours in fit_path.
+        cox = getattr(self.loss, "name", self.loss) == "cox"
+        X, y = validate_data(self, X, y, dtype=np.float64, y_numeric=True, multi_output=cox)
         path = fit_path(
             X,
             y,
@@ -118,15 +121,15 @@ class PenalizedRegression(BaseEstimator):
         self.unpenalized_coef_ = result.unpenalized_coef
         self.support_ = result.support
         self.lambda_ = result.lambda_
-        self.n_features_in_ = path.n_features
         return self
 
     def decision_function(self, X, unpenalized=None, offset=None) -> np.ndarray:
         """Linear predictor of shape (m,)."""
         check_is_fitted(self, "result_")
+        X = validate_data(self, X, dtype=np.float64, reset=False)
         return self.result_.linear_predictor(X, unpenalized, offset)
 
     def predict(self, X, unpenalized=None, offset=None) -> np.ndarray:
         """Mean response of shape (m,) (probability, expected count; Cox: relative risk)."""
         check_is_fitted(self, "result_")
-        return self.result_.predict(X, unpenalized, offset)
+        return self.result_.path.loss.mean(self.decision_function(X, unpenalized, offset))

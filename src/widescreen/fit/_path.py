@@ -178,7 +178,12 @@ def _solve_lambda(problem, pen, wp, b, eta, lam, v, opts):
     lla_steps = 0
     converged = False
     g = None
-    dev = loss.deviance(problem.y, eta) if not loss.quadratic else 0.0
+    dev = 0.0
+    if not loss.quadratic:
+        dev = loss.deviance(problem.y, eta)
+        # Unpenalised coefficients of the incoming eta (the previous solution), for step halving.
+        resid = eta - problem.offset - problem.Xs @ b
+        g = np.linalg.lstsq(problem.C, resid, rcond=None)[0] if problem.C.shape[1] else np.zeros(0)
 
     def objective(dev_, b_):
         # The convex surrogate being minimised: weighted l1 at the current weights (for LLA it
@@ -212,7 +217,7 @@ def _solve_lambda(problem, pen, wp, b, eta, lam, v, opts):
             obj = objective(dev, b)
             eta_new = problem.offset + problem.C @ g_new + problem.Xs @ b_new
             dev_new = loss.deviance(problem.y, eta_new)
-            b_old, g_old = b, (g if g is not None else g_new)
+            b_old, g_old = b, g
             for _ in range(30):  # step halving keeps the objective from increasing
                 if np.isfinite(dev_new) and objective(dev_new, b_new) <= obj + 1e-12 * abs(obj):
                     break

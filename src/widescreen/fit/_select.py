@@ -17,8 +17,8 @@ def cross_validate(
     """K-fold cross-validated deviance at each lambda of ``path``.
 
     The samples are shuffled with ``numpy.random.default_rng(seed)`` and split into ``n_folds`` folds
-    of (nearly) equal size. For each fold the whole fit (standardisation, adaptive weights, path at the
-    same lambdas) is redone on the other folds and scored on the held-out one by the loss's held-out
+    of (nearly) equal size. For each fold the whole fit (standardisation, adaptive weights unless an
+    initial estimate was given as an array, path at the same lambdas) is redone on the other folds and scored on the held-out one by the loss's held-out
     deviance (for Cox, the cross-validated partial likelihood of Verweij & van Houwelingen 1993).
 
     Returns
