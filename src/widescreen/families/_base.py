@@ -45,9 +45,10 @@ class Family(ABC):
         Kernel outputs recorded for every feature and shown in the ranking (``score`` first).
     loss : str
         Loss of the refit in `widescreen.fit` ("gaussian", "binomial", "poisson", "cox").
-    conditioning : {"columns", "offset"}
+    conditioning : {"columns", "offset", "score"}
         How the iterative pass conditions on the selected set: project the selected columns out
-        (linear), or add the current model's linear predictor as an offset (GLM and Cox).
+        (linear); add the current model's linear predictor as an offset (Cox, model-free); or both,
+        a score test at the current fit adjusted for the selected columns (logistic, Poisson).
     supports_permutation : bool
         Whether the kernel computes null scores for permuted responses in the same pass.
     """
@@ -81,6 +82,10 @@ class Family(ABC):
         seed: int = 0,
     ) -> Any:
         """The kernel's response state for one pass."""
+
+    def pass_columns(self, state) -> tuple[str, ...]:
+        """Kernel outputs recorded by a pass with this state (some states compute other statistics)."""
+        return self.columns
 
     def refit_response(self, response: Response) -> np.ndarray:
         """The response as `widescreen.fit.fit_path` takes it for this family's loss."""

@@ -309,7 +309,9 @@ def _path(problem, pen, n_lambda, lambda_min_ratio, lambdas, opts) -> PathResult
                         L = i  # diverged: drop this point and stop
                         break
                     if 1.0 - loss.deviance(problem.y, eta) / null_dev > opts.max_deviance_ratio:
-                        L = i + 1
+                        # Saturated (for a binary outcome: separated, coefficients diverging): a
+                        # criterion would reward it, so the path ends before it.
+                        L = max(i, 1)
                         break
         lam, B, G, conv = lam[:L], B[:L], G[:L], conv[:L]
 

@@ -115,9 +115,9 @@ def _one_pass(
     resp, Z, rows = _subset_rows(problem, sel)
     kwargs: dict[str, Any] = {"n_permutations": ctx.rule.permutations, "seed": seed}
     if exclude.size:
-        if fam.conditioning == "columns":
+        if fam.conditioning in ("columns", "score"):
             kwargs["conditioning"] = conditioning if sel is None else conditioning[sel]
-        else:
+        if fam.conditioning in ("offset", "score"):
             kwargs["offset"] = offset if sel is None else offset[sel]
     try:
         state = fam.prepare(resp, Z, **kwargs)
@@ -131,7 +131,7 @@ def _one_pass(
         name=name,
         kernel=fam.kernel,
         state=state,
-        columns=fam.columns,
+        columns=fam.pass_columns(state),
         keep=budget,
         rows=rows,
         exclude=exclude,

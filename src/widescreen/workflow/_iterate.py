@@ -246,7 +246,7 @@ def iterate(
             break
         eta = (
             model.linear_predictor(pool.values, problem.covariates)
-            if model is not None and problem.family.conditioning == "offset"
+            if model is not None and problem.family.conditioning in ("offset", "score")
             else None
         )
         try:

@@ -112,7 +112,7 @@ def screen_spec(
         name=name,
         kernel=fam.kernel,
         state=state,
-        columns=fam.columns,
+        columns=fam.pass_columns(state),
         keep=keep,
         rows=problem.rows,
         filters=config.filters,
