@@ -185,4 +185,5 @@ def import_npy(
                 writer.append(block, fid[j0:j1])
                 if progress is not None:
                     progress(j1, p)
+            del raw  # one group at a time: drop it before reading the next
         return writer.finalize()
