@@ -12,7 +12,9 @@ from widescreen.report import read_tsv
 runner = CliRunner()
 
 
-@pytest.mark.parametrize("cmd", ["screen", "simulate", "demo", "import", "inspect"])
+@pytest.mark.parametrize(
+    "cmd", ["screen", "run", "report", "simulate", "demo", "import", "inspect"]
+)
 def test_every_command_has_help(cmd):
     res = runner.invoke(app, [cmd, "--help"])
     assert res.exit_code == 0
@@ -104,3 +106,13 @@ def test_simulated_design_is_reproducible(tmp_path):
     b = simulate(tmp_path / "b.zarr", cfg)
     np.testing.assert_array_equal(a.dataset.X[:], b.dataset.X[:])
     assert a.outcome_path.read_text() == b.outcome_path.read_text()
+
+
+def test_demo_runs_the_whole_job(tmp_path):
+    res = runner.invoke(
+        app, ["demo", "--out", str(tmp_path / "d"), "-n", "300", "-p", "3000", "-q"]
+    )
+    assert res.exit_code == 0, res.output
+    assert "causal" in res.output
+    for name in ("model.tsv", "iterations.tsv", "ranking.tsv", "manifest.json", "report.html"):
+        assert (tmp_path / "d" / "run" / name).is_file()

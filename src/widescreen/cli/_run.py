@@ -7,7 +7,7 @@ from typing import Annotated
 
 import typer
 
-from ._app import _covariates, _parse_keep, _scheduler, app, friendly
+from ._app import ReportOpt, _covariates, _parse_keep, _scheduler, app, friendly
 from ._progress import ProgressBar
 
 _MODEL = "Model and tuning"
@@ -32,7 +32,12 @@ def run_cmd(
         Path, typer.Option("--out", help="Run folder for the results (resumed if it exists).")
     ],
     family: Annotated[
-        str, typer.Option("--family", help="Outcome family: linear, ...", rich_help_panel=_DATA)
+        str,
+        typer.Option(
+            "--family",
+            help="Outcome family: linear, logistic, poisson, cox, rank, rank-utility, dcor, spline, holp.",
+            rich_help_panel=_DATA,
+        ),
     ] = "linear",
     covariates: Annotated[
         str | None,
@@ -159,6 +164,7 @@ def run_cmd(
             rich_help_panel=_RUN,
         ),
     ] = False,
+    report: ReportOpt = True,
 ) -> None:
     """Iterative screening: screen, fit a penalised model, rank the rest given it, refit, repeat.
 
@@ -204,3 +210,7 @@ def run_cmd(
         f"{result.budget}; stopped: {result.stop_reason}; selected {result.index.size} "
         f"feature(s){': ' + shown + more if shown else ''}; model in {out / 'model.tsv'}"
     )
+    if report:
+        from ..report import build_report
+
+        typer.echo(f"report: {build_report(out)}")
