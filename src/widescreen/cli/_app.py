@@ -314,6 +314,20 @@ def import_cmd(
             help="VCF: feature ids from the 'column' (ID) or the 'position' (chrom:pos:ref:alt).",
         ),
     ] = "column",
+    multiallelic: Annotated[
+        str,
+        typer.Option(
+            "--multiallelic",
+            help="VCF sites with several ALT alleles: 'split' (one feature per ALT), 'nonref' "
+            "(count every non-reference allele) or 'skip'.",
+        ),
+    ] = "split",
+    chunk_features: Annotated[
+        int | None,
+        typer.Option(
+            "--chunk-features", help="Features per chunk of X (default: about 16 MiB chunks)."
+        ),
+    ] = None,
     overwrite: Annotated[
         bool, typer.Option("--overwrite", help="Replace an existing store.")
     ] = False,
@@ -321,16 +335,29 @@ def import_cmd(
 ) -> None:
     """Convert a matrix file into a dataset store, streaming with bounded memory."""
     name = src.name.lower()
-    bar = ProgressBar("import", quiet)
+    bar = ProgressBar("import", quiet, unit="bytes")
     if name.endswith((".vcf", ".vcf.gz", ".vcf.bgz")):
         from ..store._ingest_vcf import import_vcf
 
-        ds = import_vcf(src, store, id_from=id_from, overwrite=overwrite, progress=bar)
+        ds = import_vcf(
+            src,
+            store,
+            id_from=id_from,
+            multiallelic=multiallelic,
+            chunk_features=chunk_features,
+            overwrite=overwrite,
+            progress=bar,
+        )
     elif name.endswith(".npy"):
         from ..store._ingest_npy import import_npy
 
         ds = import_npy(
-            src, store, value_kind="dosage" if dosage else None, overwrite=overwrite, progress=bar
+            src,
+            store,
+            value_kind="dosage" if dosage else None,
+            chunk_features=chunk_features,
+            overwrite=overwrite,
+            progress=bar,
         )
     else:
         from ..store._ingest_text import import_table
@@ -341,6 +368,7 @@ def import_cmd(
             features_as_rows=features_as_rows,
             dtype="int8" if dosage else dtype,
             value_kind="dosage" if dosage else "continuous",
+            chunk_features=chunk_features,
             overwrite=overwrite,
             progress=bar,
         )
@@ -351,11 +379,18 @@ def import_cmd(
 @friendly
 def inspect_cmd(
     store: Annotated[Path, typer.Argument(help="Dataset store.")],
+    sample_blocks: Annotated[
+        int | None,
+        typer.Option(
+            "--sample-blocks",
+            help="Estimate the missing rate from this many blocks (default: all).",
+        ),
+    ] = None,
 ) -> None:
     """Print shape, dtype, chunking, codec, size on disk and missing rate of a store."""
     from ..store._inspect import inspect_dataset
 
-    typer.echo(inspect_dataset(store).format())
+    typer.echo(inspect_dataset(store, sample_blocks=sample_blocks).format())
 
 
 def main() -> None:

@@ -9,8 +9,11 @@ import time
 class ProgressBar:
     """Callable(done, total) drawing one line that updates in place; silent when ``quiet``."""
 
-    def __init__(self, label: str, quiet: bool = False, stream=None, width: int = 28) -> None:
+    def __init__(
+        self, label: str, quiet: bool = False, stream=None, width: int = 28, unit: str = "blocks"
+    ) -> None:
         self.label = label
+        self.unit = unit
         self.quiet = quiet
         self.stream = stream or sys.stderr
         self.width = width
@@ -34,10 +37,11 @@ class ProgressBar:
         left = (total - done) / rate if rate > 0 else float("nan")
         eta = _fmt_time(left) if done < total else _fmt_time(elapsed)
         tag = "left" if done < total else "total"
-        line = (
-            f"\r{self.label} [{'#' * filled}{'.' * (self.width - filled)}] {done}/{total} blocks "
-            f"{rate:.1f}/s {eta} {tag}"
-        )
+        if self.unit == "bytes":
+            count = f"{done / 2**20:.0f}/{total / 2**20:.0f} MiB {rate / 2**20:.1f} MiB/s"
+        else:
+            count = f"{done}/{total} {self.unit} {rate:.1f}/s"
+        line = f"\r{self.label} [{'#' * filled}{'.' * (self.width - filled)}] {count} {eta} {tag}"
         self.stream.write(line)
         if done >= total:
             self.stream.write("\n")

@@ -11,6 +11,11 @@ from ._format import (
     default_codec,
     open_dataset,
 )
+from ._ingest_base import IngestError
+from ._ingest_npy import import_npy
+from ._ingest_text import import_table
+from ._ingest_vcf import import_vcf
+from ._inspect import InspectReport, inspect_dataset
 from ._outcome import (
     JoinedOutcome,
     OutcomeError,
@@ -29,12 +34,18 @@ __all__ = [
     "Dataset",
     "DatasetWriter",
     "FormatAttributes",
+    "IngestError",
+    "InspectReport",
     "JoinedOutcome",
     "OutcomeError",
     "OutcomeTable",
     "StoreError",
     "default_chunks",
     "default_codec",
+    "import_npy",
+    "import_table",
+    "import_vcf",
+    "inspect_dataset",
     "join_outcome",
     "open_dataset",
     "prepare_block",
