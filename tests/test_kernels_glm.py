@@ -199,6 +199,28 @@ def test_separating_feature_is_flagged(rng):
     assert res["separated"][[1, 3]].all()
     assert not res["separated"][[0, 2, 4]].any()
     assert np.all(np.isfinite(res["beta"])) and np.all(np.isfinite(res["lr_chi2"]))
+    # A separating feature is strong evidence, not a degenerate one: it keeps a positive utility.
+    assert not res["degenerate"].any() and np.all(
+        res["score"][[1, 3]] > res["score"][[0, 2, 4]].max()
+    )
+
+
+def test_feature_carried_by_the_only_case_is_separated_not_degenerate(rng):
+    n = 60
+    y = np.zeros(n)
+    y[7] = 1.0
+    X = rng.standard_normal((n, 3))
+    X[:, 1] = 0.0
+    X[7, 1] = 1.0  # carried by the single case: complete separation
+    res = logistic_statistics(prepare_block(X, 0), prepare_logistic(y))
+    assert res["separated"].tolist() == [False, True, False]
+    assert not res["degenerate"][1] and res["score"][1] > 0 and res["beta"][1] > 10
+    # statsmodels GLM hits the same boundary: its deviance there is ~0, so the likelihood ratio is
+    # the null deviance (within the tolerance at which the fit stopped)
+    null = sm.GLM(y, np.ones((n, 1)), family=sm.families.Binomial()).fit()
+    np.testing.assert_allclose(res["lr_chi2"][1], null.deviance, rtol=1e-3)
+    for key, val in res.items():
+        assert not np.isnan(np.asarray(val, dtype=float)).any(), key
 
 
 def test_non_convergence_is_reported_not_raised(rng):

@@ -427,14 +427,15 @@ def cox_statistics(block: Block, state: CoxState) -> dict[str, np.ndarray]:
             f"block at feature {block.start} has {n} samples; the Cox state was built for {state.n_samples}"
         )
     x = block.values
-    step = max(4, _glm.TILE_BYTES // (8 * max(n, 1)))
-    tiles = [slice(lo, min(lo + step, width)) for lo in range(0, width, step)]
-    ws = _CoxWorkspace.get(n, state.ends.size, step)
-    parts = [_fit_tile(state, ws, x[:, sl], block.constant[sl]) for sl in tiles]
+    ranges = _glm.tiles(n, width)
+    ws = _CoxWorkspace.get(n, state.ends.size, max(1, ranges[0].stop - ranges[0].start))
+    parts = [_fit_tile(state, ws, x[:, sl], block.constant[sl]) for sl in ranges]
     fit = {key: np.concatenate([part[key] for part in parts]) for key in parts[0]}
-    dead = fit["dead"] | ~np.isfinite(fit["var"]) | (fit["var"] <= 0)
+    dead = fit["dead"]
     beta = np.where(dead, 0.0, fit["beta"])
-    se = np.sqrt(np.where(dead, np.inf, fit["var"]))
+    # A fit stopped where the information is no longer positive (a monotone likelihood) keeps its
+    # estimate and likelihood ratio but gets no finite standard error.
+    se = np.sqrt(np.where(dead | ~(fit["var"] > 0) | ~np.isfinite(fit["var"]), np.inf, fit["var"]))
     lr = np.where(dead, 0.0, np.maximum(fit["lr_chi2"], 0.0))
     return {
         "score": 0.5 * lr,

@@ -300,28 +300,41 @@ def prepare_poisson(
 
 # ------------------------------------------------------------------------------------- batched Newton
 def _solve(H: np.ndarray, g: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-    """Newton steps of a stack of systems, with the positive-definiteness of each.
+    """Newton steps of a stack of systems, damped where a system is (numerically) singular.
 
-    Returns ``step`` (m, p), ``lam`` (m,) = g' H^-1 g (the predicted deviance decrease) and ``ok`` (m,).
+    Under separation the information along one direction fades geometrically while the likelihood
+    still rises; there a Levenberg-Marquardt step ``(H + tau I)^-1 g``, ``tau = 1e-6 trace(H)``, keeps
+    the fit moving (a step too long is halved by the caller's deviance check).
+
+    Returns ``step`` (m, p), ``lam`` (m,) = g' step (the predicted deviance decrease) and ``ok`` (m,),
+    False where no step exists (non-finite or zero information).
     """
     p = g.shape[1]
     if p == 1:
         h = H[:, 0, 0]
         ok = np.isfinite(h) & (h > 0)
         step = g / np.where(ok, h, 1.0)[:, None]
-    elif p == 2:
-        a, b, d = H[:, 0, 0], H[:, 0, 1], H[:, 1, 1]
-        det = a * d - b * b
-        ok = np.isfinite(det) & (a > 0) & (det > 1e-14 * a * d)
-        det = np.where(ok, det, 1.0)
-        step = np.stack(
-            [(d * g[:, 0] - b * g[:, 1]) / det, (a * g[:, 1] - b * g[:, 0]) / det], axis=1
-        )
     else:
-        ev = np.linalg.eigvalsh(np.where(np.isfinite(H), H, 0.0))
-        ok = np.all(np.isfinite(H), axis=(1, 2)) & (ev[:, 0] > 1e-14 * np.abs(ev[:, -1]))
-        Hs = np.where(ok[:, None, None], H, np.eye(p))
-        step = np.linalg.solve(Hs, g[:, :, None])[:, :, 0]
+        finite = np.all(np.isfinite(H), axis=(1, 2)) & np.all(np.isfinite(g), axis=1)
+        H = np.where(finite[:, None, None], H, np.eye(p))
+        trace = np.trace(H, axis1=1, axis2=2)
+        if p == 2:
+            a, b, d = H[:, 0, 0], H[:, 0, 1], H[:, 1, 1]
+            singular = ~(a * d - b * b > 1e-12 * a * d) | ~(a > 0)
+        else:
+            ev = np.linalg.eigvalsh(H)
+            singular = ~(ev[:, 0] > 1e-12 * np.abs(ev[:, -1]))
+        ok = finite & (trace > 0)
+        H = H + np.where(singular & ok, 1e-6 * trace, 0.0)[:, None, None] * np.eye(p)
+        H = np.where(ok[:, None, None], H, np.eye(p))
+        if p == 2:
+            a, b, d = H[:, 0, 0], H[:, 0, 1], H[:, 1, 1]
+            det = a * d - b * b
+            step = np.stack(
+                [(d * g[:, 0] - b * g[:, 1]) / det, (a * g[:, 1] - b * g[:, 0]) / det], axis=1
+            )
+        else:
+            step = np.linalg.solve(H, np.where(ok[:, None], g, 0.0)[:, :, None])[:, :, 0]
     step = np.where(ok[:, None], step, 0.0)
     lam = np.einsum("ij,ij->i", g, step)
     return step, lam, ok
@@ -706,6 +719,9 @@ def _fit_tile(st: GLMState, ws: Workspace, tile: np.ndarray, sumsq, dead) -> dic
         H0[:, k, k] = w0xx
         g0 = np.zeros((c, k + 1))
         g0[:, k] = yx - mu0x
+    # No information left at the null (constant, or explained by the refitted covariates): not fitted.
+    with np.errstate(invalid="ignore", divide="ignore"):
+        dead = dead | ~(1.0 / _last_inverse(H0) > 1e-10 * w0xx)
     H0[dead] = np.nan  # never stepped, never evaluated
     if profile:
 
@@ -737,6 +753,7 @@ def _fit_tile(st: GLMState, ws: Workspace, tile: np.ndarray, sumsq, dead) -> dic
         "lr_chi2": st.deviance0 - res.deviance,
         "converged": res.converged,
         "n_iter": res.n_iter,
+        "dead": dead,
     }
     if st.family == "logistic":
         # The range of a centred column is at most 2 sqrt(sumsq): only a few columns need the exact one.
@@ -751,9 +768,10 @@ def _fit_tile(st: GLMState, ws: Workspace, tile: np.ndarray, sumsq, dead) -> dic
     return out
 
 
-def _tiles(n: int, width: int) -> list[slice]:
+def tiles(n: int, width: int) -> list[slice]:
+    """Column ranges of about `TILE_BYTES` of float64 each (one empty range for an empty block)."""
     step = max(4, TILE_BYTES // (8 * max(n, 1)))
-    return [slice(lo, min(lo + step, width)) for lo in range(0, width, step)]
+    return [slice(lo, min(lo + step, width)) for lo in range(0, width, step)] or [slice(0, 0)]
 
 
 def _check_block(block: Block, st: GLMState) -> None:
@@ -767,15 +785,17 @@ def _check_block(block: Block, st: GLMState) -> None:
 def _lr_statistics(block: Block, st: GLMState) -> dict[str, np.ndarray]:
     _check_block(block, st)
     x, width = block.values, block.width
-    tiles = _tiles(x.shape[0], width)
-    ws = Workspace.get(x.shape[0], tiles[0].stop - tiles[0].start)
+    ranges = tiles(x.shape[0], width)
+    ws = Workspace.get(x.shape[0], max(1, ranges[0].stop - ranges[0].start))
     try:
-        parts = [_fit_tile(st, ws, x[:, sl], block.sumsq[sl], block.constant[sl]) for sl in tiles]
+        parts = [_fit_tile(st, ws, x[:, sl], block.sumsq[sl], block.constant[sl]) for sl in ranges]
     finally:
         ws.release()
     fit = {key: np.concatenate([part[key] for part in parts]) for key in parts[0]}
-    dead = block.constant | ~np.isfinite(fit["var"]) | (fit["var"] <= 0)
-    var = np.where(dead, np.inf, fit["var"])
+    dead = fit["dead"]
+    # A fit stopped where the information is no longer positive (separation) keeps its estimate and
+    # likelihood ratio but gets no finite standard error.
+    var = np.where(dead | ~(fit["var"] > 0) | ~np.isfinite(fit["var"]), np.inf, fit["var"])
     beta = np.where(dead, 0.0, fit["beta"])
     se = np.sqrt(var)
     lr = np.where(dead, 0.0, np.maximum(fit["lr_chi2"], 0.0))
