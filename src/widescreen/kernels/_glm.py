@@ -35,7 +35,10 @@ first trial point is the one-step estimate. Each further evaluation is one pass 
 the sums over samples of the deviance, score and information. A step that raises the deviance is halved;
 a feature stops when the predicted deviance decrease ``g' H^-1 g`` of its next step is at most ``tol``
 (default 1e-10), and that step is then taken without another evaluation. Null features typically need two
-evaluations. A block is worked on in tiles of columns (`TILE_BYTES`), and a tile's working columns shrink
+evaluations. Under (quasi-)separation the maximum likelihood estimate does not exist: the steps (damped
+where the information has become singular) run until the deviance stops falling or ``max_iter``;
+``separated`` flags the feature, ``beta`` is the large value reached, ``lr_chi2`` approaches its supremum
+and ``std_error`` may be infinite. A block is worked on in tiles of columns (`TILE_BYTES`), and a tile's working columns shrink
 as features converge. With numba installed (the store's switch ``_accel.use_numba``), the sums over
 samples are one compiled pass; the numpy route computes the same sums with array operations.
 """
