@@ -254,20 +254,27 @@ def main(argv: list[str] | None = None) -> None:
     if args.resume_at > 0 and sizes:
         p = sizes[-1]
         store = args.workdir / f"dosage-{n}x{p}.zarr"
-        res = resume_after_kill(store, args.workdir / f"run-resume-{p}", args.resume_at)
-        ref = full.get((p, "screen")) or _child(SCREEN_CHILD, store, args.workdir / "run-ref")
+        # Alternate killed-and-resumed runs with uninterrupted ones, so both see the same machine.
+        tries, refs = [], []
+        for _ in range(max(1, args.repeat)):
+            tries.append(resume_after_kill(store, args.workdir / f"run-resume-{p}", args.resume_at))
+            refs.append(_child(SCREEN_CHILD, store, args.workdir / "run-ref"))
+        res = min(tries, key=lambda r: r["resumed"]["seconds"])
+        ref = min(refs, key=lambda r: r["seconds"])
         last = res["manifest_runs"][-1]
         ratio = res["resumed"]["seconds"] / ref["seconds"]
+        pass_ratio = last["seconds"] / ref["summary"]["seconds"]
         print()
         print(
             f"resume at p={p:,}: killed after {res['killed_after']:.1f} s with "
             f"{res['markers_at_kill']} of {res['n_blocks']} blocks done; the rerun reused "
             f"{last['blocks_reused']} and computed {last['blocks_computed']} blocks in "
-            f"{res['resumed']['seconds']:.2f} s (pass {last['seconds']:.2f} s, of which reading kept "
-            f"values back {last['seconds_fetch']:.2f} s) against {ref['seconds']:.2f} s for a full run: "
-            f"{ratio:.2f} of it"
+            f"{res['resumed']['seconds']:.2f} s against {ref['seconds']:.2f} s for a full run "
+            f"({ratio:.2f} of it); the pass alone {last['seconds']:.2f} s against "
+            f"{ref['summary']['seconds']:.2f} s ({pass_ratio:.2f}), of which reading the kept values "
+            f"of reused blocks back {last['seconds_fetch']:.2f} s"
         )
-        result["resume"] = {**res, "full_seconds": ref["seconds"], "ratio": ratio}
+        result["resume"] = {**res, "full": ref, "ratio": ratio, "pass_ratio": pass_ratio}
     if args.json:
         args.json.write_text(json.dumps(result, indent=2, default=str))
 
