@@ -287,11 +287,17 @@ def _risk_sums(r, x, ends, deaths, out):  # pragma: no cover - compiled
     s1 = np.zeros(c)
     s2 = np.zeros(c)
     prod = np.ones(c)
+    a0 = np.zeros(c)
+    a1 = np.zeros(c)
+    a2 = np.zeros(c)
+    a3 = np.zeros(c)
     g = 0
     for i in range(n):
+        ri = r[i]
+        xi = x[i]
         for j in range(c):
-            u = r[i, j]
-            v = x[i, j]
+            u = ri[j]
+            v = xi[j]
             s0[j] += u
             s1[j] += u * v
             s2[j] += u * v * v
@@ -300,20 +306,23 @@ def _risk_sums(r, x, ends, deaths, out):  # pragma: no cover - compiled
             for j in range(c):
                 inv = 1.0 / s0[j]
                 m1 = s1[j] * inv
-                out[1, j] += d * m1
-                out[2, j] += d * s2[j] * inv
-                out[3, j] += d * m1 * m1
+                a1[j] += d * m1
+                a2[j] += d * s2[j] * inv
+                a3[j] += d * m1 * m1
                 if d == 1.0:  # a product of S0 values, logged before it leaves a safe range
                     p = prod[j] * s0[j]
                     if not (1e-200 < p < 1e200):
-                        out[0, j] += np.log(prod[j])
+                        a0[j] += np.log(prod[j])
                         p = s0[j]
                     prod[j] = p
                 else:
-                    out[0, j] += d * np.log(s0[j])
+                    a0[j] += d * np.log(s0[j])
             g += 1
     for j in range(c):
-        out[0, j] += np.log(prod[j])
+        out[0, j] = a0[j] + np.log(prod[j])
+        out[1, j] = a1[j]
+        out[2, j] = a2[j]
+        out[3, j] = a3[j]
 
 
 # ------------------------------------------------------------------------------------------- fitting
@@ -333,7 +342,7 @@ def _risk_moments(st: CoxState, ws: _CoxWorkspace, b: np.ndarray | None):
         else:
             _glm.linear_predictor(x[:n], b, np.zeros_like(b), st.eta0, 1.0, r)
             np.exp(r, out=r)
-        out = np.zeros((4, x.shape[1]))
+        out = np.empty((4, x.shape[1]))
         _risk_sums(r, x[:n], st.ends, d, out)
         return out[0] if b is not None else None, out[1], out[2], out[3]
     if b is None:

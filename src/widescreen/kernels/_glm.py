@@ -446,18 +446,20 @@ class Workspace:
         return self._flat[i][: self.n * c].reshape(self.n, c)
 
     def load(self, x: np.ndarray, square: bool) -> np.ndarray:
-        """Start on a tile (n, c) of a block, and keep its square in `xx` if asked.
+        """Copy a tile (n, c) of a block into the workspace, its square into `xx` if asked.
 
-        The tile itself is used in place until the working set shrinks; `release` drops it.
+        A tile is a strided view whose rows lie a block's width apart: every pass over it would touch
+        a new memory page per row. The contiguous copy costs one such pass and saves the others.
         """
-        self.idx, self.x = np.arange(x.shape[1]), x
+        self.idx, self.x = np.arange(x.shape[1]), self._view(0, x.shape[1])
+        np.copyto(self.x, x)
         self.xx = self._view(3, x.shape[1] if square else 0)
         if square:
-            np.multiply(x, x, out=self.xx)
-        return x
+            np.multiply(self.x, self.x, out=self.xx)
+        return self.x
 
     def release(self) -> None:
-        """Forget the tile: the block's values are a buffer the kernel must not hold on to."""
+        """Forget the current tile."""
         self.idx, self.x = np.arange(0), self._view(0, 0)
 
     def take(self, cols: np.ndarray) -> np.ndarray:
@@ -514,46 +516,71 @@ def linear_predictor(x, b, a, eta0, sign, out):  # pragma: no cover - compiled
 
 @_accel._jit
 def _logistic_sums(t, x, out):  # pragma: no cover - compiled
-    # t = exp(-eta). Rows of out: sum log(1 + t), then the sums of mu x^p and mu^2 x^p, p = 0, 1, 2.
+    # t = exp(-eta). Rows of out: sum log(1 + t), sum mu, sum mu x, sum w, sum w x, sum w x^2 with
+    # mu = 1 / (1 + t), w = mu (1 - mu). Accumulators are separate vectors (faster than rows of out).
     n, c = t.shape
+    s0 = np.zeros(c)
+    s1 = np.zeros(c)
+    h0 = np.zeros(c)
+    h1 = np.zeros(c)
+    h2 = np.zeros(c)
+    logs = np.zeros(c)
     prod = np.ones(c)
     for i0 in range(0, n, 16):
         i1 = min(i0 + 16, n)
         for i in range(i0, i1):
+            ti = t[i]
+            xi = x[i]
             for j in range(c):
-                den = 1.0 + t[i, j]
+                den = 1.0 + ti[j]
                 prod[j] *= den
                 mu = 1.0 / den
-                m2 = mu * mu
-                v = x[i, j]
-                out[1, j] += mu
-                out[2, j] += mu * v
-                out[3, j] += mu * v * v
-                out[4, j] += m2
-                out[5, j] += m2 * v
-                out[6, j] += m2 * v * v
+                w = mu - mu * mu
+                v = xi[j]
+                wv = w * v
+                s0[j] += mu
+                s1[j] += mu * v
+                h0[j] += w
+                h1[j] += wv
+                h2[j] += wv * v
         for j in range(c):
             # One log per 16 factors >= 1; the product only overflows past |eta| ~ 44.
             if prod[j] < 1e300:
-                out[0, j] += np.log(prod[j])
+                logs[j] += np.log(prod[j])
             else:
                 for i in range(i0, i1):
-                    out[0, j] += np.log(1.0 + t[i, j])
+                    logs[j] += np.log(1.0 + t[i, j])
             prod[j] = 1.0
+    for j in range(c):
+        out[0, j] = logs[j]
+        out[1, j] = s0[j]
+        out[2, j] = s1[j]
+        out[3, j] = h0[j]
+        out[4, j] = h1[j]
+        out[5, j] = h2[j]
 
 
 @_accel._jit
 def _weighted_moments(e, x, w, out):  # pragma: no cover - compiled
     # Rows of out: sum_i w_i e_ij x_ij^p, p = 0, 1, 2.
     n, c = e.shape
+    m0 = np.zeros(c)
+    m1 = np.zeros(c)
+    m2 = np.zeros(c)
     for i in range(n):
         wi = w[i]
+        ei = e[i]
+        xi = x[i]
         for j in range(c):
-            u = wi * e[i, j]
-            v = x[i, j]
-            out[0, j] += u
-            out[1, j] += u * v
-            out[2, j] += u * v * v
+            u = wi * ei[j]
+            uv = u * xi[j]
+            m0[j] += u
+            m1[j] += uv
+            m2[j] += uv * xi[j]
+    for j in range(c):
+        out[0, j] = m0[j]
+        out[1, j] = m1[j]
+        out[2, j] = m2[j]
 
 
 @_accel._jit
@@ -562,8 +589,9 @@ def _weighted_sumsq(x, w, out):  # pragma: no cover - compiled
     n, c = x.shape
     for i in range(n):
         wi = w[i]
+        xi = x[i]
         for j in range(c):
-            v = x[i, j]
+            v = xi[j]
             out[j] += wi * v * v
 
 
@@ -631,8 +659,8 @@ def _evaluate_joint(st: GLMState, ws: Workspace, yx: np.ndarray, sx: np.ndarray,
 def _evaluate_logistic(st: GLMState, ws: Workspace, yx: np.ndarray, sx: np.ndarray, idx, params):
     """`_evaluate_joint` for the logistic model with the intercept alone, in fewer passes over the tile.
 
-    With m = mu and m2 = mu^2 the information needs sums of (m - m2) x^p, p = 0, 1, 2: six reductions
-    that only read (x^2 is kept from the start), instead of forming the weights and their products.
+    numpy route: with m = mu and m2 = mu^2 the information needs sums of (m - m2) x^p, p = 0, 1, 2: six
+    reductions that only read (x^2 is kept from the start), instead of forming the weights and products.
     """
     pos = ws.take(idx)
     x = ws.x
@@ -642,9 +670,9 @@ def _evaluate_logistic(st: GLMState, ws: Workspace, yx: np.ndarray, sx: np.ndarr
     if _accel.use_numba:
         linear_predictor(x, b, a, st.eta0, -1.0, t)
         np.exp(t, out=t)
-        sums = np.zeros((7, x.shape[1]))
+        sums = np.empty((6, x.shape[1]))
         _logistic_sums(t, x, sums)
-        log_den, s0, s1, s2, q0, q1, q2 = sums
+        log_den, s0, s1, h00, h01, h11 = sums
     else:
         xx = ws.xx
         np.multiply(x, -b, out=t)
@@ -660,12 +688,13 @@ def _evaluate_logistic(st: GLMState, ws: Workspace, yx: np.ndarray, sx: np.ndarr
         m2 = np.multiply(mu, mu, out=ws.scratch(2))
         s0, s1, s2 = mu.sum(axis=0), np.einsum("ij,ij->j", mu, x), np.einsum("ij,ij->j", mu, xx)
         q0, q1, q2 = m2.sum(axis=0), np.einsum("ij,ij->j", m2, x), np.einsum("ij,ij->j", m2, xx)
+        h00, h01, h11 = s0 - q0, s1 - q1, s2 - q2
     v = 1.0 - st.y  # l = -sum (1 - y) eta - sum log(1 + e^-eta)
     yx, sx = yx[ws.idx], sx[ws.idx]
     ell = -(v @ st.eta0 + a * v.sum() + b * (sx - yx)) - log_den
     g = np.stack([st.y.sum() - s0, yx - s1], axis=1)
     H = np.empty((x.shape[1], 2, 2))
-    H[:, 0, 0], H[:, 0, 1], H[:, 1, 1] = s0 - q0, s1 - q1, s2 - q2
+    H[:, 0, 0], H[:, 0, 1], H[:, 1, 1] = h00, h01, h11
     H[:, 1, 0] = H[:, 0, 1]
     return -2.0 * ell[pos], g[pos], H[pos]
 
@@ -680,7 +709,7 @@ def _evaluate_poisson_profile(st: GLMState, ws: Workspace, yx: np.ndarray, idx, 
     if _accel.use_numba:
         linear_predictor(x, b, np.zeros_like(b), np.zeros(x.shape[0]), 1.0, e)
         np.exp(e, out=e)
-        s0, s1, s2 = sums = np.zeros((3, x.shape[1]))
+        s0, s1, s2 = sums = np.empty((3, x.shape[1]))
         _weighted_moments(e, x, st.mu0, sums)
     else:
         np.multiply(x, b, out=e)
