@@ -16,6 +16,8 @@ worker thread runs its kernel single-threaded):
 Goals: logistic at most 3x and Cox at most 5x the linear kernel; at least 100x faster than the statsmodels
 loop.
 
+The compiled (numba) route is used when numba imports; ``WIDESCREEN_NUMBA=0`` measures the numpy route.
+
 Usage::
 
     python tools/bench_glm_kernels.py
@@ -40,6 +42,7 @@ from widescreen.kernels._glm import (
     prepare_logistic,
     prepare_poisson,
 )
+from widescreen.store import _accel
 from widescreen.store._reader import prepare_block
 
 N_TRUE = 5
@@ -157,6 +160,7 @@ def main() -> None:
         "kind": args.kind,
         "blas_threads": args.blas_threads,
         "load_average": os.getloadavg()[0],
+        "numba": bool(_accel.use_numba),
     }
     with threadpool_limits(args.blas_threads):
 
@@ -187,7 +191,8 @@ def main() -> None:
     lin, lin_pass = fig["linear_s"], fig["linear_pass_s"]
     print(
         f"block n={args.samples} x width={width} ({args.kind}), {args.blas_threads} BLAS thread(s), "
-        f"load average {fig['load_average']:.1f}; min of {args.repeat} runs"
+        f"load average {fig['load_average']:.1f}; min of {args.repeat} runs; "
+        f"compiled loops {'on' if fig['numba'] else 'off (numpy route)'}"
     )
     print(
         f"CPU times; prepare_block + values: {fig['prepare_s'] * 1e3:.1f} ms, "

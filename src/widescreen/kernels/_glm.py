@@ -736,10 +736,17 @@ def _fit_tile(st: GLMState, ws: Workspace, tile: np.ndarray, sumsq, dead) -> dic
     C, k = st.design, st.design.shape[1]
     # x^2 is kept for the numpy route of the intercept-only logistic model.
     x = ws.load(tile, square=st.family == "logistic" and k == 1 and not _accel.use_numba)
-    lhs = np.column_stack([st.y, st.mu0, np.ones(n), C * st.w0[:, None]])
-    cross = lhs.T @ x
-    yx, mu0x, sx, Cw0x = cross[0], cross[1], cross[2], cross[3:]
-    w0xx = st.w0 @ ws.xx if ws.xx.shape[1] else weighted_sumsq(x, st.w0)
+    if st.eta0_constant and k == 1:
+        # No covariates nor offset: mu0 and w0 are constant, so x' mu0, x' w0 and x' W0 x follow from
+        # the column sums and `sumsq`.
+        cross = np.vstack([st.y, np.ones(n)]) @ x
+        yx, sx = cross
+        mu0x, Cw0x, w0xx = st.mu0[0] * sx, st.w0[0] * sx[None], st.w0[0] * sumsq
+    else:
+        lhs = np.column_stack([st.y, st.mu0, np.ones(n), C * st.w0[:, None]])
+        cross = lhs.T @ x
+        yx, mu0x, sx, Cw0x = cross[0], cross[1], cross[2], cross[3:]
+        w0xx = st.w0 @ ws.xx if ws.xx.shape[1] else weighted_sumsq(x, st.w0)
     profile = st.family == "poisson" and k == 1
     if profile:
         H0 = (w0xx - mu0x**2 / st.y.sum())[:, None, None]
