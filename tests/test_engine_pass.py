@@ -246,3 +246,36 @@ def test_progress_counts_every_block(data, tmp_path):
     seen.clear()
     run_pass(src, replace(_spec(y)), run, progress=lambda d, t: seen.append((d, t)))
     assert seen == [(15, 16), (16, 16)]
+
+
+def test_resume_rebuilds_kept_values_without_reading_blocks(data, tmp_path, monkeypatch):
+    X, y, src = data
+    rows = np.array([*range(5, 90), 0, 3])  # a joined, reordered subset of the samples
+    spec = _spec(y[rows], rows=rows, sub_block=24)
+    run = RunFolder(tmp_path / "run")
+    full = run_pass(src, spec, run)
+    assert (run.pass_dir("screen") / "done" / "0.kept.npz").exists()
+    for i in (1, 2):
+        (run.pass_dir("screen") / "done" / f"{i}.json").unlink()
+    import widescreen.engine._pass as engine_pass
+
+    def no_reads(*args, **kwargs):
+        raise AssertionError("the kept columns of reused blocks should not be read again")
+
+    with monkeypatch.context() as m:
+        m.setattr(engine_pass, "fetch_columns", no_reads)
+        res = run_pass(src, spec, run)
+    assert res.blocks_reused == 14
+    assert np.any(~np.isin(res.topk.index // 64, [1, 2]))  # some kept features are in reused blocks
+    np.testing.assert_array_equal(res.topk.index, full.topk.index)
+    np.testing.assert_array_equal(res.topk.values.view(np.uint64), full.topk.values.view(np.uint64))
+    # the kept values are the imputed, centred columns of the analysed rows (numpy)
+    xc, _, _ = _imputed(X[rows])
+    np.testing.assert_allclose(res.topk.values, xc[:, res.topk.index], atol=1e-12)
+    # without the kept columns (an older or damaged run folder) they are read from the store
+    for f in (run.pass_dir("screen") / "done").glob("*.kept.npz"):
+        f.write_bytes(b"damaged") if f.name.startswith("3.") else f.unlink()
+    again = run_pass(src, spec, run)
+    np.testing.assert_array_equal(
+        again.topk.values.view(np.uint64), full.topk.values.view(np.uint64)
+    )

@@ -9,6 +9,7 @@ resumed pass merges without reading the block again.
 
 from __future__ import annotations
 
+import io
 import json
 import os
 import socket
@@ -19,7 +20,7 @@ from pathlib import Path
 
 import numpy as np
 
-from ..store._reader import prepare_block
+from ..store._reader import Block, prepare_block
 from ._runfolder import atomic_write
 from ._scheduler import WorkerAccessError
 from ._source import BlockSource
@@ -99,9 +100,20 @@ def process_block(source: BlockSource, spec: PassSpec, i: int, out_dir: str | No
         record["stats"] = stats
         return record
     write_stats(out_dir, i, stats, source.block_width)
+    if spec.keep_values and best.index.size:
+        local = best.index - start
+        write_kept(out_dir, i, best.index, _kept_raw(raw, local, spec.rows), stats["mean"][local])
     record["seconds"] = time.perf_counter() - t0
     write_marker(out_dir, record)
     return record
+
+
+def _kept_raw(raw: np.ndarray, local: np.ndarray, rows: np.ndarray | None) -> np.ndarray:
+    # As prepare_block sees them: the analysed rows, other integer types as float64.
+    cols = raw[:, local]
+    if cols.dtype not in (np.int8, np.float32, np.float64):
+        cols = cols.astype(np.float64)
+    return cols if rows is None else cols[rows]
 
 
 # --------------------------------------------------------------------------------------------
@@ -153,6 +165,58 @@ def write_marker(out_dir: str | Path, record: dict) -> None:
         "seconds": record["seconds"],
     }
     atomic_write(Path(out_dir) / "done" / f"{record['block']}.json", json.dumps(marker))
+
+
+def write_kept(
+    out_dir: str | Path, block: int, index: np.ndarray, raw: np.ndarray, mean: np.ndarray
+) -> None:
+    """Keep the stored values of a block's top-k columns beside its marker (``done/BLOCK.kept.npz``).
+
+    A resumed pass rebuilds the kept float64 values of reused blocks from these few columns and the
+    recorded means (centring is elementwise, so the values are bit-identical) instead of reading and
+    decoding each block again. Written before the marker; a missing or unreadable file only means the
+    values are read from the store instead.
+
+    Parameters
+    ----------
+    index : ndarray of int64, shape (k,)
+    raw : ndarray of shape (n_analysed, k)
+        Stored values of those features (int8 with the sentinel, or floats with NaN).
+    mean : ndarray of float64, shape (k,)
+        Their observed means, as the pass computed them.
+    """
+    buf = io.BytesIO()
+    np.savez(buf, index=np.asarray(index, np.int64), raw=raw, mean=np.asarray(mean, np.float64))
+    atomic_write(kept_path(out_dir, block), buf.getvalue(), sync=False)
+
+
+def kept_path(out_dir: str | Path, block: int) -> Path:
+    return Path(out_dir) / "done" / f"{block}.kept.npz"
+
+
+def read_kept(out_dir: str | Path, block: int) -> tuple[np.ndarray, np.ndarray] | None:
+    """(index, values of shape (n_analysed, k)) of a block's kept columns, or None if unusable."""
+    try:
+        with np.load(kept_path(out_dir, block)) as z:
+            index, raw, mean = z["index"], z["raw"], z["mean"]
+        k = index.size
+        if raw.ndim != 2 or raw.shape[1] != k or mean.shape != (k,):
+            return None
+        zeros = np.zeros(k)
+        # A block of just these columns with the pass's means: `Block.columns` centres them exactly
+        # as the pass did.
+        blk = Block(
+            start=0,
+            mean=mean,
+            sumsq=zeros,
+            missing_rate=zeros,
+            constant=np.zeros(k, dtype=bool),
+            raw=raw,
+            n_missing=np.zeros(k, dtype=np.int64),
+        )
+        return index, blk.columns(np.arange(k))
+    except (OSError, ValueError, KeyError, TypeError):
+        return None
 
 
 def stats_chunk(out_dir: str | Path, column: str, block: int) -> Path:

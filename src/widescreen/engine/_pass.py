@@ -24,7 +24,7 @@ from typing import Any
 import numpy as np
 import zarr
 
-from ._block import fetch_columns, process_block, read_marker, stats_codecs_ok
+from ._block import fetch_columns, process_block, read_kept, read_marker, stats_codecs_ok
 from ._memory import (
     BASELINE_BYTES,
     CLUSTER_SHARE,
@@ -289,7 +289,7 @@ def run_pass(
     t_fetch = time.perf_counter()
     top = merged["topk"]
     if top.values is None and spec.keep_values and top.index.size:
-        top = replace(top, values=_kept_values(source, spec, top, computed, fetch_threads))
+        top = replace(top, values=_kept_values(source, spec, top, computed, out_dir, fetch_threads))
     t_fetch = time.perf_counter() - t_fetch if reused else 0.0
     return PassResult(
         name=spec.name,
@@ -326,9 +326,15 @@ def _record_sub_block(d: Path, meta: dict, sub_block: int, computing: bool, note
 
 
 def _kept_values(
-    source: BlockSource, spec: PassSpec, top: TopK, computed: dict | None, n_threads: int
+    source: BlockSource,
+    spec: PassSpec,
+    top: TopK,
+    computed: dict | None,
+    out_dir: str | None,
+    n_threads: int,
 ) -> np.ndarray:
-    """Values of the final top-k: from the new blocks' lists where they are, read back otherwise."""
+    """Values of the final top-k: from the new blocks' lists where they are, then from the kept
+    columns recorded beside reused blocks' markers, and read back from the store for the rest."""
     n = source.n_samples if spec.rows is None else len(spec.rows)
     values = np.empty((n, top.index.size), dtype=np.float64, order="F")
     have = np.zeros(top.index.size, dtype=bool)
@@ -339,6 +345,20 @@ def _kept_values(
         pos = np.minimum(pos, ctop.index.size - 1)
         have = ctop.index[order][pos] == top.index
         values[:, have] = ctop.values[:, order[pos[have]]]
+    if out_dir is not None and not have.all():
+        for b in np.unique(top.index[~have] // source.block_width):
+            got = read_kept(out_dir, int(b))
+            if got is None:
+                continue
+            kidx, kvals = got
+            if kidx.size == 0 or kvals.shape[0] != n:
+                continue
+            want = np.flatnonzero(~have & (top.index // source.block_width == b))
+            order = np.argsort(kidx)
+            pos = np.minimum(np.searchsorted(kidx[order], top.index[want]), kidx.size - 1)
+            ok = kidx[order][pos] == top.index[want]
+            values[:, want[ok]] = kvals[:, order[pos[ok]]]
+            have[want[ok]] = True
     if not have.all():
         missing = np.flatnonzero(~have)
         values[:, missing] = fetch_columns(
