@@ -22,7 +22,7 @@ What one worker thread holds at its peak while it processes one block::
 and what the process holds besides the threads::
 
     shared(T)  = baseline + (f + T + 1) * 8 * n * k   the process itself, and the top-k records
-                                                  waiting for a merge; baseline = 256 MiB
+                                                  waiting for a merge; baseline = 320 MiB
                                                   (interpreter and libraries), or the resident
                                                   memory of the calling process when larger
 
@@ -49,9 +49,10 @@ from dataclasses import asdict, dataclass
 
 from dask.utils import format_bytes, parse_bytes
 
-#: Resident memory of a process with the interpreter, numpy, scipy, dask and zarr loaded, before its
-#: blocks: about 180 MiB measured (ru_maxrss of a small pass on Linux); rounded up for other platforms.
-BASELINE_BYTES = 256 * 2**20
+#: Resident memory of a process with the interpreter, numpy, scipy, numba, dask and zarr loaded and its
+#: compiled loops warmed up, before its blocks: about 270 MiB measured (ru_maxrss, tools/bench_scale.py);
+#: rounded up.
+BASELINE_BYTES = 320 * 2**20
 #: Below this sub-block width the per-call overhead outweighs the memory saved; fewer threads first.
 MIN_SUB_BLOCK = 128
 #: Float64 (n, width) temporaries a kernel makes at its peak, unless the pass says otherwise.
