@@ -34,8 +34,9 @@ fit, the budget is refused with the numbers: the chunk column alone must fit, si
 whole; the remedy is a larger budget or a store with fewer features per chunk.
 
 No term grows with the number of features p, so the peak memory of a pass is flat in p. On a cluster
-the budget is that of one worker process and the plan uses 3/4 of it, below the share at which
-distributed pauses a worker (80%).
+the plan is made for one worker process, with 3/4 of its memory limit (below the share at which
+distributed pauses a worker, 80%): for ``processes:N`` that limit is the budget / N, for an existing
+cluster the budget or the worker's own limit, whichever is smaller.
 
 The sub-block width changes the last bits of the kernel's statistics (matrix products round by width),
 so the width is recorded with the pass, and a resumed pass keeps it whenever it fits at all (with fewer
