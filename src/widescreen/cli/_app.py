@@ -23,6 +23,14 @@ app = typer.Typer(
 QuietOpt = Annotated[
     bool, typer.Option("--quiet", "-q", help="No progress bar; only results and errors.")
 ]
+MemoryOpt = Annotated[
+    str | None,
+    typer.Option(
+        "--memory-budget",
+        help="Memory the run may use, e.g. 4GB; with --workers N it is shared by the N workers, "
+        "with --scheduler ADDRESS it is one worker's.",
+    ),
+]
 ReportOpt = Annotated[
     bool,
     typer.Option(
@@ -86,6 +94,15 @@ def _scheduler(workers: int | None, scheduler: str | None):
             raise typer.BadParameter(f"--workers must be at least 1; got {workers}")
         return f"processes:{workers}"
     return scheduler
+
+
+def _budget(value: str | None) -> int | None:
+    from ..engine import parse_budget
+
+    try:
+        return parse_budget(value)
+    except ValueError as exc:
+        raise typer.BadParameter(f"--memory-budget: {exc}") from None
 
 
 def _parse_keep(value: str) -> int | str:
@@ -166,6 +183,7 @@ def screen_cmd(
     restart: Annotated[
         bool, typer.Option("--restart", help="Discard what the run folder holds and start over.")
     ] = False,
+    memory_budget: MemoryOpt = None,
     report: ReportOpt = True,
     quiet: QuietOpt = False,
 ) -> None:
@@ -190,6 +208,7 @@ def screen_cmd(
         scheduler=_scheduler(workers, scheduler),
         progress=ProgressBar("screen", quiet),
         restart=restart,
+        memory_budget=_budget(memory_budget),
     )
     s = result.pass_result
     rep = result.problem.joined.report()
@@ -393,8 +412,17 @@ def inspect_cmd(
     typer.echo(inspect_dataset(store, sample_blocks=sample_blocks).format())
 
 
+def _terminate(signum, frame) -> None:
+    # Batch schedulers end jobs at their time limit with SIGTERM: stop like Ctrl-C, so the session is
+    # recorded as interrupted and finished blocks are kept for the rerun.
+    raise KeyboardInterrupt
+
+
 def main() -> None:
     """Entry point of the ``widescreen`` command."""
+    import signal
+
+    signal.signal(signal.SIGTERM, _terminate)
     app(prog_name="widescreen")
 
 

@@ -7,7 +7,7 @@ from typing import Annotated
 
 import typer
 
-from ._app import ReportOpt, _covariates, _parse_keep, _scheduler, app, friendly
+from ._app import MemoryOpt, ReportOpt, _budget, _covariates, _parse_keep, _scheduler, app, friendly
 from ._progress import ProgressBar
 
 _MODEL = "Model and tuning"
@@ -164,6 +164,7 @@ def run_cmd(
             rich_help_panel=_RUN,
         ),
     ] = False,
+    memory_budget: MemoryOpt = None,
     report: ReportOpt = True,
 ) -> None:
     """Iterative screening: screen, fit a penalised model, rank the rest given it, refit, repeat.
@@ -201,6 +202,7 @@ def run_cmd(
         scheduler=_scheduler(workers, scheduler),
         progress=lambda name: ProgressBar(name, quiet),
         restart=restart,
+        memory_budget=_budget(memory_budget),
     )
     rep = result.problem.joined.report()
     shown = ", ".join(str(f) for f in result.feature_ids[:10])

@@ -350,6 +350,35 @@ class Dataset:
     def feature_ids(self, start: int = 0, stop: int | None = None) -> np.ndarray:
         return as_unicode(self.group["features/id"][start:stop])
 
+    def feature_ids_at(self, index) -> np.ndarray:
+        """Ids of the given features, reading only their entries (memory independent of p)."""
+        index = np.asarray(index, dtype=np.int64)
+        if index.size == 0:
+            return np.empty(0, dtype="U1")
+        order = np.argsort(index, kind="stable")
+        vals = as_unicode(self.group["features/id"].get_coordinate_selection(index[order]))
+        out = np.empty_like(vals)
+        out[order] = vals
+        return out
+
+    def annotations_at(self, index) -> dict[str, np.ndarray] | None:
+        """Chromosome and position of the given features only, or None without annotations."""
+        g = self.group
+        if "features/chrom" not in g or "features/pos" not in g:
+            return None
+        index = np.asarray(index, dtype=np.int64)
+        order = np.argsort(index, kind="stable")
+        out = {}
+        for name, conv in (("chrom", as_unicode), ("pos", lambda a: np.asarray(a, dtype=np.int64))):
+            if index.size == 0:
+                out[name] = np.empty(0, dtype="U1" if name == "chrom" else np.int64)
+                continue
+            vals = conv(g[f"features/{name}"].get_coordinate_selection(index[order]))
+            back = np.empty_like(vals)
+            back[order] = vals
+            out[name] = back
+        return out
+
     def annotations(self) -> dict[str, np.ndarray] | None:
         """Chromosome and position per feature, or None when the store has none."""
         g = self.group

@@ -42,6 +42,8 @@ class StepContext:
         Positions (among the analysed samples) of the two halves when splitting.
     scheduler : optional
     progress : callable(pass name) -> callable(done, total) or None, optional
+    memory_budget : int or str, optional
+        Memory the passes may use (see `widescreen.engine.plan_memory`).
     """
 
     problem: Problem
@@ -52,6 +54,7 @@ class StepContext:
     halves: tuple[np.ndarray, np.ndarray] | None = None
     scheduler: Any = None
     progress: Callable[[str], Any] | None = None
+    memory_budget: int | str | None = None
 
 
 @dataclass
@@ -140,7 +143,14 @@ def _one_pass(
         sub_block=ctx.sub_block,
     )
     progress = ctx.progress(name) if ctx.progress is not None else None
-    result = run_pass(problem.source, spec, ctx.run, scheduler=ctx.scheduler, progress=progress)
+    result = run_pass(
+        problem.source,
+        spec,
+        ctx.run,
+        scheduler=ctx.scheduler,
+        progress=progress,
+        memory_budget=ctx.memory_budget,
+    )
     kept, info = apply_threshold(ctx, result, exclude)
     return result, kept, info
 

@@ -208,6 +208,7 @@ def iterate(
     session: RunSession | None = None,
     scheduler=None,
     progress=None,
+    memory_budget: int | str | None = None,
 ) -> IterativeResult:
     """Run the iterative workflow on a loaded problem.
 
@@ -227,7 +228,15 @@ def iterate(
     run = session.run if session is not None else None
     halves = split_halves(n, config.seed) if config.split else None
     ctx = StepContext(
-        problem, config.rule, config.filters, config.sub_block, run, halves, scheduler, progress
+        problem,
+        config.rule,
+        config.filters,
+        config.sub_block,
+        run,
+        halves,
+        scheduler,
+        progress,
+        memory_budget,
     )
     old = list(session.manifest.get("iterations", [])) if session is not None else []
     records: list[dict] = []

@@ -63,10 +63,7 @@ class Problem:
         index = np.asarray(index, dtype=np.int64)
         if ds is None:
             return np.array([f"x{i}" for i in index], dtype=str)
-        if index.size == 0:
-            return np.empty(0, dtype=str)
-        lo, hi = int(index.min()), int(index.max()) + 1
-        return ds.feature_ids(lo, hi)[index - lo]
+        return ds.feature_ids_at(index)
 
 
 def load_problem(

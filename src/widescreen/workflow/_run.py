@@ -87,6 +87,7 @@ def run(
     scheduler=None,
     progress=None,
     restart: bool = False,
+    memory_budget: int | str | None = None,
 ) -> IterativeResult:
     """Iterative screening of every feature of ``store``; write the run folder ``out``.
 
@@ -99,6 +100,9 @@ def run(
     scheduler : optional
     progress : callable(pass name) -> callable(done, total), optional
     restart : discard what the folder holds and start over
+    memory_budget : int or str, optional
+        Memory the passes may use. Recorded outside the configuration, so a rerun with a smaller
+        budget (after running out of memory) resumes.
 
     Returns
     -------
@@ -119,7 +123,15 @@ def run(
         session.manifest["samples"] = problem.joined.report()
         if problem.response.mapping:
             session.manifest["response_coding"] = problem.response.mapping
-        result = iterate(problem, config, session=session, scheduler=scheduler, progress=progress)
+        session.manifest["memory_budget"] = memory_budget
+        result = iterate(
+            problem,
+            config,
+            session=session,
+            scheduler=scheduler,
+            progress=progress,
+            memory_budget=memory_budget,
+        )
         session.manifest["size_budget"] = result.budget
         session.manifest["selected"] = [str(f) for f in result.feature_ids]
         if not config.split:

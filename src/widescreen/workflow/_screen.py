@@ -146,10 +146,10 @@ def ranking_columns(
     if problem.source.value_kind == "dosage":
         cols["allele_freq"] = stats["mean"] / 2.0
     ds = getattr(problem.source, "dataset", None)
-    ann = ds.annotations() if ds is not None else None
+    ann = ds.annotations_at(index) if ds is not None else None
     if ann is not None:
-        cols["chrom"] = ann["chrom"][index]
-        cols["pos"] = ann["pos"][index]
+        cols["chrom"] = ann["chrom"]
+        cols["pos"] = ann["pos"]
     cols["index"] = index
     return cols
 
@@ -181,11 +181,14 @@ def screen(
     scheduler=None,
     progress=None,
     restart: bool = False,
+    memory_budget: int | str | None = None,
 ) -> ScreenResult:
     """Screen every feature of ``store`` for association with the outcome; write the run folder.
 
     Writes ``manifest.json``, ``ranking.tsv`` (the shortlist, or ``list_top`` rows, in rank order) and
-    the statistics of every feature under ``passes/screen/``.
+    the statistics of every feature under ``passes/screen/``. ``memory_budget`` (bytes or a text such
+    as "4GB") plans the pass's memory; it is recorded outside the configuration, so a rerun with a
+    smaller budget resumes.
     """
     t0 = time.perf_counter()
     problem = load_problem(
@@ -206,7 +209,15 @@ def screen(
             session.manifest["response_coding"] = problem.response.mapping
         session.manifest["shortlist_size"] = keep
         spec = screen_spec(problem, config, listed, scheduler=scheduler)
-        result = run_pass(problem.source, spec, session.run, scheduler=scheduler, progress=progress)
+        session.manifest["memory_budget"] = memory_budget
+        result = run_pass(
+            problem.source,
+            spec,
+            session.run,
+            scheduler=scheduler,
+            progress=progress,
+            memory_budget=memory_budget,
+        )
         session.record_pass("screen", result.summary())
         top = result.topk
         cols = ranking_columns(problem, session.run, result, "screen", top.index, top.score)
