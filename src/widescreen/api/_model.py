@@ -11,7 +11,7 @@ from ..engine._source import ArraySource, as_source
 from ..fit import make_loss
 from ..workflow._iterate import IterateConfig, iterate
 from ..workflow._problem import problem_from_arrays
-from ._selector import _is_out_of_core, _read_columns
+from ._selector import _is_out_of_core, _read_columns, read_selected
 
 
 class IterativeScreeningModel(SelectorMixin, RegressorMixin, BaseEstimator):
@@ -223,12 +223,7 @@ class IterativeScreeningModel(SelectorMixin, RegressorMixin, BaseEstimator):
         """Reduce X to the selected features (for a store: their raw values, read once)."""
         if _is_out_of_core(X):
             check_is_fitted(self, "coef_")
-            source = as_source(X)
-            if source.n_features != self.n_features_in_:
-                raise ValueError(
-                    f"X has {source.n_features} features; fitted on {self.n_features_in_}"
-                )
-            return _read_columns(source, self.selected_)
+            return read_selected(X, self.n_features_in_, self.selected_)
         return super().transform(X)
 
     def __sklearn_tags__(self):

@@ -123,13 +123,7 @@ class ScreeningSelector(SelectorMixin, BaseEstimator):
         """Reduce X to the kept features (for a store: their raw values, read once)."""
         if _is_out_of_core(X):
             check_is_fitted(self, "ranking_")
-            source = as_source(X)
-            if source.n_features != self.n_features_in_:
-                raise ValueError(
-                    f"X has {source.n_features} features; fitted on {self.n_features_in_}"
-                )
-            cols = np.sort(self.ranking_)
-            return _read_columns(source, cols)
+            return read_selected(X, self.n_features_in_, np.sort(self.ranking_))
         return super().transform(X)
 
     def __sklearn_tags__(self):
@@ -137,6 +131,14 @@ class ScreeningSelector(SelectorMixin, BaseEstimator):
         tags.input_tags.allow_nan = True
         tags.target_tags.required = True
         return tags
+
+
+def read_selected(X, n_features_in: int, cols: np.ndarray) -> np.ndarray:
+    """Raw values of the selected columns of an out-of-core X, after checking its width."""
+    source = as_source(X)
+    if source.n_features != n_features_in:
+        raise ValueError(f"X has {source.n_features} features; fitted on {n_features_in}")
+    return _read_columns(source, cols)
 
 
 def _read_columns(source: BlockSource, cols: np.ndarray) -> np.ndarray:
