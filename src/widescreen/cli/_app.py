@@ -293,7 +293,7 @@ def demo_cmd(
     seed: Annotated[int, typer.Option("--seed", help="Random seed.")] = 7,
     quiet: QuietOpt = False,
 ) -> None:
-    """Simulate a study, screen it and print what was found against the truth.
+    """Simulate a study, run the whole job on it and compare the model with the truth.
 
     The scenario: a breeding programme of the fictional 'Saltmarsh reed', 600 plants genotyped at
     50,000 variant sites (dosages 0/1/2), a quantitative salt-tolerance score, age and batch covariates,
