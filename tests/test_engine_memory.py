@@ -88,8 +88,9 @@ def test_rule_bounds_the_measured_peak_of_a_block_task(store, sub_block, keep, h
     shape = src.block_shape(spec.n_analysed)
     bound = thread_bytes(shape, sub_block, keep=keep, n_columns=len(spec.all_columns))
     assert shape.column_bytes <= peak <= bound
-    # and the rule is not absurdly loose
-    assert bound < 4 * peak
+    # and the rule is not absurdly loose (the linear kernel never builds the float64 sub-block the
+    # rule allows for, so it stays somewhat below it)
+    assert bound < 5 * peak
 
 
 def test_plan_fits_the_budget_and_prefers_threads(store):

@@ -81,11 +81,15 @@ def process_block(source: BlockSource, spec: PassSpec, i: int, out_dir: str | No
         cols["mean"].append(block.mean)
         cols["filtered"].append(filtered.astype(np.float64))
         part = block_topk(spec.keep, start + a, score, None, eligible, out.get("null_score"))
-        if spec.keep_values:
-            # Only the kept columns are materialised (the block's float64 values are lazy).
-            part = replace(part, values=block.columns(part.index - (start + a)))
         best = merge_all([best, part], spec.keep, part.null_max.size)
     stats = {c: np.concatenate(v) for c, v in cols.items()}
+    kept_raw = None
+    if spec.keep_values and best.index.size:
+        # The values of the block's final top k only, made once per block from the stored values and
+        # the pass's means (elementwise, so equal to what the sub-block would have given).
+        local = best.index - start
+        kept_raw = _kept_raw(raw, local, spec.rows)
+        best = replace(best, values=kept_values(kept_raw, stats["mean"][local]))
     record = {
         "block": i,
         "start": start,
@@ -100,12 +104,31 @@ def process_block(source: BlockSource, spec: PassSpec, i: int, out_dir: str | No
         record["stats"] = stats
         return record
     write_stats(out_dir, i, stats, source.block_width)
-    if spec.keep_values and best.index.size:
-        local = best.index - start
-        write_kept(out_dir, i, best.index, _kept_raw(raw, local, spec.rows), stats["mean"][local])
+    if kept_raw is not None:
+        write_kept(out_dir, i, best.index, kept_raw, stats["mean"][best.index - start])
     record["seconds"] = time.perf_counter() - t0
     write_marker(out_dir, record)
     return record
+
+
+def kept_values(raw: np.ndarray, mean: np.ndarray) -> np.ndarray:
+    """Imputed, centred float64 values of a few columns, from their stored values and observed means.
+
+    A block of just these columns with the pass's means: `Block.columns` centres them exactly as
+    the pass does.
+    """
+    k = raw.shape[1]
+    zeros = np.zeros(k)
+    blk = Block(
+        start=0,
+        mean=np.asarray(mean, dtype=np.float64),
+        sumsq=zeros,
+        missing_rate=zeros,
+        constant=np.zeros(k, dtype=bool),
+        raw=raw,
+        n_missing=np.zeros(k, dtype=np.int64),
+    )
+    return blk.columns(np.arange(k))
 
 
 def _kept_raw(raw: np.ndarray, local: np.ndarray, rows: np.ndarray | None) -> np.ndarray:
@@ -202,19 +225,7 @@ def read_kept(out_dir: str | Path, block: int) -> tuple[np.ndarray, np.ndarray] 
         k = index.size
         if raw.ndim != 2 or raw.shape[1] != k or mean.shape != (k,):
             return None
-        zeros = np.zeros(k)
-        # A block of just these columns with the pass's means: `Block.columns` centres them exactly
-        # as the pass did.
-        blk = Block(
-            start=0,
-            mean=mean,
-            sumsq=zeros,
-            missing_rate=zeros,
-            constant=np.zeros(k, dtype=bool),
-            raw=raw,
-            n_missing=np.zeros(k, dtype=np.int64),
-        )
-        return index, blk.columns(np.arange(k))
+        return index, kept_values(raw, mean)
     except (OSError, ValueError, KeyError, TypeError):
         return None
 

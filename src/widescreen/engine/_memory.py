@@ -14,10 +14,10 @@ What one worker thread holds at its peak while it processes one block::
     sub(w)     = n * w * (s + 8 * (1 + t))        the analysed rows of one sub-block, its float64
                  + 2 * m * w * 8                  values and the kernel's temporaries; the
                                                   cross-products and null scores of the m responses
-    topk(w)    = 8 * n * (2 * min(k, C) + min(k, w))  the block's running top-k values, one
-                                                  sub-block's list and their merge
+    topk       = n * min(k, C) * (8 + 2 * s + 1)  the block's final top-k values, made once
+                                                  per block from their stored values
     stats      = 2 * c * C * 8                    the block's statistics
-    thread(w)  = column + encoded + sub(w) + topk(w) + stats
+    thread(w)  = column + encoded + sub(w) + topk + stats
 
 and what the process holds besides the threads::
 
@@ -179,8 +179,9 @@ def thread_bytes(
     w = min(sub_block, shape.chunk_cols)
     n = shape.n_analysed
     sub = n * w * (shape.itemsize + 8 * (1.0 + temporaries)) + 2 * n_responses * w * 8
-    # The block's running list, one sub-block's list, and their merge.
-    top = n * 8 * (2 * min(keep, shape.chunk_cols) + min(keep, w))
+    # The block's final top-k values, made once from their stored values (a gathered copy, the kept
+    # copy and a missing mask beside the float64 result).
+    top = n * min(keep, shape.chunk_cols) * (8 + 2 * shape.itemsize + 1)
     stats = 2 * n_columns * shape.chunk_cols * 8
     return int(shape.column_bytes + shape.encoded_bytes + sub + top + stats)
 
