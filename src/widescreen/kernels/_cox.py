@@ -33,6 +33,7 @@ from ..store import _accel
 from ..store._reader import Block
 from . import _glm
 from ._glm import check_rank, newton, sum_log
+from ._newton import damped_newton
 
 
 @dataclass(frozen=True)
@@ -102,32 +103,18 @@ def _cox_null_fit(Z, off, event, ends, deaths, max_iter: int = 100):
         return ell, g, H
 
     gamma = np.zeros(Z.shape[1])
-    ell, g, H = evaluate(gamma)
-    for _ in range(max_iter if Z.shape[1] else 0):
-        try:
-            step = np.linalg.solve(H, g)
-        except np.linalg.LinAlgError:
-            raise ValueError(
-                "the covariates are collinear (or constant) on these samples"
-            ) from None
-        lam = float(g @ step)
-        t = 1.0
-        while True:
-            new = evaluate(gamma + t * step)
-            if np.isfinite(new[0]) and new[0] >= ell - 1e-12 * (1 + abs(ell)):
-                break
-            t *= 0.5
-            if t < 1e-10:
-                raise ValueError("the Cox null fit on the covariates did not converge")
-        gamma = gamma + t * step
-        ell, g, H = new
-        if lam < 1e-12:  # that step was well inside the quadratic region: converged
-            break
+    if Z.shape[1] == 0:
+        ell = evaluate(gamma)[0]
     else:
-        if Z.shape[1]:
-            raise ValueError(
-                f"the Cox null fit on the covariates did not converge in {max_iter} steps"
-            )
+
+        def loss(g0: np.ndarray):
+            ell, g, H = evaluate(g0)
+            return -ell, g, H
+
+        gamma, (neg_ell, _, _) = damped_newton(
+            loss, gamma, max_iter=max_iter, what="Cox null fit on the covariates"
+        )
+        ell = -neg_ell
     eta = off + Z @ gamma
     return eta - eta.max(), -2.0 * ell
 

@@ -53,6 +53,7 @@ from scipy import special
 
 from ..store import _accel
 from ..store._reader import Block
+from ._newton import damped_newton
 
 FAMILIES = ("logistic", "poisson")
 COVARIATE_MODES = ("offset", "joint")
@@ -157,36 +158,17 @@ def _fit_null(family: str, y: np.ndarray, C: np.ndarray, offset: np.ndarray, max
         gamma[0] = np.log(p / (1 - p)) - np.mean(offset)
     else:
         gamma[0] = np.log(max(y.mean(), 1e-300)) - np.log(max(np.exp(offset).mean(), 1e-300))
-    eta = offset + C @ gamma
-    dev = _deviance(family, y, eta)
-    for _ in range(max_iter):
+
+    def evaluate(g0: np.ndarray):
+        eta = offset + C @ g0
         mu, w = _mean(family, eta)
-        g = C.T @ (y - mu)
-        H = C.T @ (C * w[:, None])
-        try:
-            step = np.linalg.solve(H, g)
-        except np.linalg.LinAlgError:
-            raise ValueError(
-                "the covariates are collinear (or constant) on these samples"
-            ) from None
-        lam = float(g @ step)
-        t = 1.0
-        while True:
-            new = gamma + t * step
-            new_dev = _deviance(family, y, offset + C @ new)
-            if np.isfinite(new_dev) and new_dev <= dev + 1e-12 * (1 + abs(dev)):
-                break
-            t *= 0.5
-            if t < 1e-10:
-                raise ValueError(f"the {family} null fit on the covariates did not converge")
-        gamma, dev, eta = new, new_dev, offset + C @ new
-        if lam < 1e-12:
-            break
-    else:
-        raise ValueError(
-            f"the {family} null fit on the covariates did not converge in {max_iter} steps"
-        )
-    mu, w = _mean(family, eta)
+        return _deviance(family, y, eta), C.T @ (y - mu), C.T @ (C * w[:, None])
+
+    gamma, (dev, _, _) = damped_newton(
+        evaluate, gamma, max_iter=max_iter, what=f"{family} null fit on the covariates"
+    )
+    eta = offset + C @ gamma
+    _, w = _mean(family, eta)
     if family == "logistic" and C.shape[1] > 1 and np.min(w) < 1e-12:
         raise ValueError("the covariates separate the outcome: fitted probabilities reach 0 or 1")
     return gamma, eta, dev
