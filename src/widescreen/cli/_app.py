@@ -10,6 +10,23 @@ from typing import Annotated
 
 import typer
 
+from ._options import (
+    CovariatesOpt,
+    EventOpt,
+    FamilyOpt,
+    MaxMissingOpt,
+    MemoryOpt,
+    MinMafOpt,
+    OutcomeOpt,
+    OutOpt,
+    QuietOpt,
+    ReportOpt,
+    ResponseOpt,
+    RestartOpt,
+    SchedulerOpt,
+    StoreArg,
+    WorkersOpt,
+)
 from ._progress import ProgressBar
 
 app = typer.Typer(
@@ -19,24 +36,6 @@ app = typer.Typer(
     add_completion=False,
     pretty_exceptions_enable=False,
 )
-
-QuietOpt = Annotated[
-    bool, typer.Option("--quiet", "-q", help="No progress bar; only results and errors.")
-]
-MemoryOpt = Annotated[
-    str | None,
-    typer.Option(
-        "--memory-budget",
-        help="Memory the run may use, e.g. 4GB; with --workers N it is shared by the N workers, "
-        "with --scheduler ADDRESS it is one worker's.",
-    ),
-]
-ReportOpt = Annotated[
-    bool,
-    typer.Option(
-        "--report/--no-report", help="Write report.html and figures/ into the run folder."
-    ),
-]
 
 
 def _expected_errors() -> tuple[type[BaseException], ...]:
@@ -130,59 +129,24 @@ def _covariates(value: str | None) -> tuple[str, ...]:
 @app.command("screen")
 @friendly
 def screen_cmd(
-    store: Annotated[
-        Path, typer.Argument(help="Dataset store (made by `widescreen import` or `simulate`).")
-    ],
-    outcome: Annotated[
-        Path, typer.Option("--outcome", help="Outcome table (TSV, first column sample id).")
-    ],
-    response: Annotated[
-        str, typer.Option("--response", help="Column of the response (survival: the time).")
-    ],
-    out: Annotated[
-        Path, typer.Option("--out", help="Run folder for the results (resumed if it exists).")
-    ],
-    family: Annotated[
-        str,
-        typer.Option(
-            "--family",
-            help="Outcome family: linear, logistic, poisson, cox, rank, rank-utility, dcor, spline, holp.",
-        ),
-    ] = "linear",
-    covariates: Annotated[
-        str | None, typer.Option("--covariates", help="Comma-separated columns to adjust for.")
-    ] = None,
-    event: Annotated[
-        str | None, typer.Option("--event", help="Survival: column of the event indicator.")
-    ] = None,
+    store: StoreArg,
+    outcome: OutcomeOpt,
+    response: ResponseOpt,
+    out: OutOpt,
+    family: FamilyOpt = "linear",
+    covariates: CovariatesOpt = None,
+    event: EventOpt = None,
     keep: Annotated[
         str, typer.Option("--keep", help="Shortlist size: N or 'auto' = floor(n / log n).")
     ] = "auto",
     list_top: Annotated[
         int | None, typer.Option("--list", help="Rows in ranking.tsv (default: the shortlist).")
     ] = None,
-    max_missing: Annotated[
-        float | None,
-        typer.Option(
-            "--max-missing", help="Exclude features missing in more than this share of samples."
-        ),
-    ] = None,
-    min_maf: Annotated[
-        float | None,
-        typer.Option(
-            "--min-maf",
-            help="Dosage stores: exclude features with minor allele frequency below this.",
-        ),
-    ] = None,
-    workers: Annotated[
-        int | None, typer.Option("--workers", help="Start a local cluster of N worker processes.")
-    ] = None,
-    scheduler: Annotated[
-        str | None, typer.Option("--scheduler", help="Address of an existing Dask scheduler.")
-    ] = None,
-    restart: Annotated[
-        bool, typer.Option("--restart", help="Discard what the run folder holds and start over.")
-    ] = False,
+    max_missing: MaxMissingOpt = None,
+    min_maf: MinMafOpt = None,
+    workers: WorkersOpt = None,
+    scheduler: SchedulerOpt = None,
+    restart: RestartOpt = False,
     memory_budget: MemoryOpt = None,
     report: ReportOpt = True,
     quiet: QuietOpt = False,

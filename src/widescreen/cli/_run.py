@@ -2,71 +2,46 @@
 
 from __future__ import annotations
 
-from pathlib import Path
 from typing import Annotated
 
 import typer
 
-from ._app import MemoryOpt, ReportOpt, _budget, _covariates, _parse_keep, _scheduler, app, friendly
+from ._app import _budget, _covariates, _parse_keep, _scheduler, app, friendly
+from ._options import (
+    CovariatesOpt,
+    EventOpt,
+    FamilyOpt,
+    MaxMissingOpt,
+    MemoryOpt,
+    MinMafOpt,
+    OutcomeOpt,
+    OutOpt,
+    QuietOpt,
+    ReportOpt,
+    ResponseOpt,
+    RestartOpt,
+    SchedulerOpt,
+    StoreArg,
+    WorkersOpt,
+)
 from ._progress import ProgressBar
 
 _MODEL = "Model and tuning"
 _THRESH = "Thresholds"
-_DATA = "Data and filters"
-_RUN = "Running"
 
 
 @app.command("run")
 @friendly
 def run_cmd(
-    store: Annotated[
-        Path, typer.Argument(help="Dataset store (made by `widescreen import` or `simulate`).")
-    ],
-    outcome: Annotated[
-        Path, typer.Option("--outcome", help="Outcome table (TSV, first column sample id).")
-    ],
-    response: Annotated[
-        str, typer.Option("--response", help="Column of the response (survival: the time).")
-    ],
-    out: Annotated[
-        Path, typer.Option("--out", help="Run folder for the results (resumed if it exists).")
-    ],
-    family: Annotated[
-        str,
-        typer.Option(
-            "--family",
-            help="Outcome family: linear, logistic, poisson, cox, rank, rank-utility, dcor, spline, holp.",
-            rich_help_panel=_DATA,
-        ),
-    ] = "linear",
-    covariates: Annotated[
-        str | None,
-        typer.Option(
-            "--covariates", help="Comma-separated columns to adjust for.", rich_help_panel=_DATA
-        ),
-    ] = None,
-    event: Annotated[
-        str | None,
-        typer.Option(
-            "--event", help="Survival: column of the event indicator.", rich_help_panel=_DATA
-        ),
-    ] = None,
-    max_missing: Annotated[
-        float | None,
-        typer.Option(
-            "--max-missing",
-            help="Exclude features missing in more than this share of samples.",
-            rich_help_panel=_DATA,
-        ),
-    ] = None,
-    min_maf: Annotated[
-        float | None,
-        typer.Option(
-            "--min-maf",
-            help="Dosage stores: exclude features with minor allele frequency below this.",
-            rich_help_panel=_DATA,
-        ),
-    ] = None,
+    store: StoreArg,
+    outcome: OutcomeOpt,
+    response: ResponseOpt,
+    out: OutOpt,
+    family: FamilyOpt = "linear",
+    covariates: CovariatesOpt = None,
+    event: EventOpt = None,
+    max_missing: MaxMissingOpt = None,
+    min_maf: MinMafOpt = None,
     penalty: Annotated[
         str,
         typer.Option(
@@ -135,35 +110,10 @@ def run_cmd(
             rich_help_panel=_THRESH,
         ),
     ] = 0.05,
-    workers: Annotated[
-        int | None,
-        typer.Option(
-            "--workers", help="Start a local cluster of N worker processes.", rich_help_panel=_RUN
-        ),
-    ] = None,
-    scheduler: Annotated[
-        str | None,
-        typer.Option(
-            "--scheduler", help="Address of an existing Dask scheduler.", rich_help_panel=_RUN
-        ),
-    ] = None,
-    restart: Annotated[
-        bool,
-        typer.Option(
-            "--restart",
-            help="Discard what the run folder holds and start over.",
-            rich_help_panel=_RUN,
-        ),
-    ] = False,
-    quiet: Annotated[
-        bool,
-        typer.Option(
-            "--quiet",
-            "-q",
-            help="No progress bar; only results and errors.",
-            rich_help_panel=_RUN,
-        ),
-    ] = False,
+    workers: WorkersOpt = None,
+    scheduler: SchedulerOpt = None,
+    restart: RestartOpt = False,
+    quiet: QuietOpt = False,
     memory_budget: MemoryOpt = None,
     report: ReportOpt = True,
 ) -> None:
