@@ -23,6 +23,7 @@ from __future__ import annotations
 import os
 import socket
 from collections.abc import Callable
+from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
@@ -168,14 +169,23 @@ class Executor:
                 self.client, graph, block_keys, final_key, progress, offset, total, want_blocks
             )
         keys = [final_key, *block_keys] if want_blocks else [final_key]
+        pool = None
         if self.kind == "sync":
             get, kwargs = dask.get, {}
         else:
-            get, kwargs = dask.threaded.get, {"num_workers": self.threads_per_worker}
+            # A pool of the pass's own, shut down before returning: when a block fails, the blocks
+            # still running finish (and write their markers) before the error reaches the caller,
+            # so nothing writes into the run folder after the pass has ended and released it.
+            pool = ThreadPoolExecutor(self.threads_per_worker)
+            get, kwargs = dask.threaded.get, {"num_workers": self.threads_per_worker, "pool": pool}
         callbacks = [_BlockProgress(block_keys, progress, offset, total)] if progress else []
-        with threadpool_limits(limits=1, user_api="blas"), dask.config.set(callbacks=set()):
-            with _Callbacks(callbacks):
-                out = get(graph, keys, **kwargs)
+        try:
+            with threadpool_limits(limits=1, user_api="blas"), dask.config.set(callbacks=set()):
+                with _Callbacks(callbacks):
+                    out = get(graph, keys, **kwargs)
+        finally:
+            if pool is not None:
+                pool.shutdown(wait=True, cancel_futures=True)
         return {"final": out[0], "blocks": list(out[1:])}
 
 
