@@ -51,7 +51,7 @@ def test_simulate_then_screen(tmp_path):
             f"{store}.outcome.tsv",
             "--response",
             "y",
-            "--keep",
+            "--shortlist",
             "10",
             "--out",
             str(tmp_path / "run"),
@@ -92,7 +92,18 @@ def test_errors_are_one_line_without_traceback(tmp_path):
 def test_bad_keep_is_refused(tmp_path):
     res = runner.invoke(
         app,
-        ["screen", "s.zarr", "--outcome", "o.tsv", "--response", "y", "--out", "r", "--keep", "-3"],
+        [
+            "screen",
+            "s.zarr",
+            "--outcome",
+            "o.tsv",
+            "--response",
+            "y",
+            "--out",
+            "r",
+            "--shortlist",
+            "-3",
+        ],
     )
     assert res.exit_code != 0
     assert "positive integer or 'auto'" in res.output

@@ -151,7 +151,7 @@ def test_other_inputs_start_the_pass_over(data, tmp_path):
     X, y, src = data
     run = RunFolder(tmp_path / "run")
     run_pass(src, _spec(y), run)
-    res = run_pass(src, _spec(y, filters=FeatureFilter(max_missing=0.01)), run)
+    res = run_pass(src, _spec(y, filters=FeatureFilter(drop_missing=0.01)), run)
     assert res.blocks_reused == 0 and res.blocks_computed == 16
     # with missing rate above 1% filtered out (2% missing on average), most features score 0
     miss = _imputed(X)[2]

@@ -13,29 +13,29 @@ from widescreen.workflow import ScreenConfig, screen
 
 from .conftest import write_outcome, write_store
 
-KIND = {"logistic": "binary", "poisson": "count", "cox": "survival"}
+SIMULATED = ("logistic", "poisson", "cox")  # the others screen a linear outcome
 
 
 @pytest.mark.parametrize("family", sorted(FAMILIES))
 def test_family_finds_strong_signals(tmp_path, family):
-    kind = KIND.get(family, "continuous")
+    model = family if family in SIMULATED else "linear"
     sim = simulate(
         tmp_path / "s.zarr",
         SimulationConfig(
             n_samples=200,
             n_features=900,
             n_true=3,
-            outcome=kind,
+            family=model,
             sigma=1.0,
             seed=11,
             chunk_features=256,
         ),
     )
     cfg = ScreenConfig(
-        response="time" if kind == "survival" else "y",
-        event="event" if kind == "survival" else None,
+        response="time" if model == "cox" else "y",
+        event="event" if model == "cox" else None,
         family=family,
-        keep=10,
+        shortlist=10,
     )
     res = screen(sim.dataset.path, sim.outcome_path, cfg, tmp_path / "run")
     ranking = read_tsv(tmp_path / "run" / "ranking.tsv")
@@ -57,7 +57,7 @@ def test_holp_gram_pass_equals_in_memory_projection(tmp_path, rng):
     screen(
         ds.path,
         table,
-        ScreenConfig(response="y", family="holp", keep=5, list_top=p),
+        ScreenConfig(response="y", family="holp", shortlist=5, list_top=p),
         tmp_path / "r",
     )
     rank = read_tsv(tmp_path / "r" / "ranking.tsv")
@@ -77,7 +77,10 @@ def test_binary_labels_are_mapped_and_reported(tmp_path):
     labels = ["case" if i % 3 == 0 else "control" for i in range(30)]
     ds, table = _joined_table(tmp_path, 30, {"status": labels})
     screen(
-        ds.path, table, ScreenConfig(response="status", family="logistic", keep=3), tmp_path / "r"
+        ds.path,
+        table,
+        ScreenConfig(response="status", family="logistic", shortlist=3),
+        tmp_path / "r",
     )
     import json
 

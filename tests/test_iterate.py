@@ -45,7 +45,7 @@ def test_isis_finds_the_marginally_hidden_feature_that_sis_misses(tmp_path):
         )
         sim = simulate(tmp_path / f"h{r}.zarr", cfg)
         problem = load_problem(sim.dataset.path, sim.outcome_path, response="y")
-        res = iterate(problem, IterateConfig(keep="auto", n_lambda=30, max_iter=5))
+        res = iterate(problem, IterateConfig(shortlist="auto", n_lambda=30, max_iter=5))
         x = sim.true_index  # x1..x5 in the design's order
         chosen = set(res.index.tolist())
         isis_ok += set(x[:4].tolist()) <= chosen
@@ -69,7 +69,7 @@ def study(tmp_path, rng):
     X = X.astype(np.float32)
     X[rng.random((n, p)) < 0.01] = np.nan
     X[:, 7] = np.nan
-    X[:5, 7] = 1.0  # a feature missing almost everywhere: filtered by --max-missing
+    X[:5, 7] = 1.0  # a feature missing almost everywhere: filtered by --drop-missing
     Xf = np.where(np.isnan(X), np.nanmean(X, axis=0), X).astype(np.float64)
     age = rng.uniform(20, 60, n)
     y = 3 * Xf[:, 3] + 3 * Xf[:, 100] - 6 * np.sqrt(0.5) * Xf[:, 40] + 0.05 * age
@@ -86,7 +86,7 @@ def study(tmp_path, rng):
 
 
 def _cfg(**kw):
-    base = dict(response="y", covariates=("age",), keep=20, n_lambda=40, max_missing=0.5)
+    base = dict(response="y", covariates=("age",), shortlist=20, n_lambda=40, drop_missing=0.5)
     return IterateConfig(**{**base, **kw})
 
 
@@ -212,7 +212,7 @@ def test_logistic_family_conditions_by_the_score_given_the_model(tmp_path, rng):
     ds = write_store(tmp_path / "g.zarr", X.astype(np.float64), chunk_features=40)
     table = write_outcome(tmp_path / "g.tsv", [f"s{i}" for i in range(n)], {"y": y.astype(int)})
     out = tmp_path / "g"
-    cfg = IterateConfig(response="y", family="logistic", keep=10, n_lambda=30, max_iter=1)
+    cfg = IterateConfig(response="y", family="logistic", shortlist=10, n_lambda=30, max_iter=1)
     res = run(ds.path, table, cfg, out)
     assert {2, 50} <= set(res.index.tolist())
     m0 = res.iterations[0]["model"]
@@ -240,7 +240,19 @@ def test_cli_run_writes_the_tables_and_refuses_bad_options(tmp_path, study):
     args = ["run", str(ds.path), "--outcome", str(table), "--response", "y", "--covariates", "age"]
     out = tmp_path / "c"
     res = runner.invoke(
-        app, [*args, "--out", str(out), "--keep", "15", "--threshold", "bh", "--alpha", "0.1", "-q"]
+        app,
+        [
+            *args,
+            "--out",
+            str(out),
+            "--shortlist",
+            "15",
+            "--threshold",
+            "bh",
+            "--alpha",
+            "0.1",
+            "-q",
+        ],
     )
     assert res.exit_code == 0, res.output
     assert "selected" in res.output and "model.tsv" in res.output
@@ -257,7 +269,7 @@ def test_cli_run_writes_the_tables_and_refuses_bad_options(tmp_path, study):
 
 
 def test_config_round_trips_and_validates():
-    cfg = IterateConfig(response="y", covariates=("age", "sex"), keep=12, split=True, seed=4)
+    cfg = IterateConfig(response="y", covariates=("age", "sex"), shortlist=12, split=True, seed=4)
     assert IterateConfig.from_dict(cfg.to_dict()) == cfg
     with pytest.raises(ValueError, match="'penalty' must be one of"):
         IterateConfig(penalty="ridge")

@@ -6,7 +6,7 @@ import numpy as np
 
 from widescreen.engine import RunFolder, read_stats
 from widescreen.simulate import SimulationConfig, simulate
-from widescreen.workflow import IterateConfig, keep_size, run
+from widescreen.workflow import IterateConfig, run, shortlist_size
 
 
 def test_conditional_pass_finds_the_hidden_feature_that_sis_misses(tmp_path):
@@ -19,7 +19,7 @@ def test_conditional_pass_finds_the_hidden_feature_that_sis_misses(tmp_path):
             tmp_path / f"h{seed}.zarr",
             SimulationConfig(
                 design="hidden",
-                outcome="binary",
+                family="logistic",
                 n_samples=300,
                 n_features=400,
                 seed=seed,
@@ -27,7 +27,7 @@ def test_conditional_pass_finds_the_hidden_feature_that_sis_misses(tmp_path):
             ),
         )
         x4 = int(sim.true_index[3])
-        d = keep_size("auto", 300)
+        d = shortlist_size("auto", 300)
         out = tmp_path / f"r{seed}"
         cfg = IterateConfig(response="y", family="logistic", n_lambda=30, max_iter=1)
         run(sim.dataset.path, sim.outcome_path, cfg, out)

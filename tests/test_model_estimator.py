@@ -91,6 +91,6 @@ def test_bad_parameters_are_refused_at_fit(data):
     with pytest.raises(ValueError, match="'criterion' must be one of"):
         IterativeScreeningModel(criterion="aic").fit(X, y)
     with pytest.raises(ValueError, match="positive integer or 'auto'"):
-        IterativeScreeningModel(keep=-3).fit(X, y)
+        IterativeScreeningModel(shortlist=-3).fit(X, y)
     with pytest.raises(ValueError, match="got n_samples = 3"):
         IterativeScreeningModel().fit(X[:3], y[:3])

@@ -51,7 +51,7 @@ def study_run(tmp_path_factory):
     w.finalize()
     y = 0.9 * X[:, 40] - 0.8 * X[:, 1200] + rng.normal(size=n)
     write_outcome(root / "o.tsv", ids, {"y": [repr(float(v)) for v in y]})
-    screen(root / "s.zarr", root / "o.tsv", ScreenConfig(response="y", keep=12), root / "run")
+    screen(root / "s.zarr", root / "o.tsv", ScreenConfig(response="y", shortlist=12), root / "run")
     return root / "run"
 
 

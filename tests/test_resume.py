@@ -176,11 +176,11 @@ def test_config_change_is_refused(study, tmp_path):
     _root, sim, ref = study
     out = tmp_path / "cfg"
     shutil.copytree(ref, out)
-    other = ScreenConfig(response="y", covariates=("age",), max_missing=0.1)
+    other = ScreenConfig(response="y", covariates=("age",), drop_missing=0.1)
     with pytest.raises(RunFolderError) as err:
         screen(sim.dataset.path, sim.outcome_path, other, out)
     msg = str(err.value)
-    assert "max_missing: None -> 0.1" in msg
+    assert "drop_missing: None -> 0.1" in msg
     assert "covariates: ['age', 'batch'] -> ['age']" in msg
     assert "--restart" in msg
     # the refused run changed nothing

@@ -14,13 +14,13 @@ from .conftest import write_store
 
 def test_passes_check_estimator():
     # scikit-learn's own estimator contract checks.
-    check_estimator(ScreeningSelector(keep=2))
+    check_estimator(ScreeningSelector(shortlist=2))
 
 
 def test_scores_equal_sklearn_r_regression(rng):
     X = rng.normal(size=(60, 300))
     y = X[:, 5] - X[:, 9] + rng.normal(size=60)
-    sel = ScreeningSelector(keep=4).fit(X, y)
+    sel = ScreeningSelector(shortlist=4).fit(X, y)
     # Reference: sklearn.feature_selection.r_regression (Pearson r per feature).
     np.testing.assert_allclose(
         sel.statistics_["correlation"], r_regression(X, y), rtol=1e-10, atol=1e-13
@@ -33,10 +33,10 @@ def test_scores_equal_sklearn_r_regression(rng):
 def test_dask_and_store_inputs_agree_with_numpy(tmp_path, rng):
     X = rng.normal(size=(50, 700)).astype(np.float32)
     y = X[:, 600] + rng.normal(size=50)
-    ref = ScreeningSelector(keep=6).fit(X, y)
-    dsk = ScreeningSelector(keep=6).fit(da.from_array(X, chunks=(50, 128)), y)
+    ref = ScreeningSelector(shortlist=6).fit(X, y)
+    dsk = ScreeningSelector(shortlist=6).fit(da.from_array(X, chunks=(50, 128)), y)
     ds = write_store(tmp_path / "x.zarr", X, chunk_features=256)
-    sto = ScreeningSelector(keep=6).fit(str(ds.path), y)
+    sto = ScreeningSelector(shortlist=6).fit(str(ds.path), y)
     for other in (dsk, sto):
         np.testing.assert_allclose(other.scores_, ref.scores_, rtol=1e-12)
         np.testing.assert_array_equal(other.ranking_, ref.ranking_)

@@ -42,7 +42,7 @@ def test_hidden_binary_version_cancels(tmp_path):
     # because 3 * 4 * sqrt(0.5) - 6 sqrt(2) = 0.
     sim = simulate(
         tmp_path / "b.zarr",
-        SimulationConfig(design="hidden", outcome="binary", n_samples=50, n_features=10),
+        SimulationConfig(design="hidden", family="logistic", n_samples=50, n_features=10),
     )
     np.testing.assert_allclose(sim.true_coef, [4, 4, 4, -6 * np.sqrt(2)])
     assert 3 * 4 * np.sqrt(0.5) + sim.true_coef[3] == pytest.approx(0.0, abs=1e-12)
@@ -59,15 +59,15 @@ def test_independent_design_coefficients(tmp_path):
     assert sim.true_index.size == 8
 
 
-@pytest.mark.parametrize("kind", ["binary", "count", "survival"])
-def test_outcome_kinds(tmp_path, kind):
+@pytest.mark.parametrize("family", ["logistic", "poisson", "cox"])
+def test_outcome_families(tmp_path, family):
     sim = simulate(
-        tmp_path / "k.zarr", SimulationConfig(n_samples=100, n_features=50, n_true=3, outcome=kind)
+        tmp_path / "k.zarr", SimulationConfig(n_samples=100, n_features=50, n_true=3, family=family)
     )
     _, t = _load(sim)
-    if kind == "binary":
+    if family == "logistic":
         assert set(t["y"]) <= {"0", "1"}
-    elif kind == "count":
+    elif family == "poisson":
         assert (t["y"].astype(float) >= 0).all()
     else:
         assert (t["time"].astype(float) > 0).all() and set(t["event"]) <= {"0", "1"}

@@ -140,7 +140,7 @@ def test_permutation_threshold_on_null_data_keeps_nothing_at_rate_alpha():
         res = _run(
             X,
             y,
-            keep=10,
+            shortlist=10,
             max_iter=0,
             threshold="permutation",
             alpha=alpha,
@@ -165,7 +165,7 @@ def test_permutation_threshold_in_the_conditional_pass():
         res = _run(
             X,
             y,
-            keep=10,
+            shortlist=10,
             max_iter=1,
             threshold="permutation",
             alpha=alpha,
@@ -196,7 +196,7 @@ def test_bh_and_bonferroni_thresholds_cut_the_screen(rng):
     )
     p = run_pass(src, spec).stats["p_value"]
     for kind, method in [("bh", "fdr_bh"), ("bonferroni", "bonferroni")]:
-        res = _run(X, y, keep=30, max_iter=0, threshold=kind, alpha=0.05)
+        res = _run(X, y, shortlist=30, max_iter=0, threshold=kind, alpha=0.05)
         # Reference: statsmodels multipletests on every feature's marginal p-value, within the budget.
         ref = np.flatnonzero(multipletests(p, alpha=0.05, method=method)[0])
         top30 = np.argsort(p, kind="stable")[:30]

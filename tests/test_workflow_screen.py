@@ -11,18 +11,18 @@ import statsmodels.api as sm
 
 from widescreen.report import read_tsv
 from widescreen.store import OutcomeError
-from widescreen.workflow import ScreenConfig, keep_size, screen
+from widescreen.workflow import ScreenConfig, screen, shortlist_size
 
 from .conftest import write_outcome, write_store
 
 
-def test_keep_auto_matches_published_default():
+def test_shortlist_auto_matches_published_default():
     # d = floor(n / log n) (Fan & Lv 2008, from memory); 37 for n = 200 and 119 for n = 800 [derived, CHECKS.md]
-    assert keep_size("auto", 200) == 37
-    assert keep_size("auto", 800) == 119
-    assert keep_size(10, 200, n_features=5) == 5
+    assert shortlist_size("auto", 200) == 37
+    assert shortlist_size("auto", 800) == 119
+    assert shortlist_size(10, 200, n_features=5) == 5
     with pytest.raises(ValueError, match="positive integer or 'auto'"):
-        keep_size(-3, 200)
+        shortlist_size(-3, 200)
 
 
 @pytest.fixture
@@ -51,7 +51,9 @@ def study(tmp_path, rng):
 
 def test_screen_matches_scipy_pearson(tmp_path, study):
     ds, table, Xf, y, _ = study
-    res = screen(ds.path, table, ScreenConfig(response="y", keep=10, list_top=50), tmp_path / "run")
+    res = screen(
+        ds.path, table, ScreenConfig(response="y", shortlist=10, list_top=50), tmp_path / "run"
+    )
     rank = read_tsv(tmp_path / "run" / "ranking.tsv")
     idx = rank["index"].astype(int)
     # Reference: scipy.stats.pearsonr on the mean-imputed matrix of the joined samples.
@@ -79,7 +81,7 @@ def test_screen_with_covariates_matches_statsmodels_ols(tmp_path, study):
     screen(
         ds.path,
         table,
-        ScreenConfig(response="y", covariates=("age",), keep=5, list_top=20),
+        ScreenConfig(response="y", covariates=("age",), shortlist=5, list_top=20),
         tmp_path / "r",
     )
     rank = read_tsv(tmp_path / "r" / "ranking.tsv")
@@ -91,7 +93,7 @@ def test_screen_with_covariates_matches_statsmodels_ols(tmp_path, study):
 
 def test_constant_feature_scores_zero_not_nan(tmp_path, study):
     ds, table, *_ = study
-    res = screen(ds.path, table, ScreenConfig(response="y", keep=5), tmp_path / "r")
+    res = screen(ds.path, table, ScreenConfig(response="y", shortlist=5), tmp_path / "r")
     from widescreen.engine import read_stats
 
     stats = read_stats(res.run, "screen")
@@ -123,12 +125,12 @@ def test_rerun_resumes_and_refuses_other_config(tmp_path, study):
     from widescreen.engine import RunFolderError
 
     ds, table, *_ = study
-    cfg = ScreenConfig(response="y", keep=5)
+    cfg = ScreenConfig(response="y", shortlist=5)
     first = screen(ds.path, table, cfg, tmp_path / "r")
     text = (tmp_path / "r" / "ranking.tsv").read_text()
     again = screen(ds.path, table, cfg, tmp_path / "r")
     assert again.pass_result.blocks_reused == first.pass_result.blocks_computed
     assert (tmp_path / "r" / "ranking.tsv").read_text() == text
-    with pytest.raises(RunFolderError, match=r"keep: 5 -> 6"):
-        screen(ds.path, table, ScreenConfig(response="y", keep=6), tmp_path / "r")
-    screen(ds.path, table, ScreenConfig(response="y", keep=6), tmp_path / "r", restart=True)
+    with pytest.raises(RunFolderError, match=r"shortlist: 5 -> 6"):
+        screen(ds.path, table, ScreenConfig(response="y", shortlist=6), tmp_path / "r")
+    screen(ds.path, table, ScreenConfig(response="y", shortlist=6), tmp_path / "r", restart=True)

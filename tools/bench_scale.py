@@ -88,7 +88,7 @@ import json, sys, time
 from widescreen.workflow import ScreenConfig, screen
 store, outcome, out = sys.argv[1:4]
 t0 = time.perf_counter()
-res = screen(store, outcome, ScreenConfig(response="y", keep=100), out)
+res = screen(store, outcome, ScreenConfig(response="y", shortlist=100), out)
 t1 = time.perf_counter()
 print(json.dumps({"seconds": t1 - t0, "summary": res.pass_result.summary(), "rss0": RSS0,
                   "maxrss": resource.getrusage(resource.RUSAGE_SELF).ru_maxrss * 1024}))

@@ -166,7 +166,7 @@ def measure_pass(workdir: Path, kind: str, threads: int, sub_block: int, keep_va
     from widescreen.families import get_family
     from widescreen.families._base import Response
     from widescreen.store import open_dataset
-    from widescreen.workflow._problem import keep_size
+    from widescreen.workflow._problem import shortlist_size
 
     ds = open_dataset(workdir / f"{kind}.store")
     source = StoreSource(ds)
@@ -181,7 +181,7 @@ def measure_pass(workdir: Path, kind: str, threads: int, sub_block: int, keep_va
         kernel=fam.kernel,
         state=fam.prepare(Response(y=y), None),
         columns=fam.columns,
-        keep=keep_size("auto", ds.n_samples, ds.n_features),
+        keep=shortlist_size("auto", ds.n_samples, ds.n_features),
         sub_block=sub_block,
         keep_values=keep_values,
     )

@@ -58,7 +58,7 @@ def one_replicate(workdir: Path, design: str, seed: int, n: int, p: int) -> dict
     out = {}
     for name, kw in METHODS.items():
         t0 = time.perf_counter()
-        res = iterate(problem, IterateConfig(keep="auto", criterion="ebic", seed=seed, **kw))
+        res = iterate(problem, IterateConfig(shortlist="auto", criterion="ebic", seed=seed, **kw))
         est = np.zeros(p)
         est[res.index] = res.coef
         out[name] = {

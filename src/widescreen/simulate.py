@@ -17,8 +17,9 @@ Designs (see the project's CHECKS notes; Fan & Lv 2008 and Fan, Samworth & Wu 20
     genotype-like int8 dosages 0/1/2 (allele frequency uniform on [0.05, 0.5]) with a few missing calls;
     s causal features with effects of random sign, two covariates (age, batch) that shift the outcome.
 
-Outcome kinds: ``continuous`` (y = eta + sigma eps), ``binary`` (logistic), ``count`` (Poisson, log link)
-and ``survival`` (exponential times with rate exp(eta), independent exponential censoring).
+Outcome families (the names of ``--family``): ``linear`` (y = eta + sigma eps), ``logistic`` (a binary
+outcome), ``poisson`` (counts, log link) and ``cox`` (exponential survival times with rate exp(eta),
+independent exponential censoring).
 
 True features sit at random positions among the p features (seeded), so no method can profit from
 their order; the truth table says where they are and which role they play.
@@ -35,7 +36,7 @@ import numpy as np
 from .store._format import MISSING_INT8, Dataset, DatasetWriter
 
 DESIGNS = ("independent", "equicorrelated", "hidden", "dosage")
-OUTCOMES = ("continuous", "binary", "count", "survival")
+FAMILIES = ("linear", "logistic", "poisson", "cox")
 
 
 @dataclass(frozen=True)
@@ -47,12 +48,13 @@ class SimulationConfig:
     design : {"independent", "equicorrelated", "hidden", "dosage"}
     n_samples, n_features : int
     n_true : int
-        Number of true features (fixed at 5 for ``hidden``: x1..x5, or 4 for a binary outcome).
+        Number of true features (fixed at 5 for ``hidden``: x1..x5, or 4 for ``logistic``).
     rho : float
         Pairwise correlation for ``equicorrelated`` and ``hidden``.
     sigma : float
-        Noise standard deviation of a continuous outcome.
-    outcome : {"continuous", "binary", "count", "survival"}
+        Noise standard deviation of a ``linear`` outcome.
+    family : {"linear", "logistic", "poisson", "cox"}
+        The outcome's model.
     seed : int
     chunk_features : int, optional
         Features per chunk of X (default from the store's rule).
@@ -64,15 +66,15 @@ class SimulationConfig:
     n_true: int = 8
     rho: float = 0.5
     sigma: float = 1.5
-    outcome: str = "continuous"
+    family: str = "linear"
     seed: int = 0
     chunk_features: int | None = None
 
     def __post_init__(self) -> None:
         if self.design not in DESIGNS:
             raise ValueError(f"design must be one of {DESIGNS}; got {self.design!r}")
-        if self.outcome not in OUTCOMES:
-            raise ValueError(f"outcome must be one of {OUTCOMES}; got {self.outcome!r}")
+        if self.family not in FAMILIES:
+            raise ValueError(f"family must be one of {FAMILIES}; got {self.family!r}")
         if self.n_samples < 4 or self.n_features < 1:
             raise ValueError("need at least 4 samples and 1 feature")
         if not 0.0 <= self.rho < 1.0:
@@ -104,7 +106,7 @@ def _coefficients(
     n, s = cfg.n_samples, cfg.n_true
     if cfg.design == "hidden":
         r = np.sqrt(cfg.rho)
-        if cfg.outcome == "binary":
+        if cfg.family == "logistic":
             # GLM version: 3 * 4 * sqrt(rho) - 6 sqrt(2) * ... = 0 at rho = 0.5 (Fan, Samworth & Wu 2009).
             return np.array([4.0, 4.0, 4.0, -12.0 * r]), ("joint", "joint", "joint", "hidden")
         return np.array([5.0, 5.0, 5.0, -15.0 * r, 1.0]), (
@@ -120,9 +122,9 @@ def _coefficients(
     a = 4.0 * np.log(n) / np.sqrt(n)
     u = rng.random(s) < 0.4
     beta = np.where(u, -1.0, 1.0) * (a + np.abs(rng.standard_normal(s)))
-    if cfg.outcome != "continuous":
+    if cfg.family != "linear":
         # Keep GLM linear predictors in a sane range: |beta| <= 2 on the logit scale, <= 1 on log scales.
-        top = 2.0 if cfg.outcome == "binary" else 1.0
+        top = 2.0 if cfg.family == "logistic" else 1.0
         beta = top * beta / max(np.abs(beta).max(), 1e-12)
     return beta, ("true",) * s
 
@@ -246,12 +248,12 @@ def _outcome(
     cfg: SimulationConfig, eta: np.ndarray, rng: np.random.Generator
 ) -> dict[str, np.ndarray]:
     n = eta.size
-    if cfg.outcome == "continuous":
+    if cfg.family == "linear":
         sigma = 1.0 if cfg.design == "hidden" else cfg.sigma
         return {"y": eta + sigma * rng.standard_normal(n)}
-    if cfg.outcome == "binary":
+    if cfg.family == "logistic":
         return {"y": (rng.random(n) < 1.0 / (1.0 + np.exp(-eta))).astype(float)}
-    if cfg.outcome == "count":
+    if cfg.family == "poisson":
         return {"y": rng.poisson(np.exp(np.clip(eta, -10, 5))).astype(float)}
     t = rng.exponential(1.0 / np.exp(np.clip(eta, -10, 10)))
     c = rng.exponential(np.median(t) * 2.0, size=n)

@@ -26,7 +26,7 @@ class IterativeScreeningModel(SelectorMixin, RegressorMixin, BaseEstimator):
     ----------
     family : str, default="linear"
         Outcome family (see `widescreen.families.FAMILIES`).
-    keep : int or "auto", default="auto"
+    shortlist : int or "auto", default="auto"
         Size budget d of the selected set; "auto" = floor(n / log n).
     penalty : str, default="scad"
         "scad", "mcp", "lasso", "enet", "adaptive_lasso" or "dantzig".
@@ -83,7 +83,7 @@ class IterativeScreeningModel(SelectorMixin, RegressorMixin, BaseEstimator):
     def __init__(
         self,
         family="linear",
-        keep="auto",
+        shortlist="auto",
         penalty="scad",
         criterion="ebic",
         max_iter=5,
@@ -98,7 +98,7 @@ class IterativeScreeningModel(SelectorMixin, RegressorMixin, BaseEstimator):
         scheduler=None,
     ):
         self.family = family
-        self.keep = keep
+        self.shortlist = shortlist
         self.penalty = penalty
         self.criterion = criterion
         self.max_iter = max_iter
@@ -115,7 +115,7 @@ class IterativeScreeningModel(SelectorMixin, RegressorMixin, BaseEstimator):
     def _config(self) -> IterateConfig:
         return IterateConfig(
             family=self.family,
-            keep=self.keep,
+            shortlist=self.shortlist,
             penalty=self.penalty,
             criterion=self.criterion,
             ebic_gamma=self.ebic_gamma,

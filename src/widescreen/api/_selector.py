@@ -12,7 +12,7 @@ from sklearn.utils.validation import check_is_fitted, validate_data
 from ..engine._pass import PassSpec, run_pass
 from ..engine._source import ArraySource, BlockSource, as_source
 from ..families import get_family
-from ..workflow._problem import keep_size, problem_from_arrays
+from ..workflow._problem import problem_from_arrays, shortlist_size
 
 
 def _is_out_of_core(X) -> bool:
@@ -30,7 +30,7 @@ class ScreeningSelector(SelectorMixin, BaseEstimator):
     ----------
     family : str, default="linear"
         Outcome family (see `widescreen.families.FAMILIES`).
-    keep : int or "auto", default="auto"
+    shortlist : int or "auto", default="auto"
         Number of features kept; "auto" = floor(n / log n) (Fan & Lv 2008).
     scheduler : optional
         Where passes over out-of-core inputs run (see `widescreen.engine.execute`); threads by default.
@@ -54,13 +54,15 @@ class ScreeningSelector(SelectorMixin, BaseEstimator):
     >>> from widescreen.api import ScreeningSelector
     >>> rng = np.random.default_rng(0)
     >>> X = rng.normal(size=(100, 500)); y = 3 * X[:, 7] + rng.normal(size=100)
-    >>> ScreeningSelector(keep=5).fit(X, y).ranking_[0]
+    >>> ScreeningSelector(shortlist=5).fit(X, y).ranking_[0]
     np.int64(7)
     """
 
-    def __init__(self, family: str = "linear", keep: int | str = "auto", scheduler=None) -> None:
+    def __init__(
+        self, family: str = "linear", shortlist: int | str = "auto", scheduler=None
+    ) -> None:
         self.family = family
-        self.keep = keep
+        self.shortlist = shortlist
         self.scheduler = scheduler
 
     def fit(self, X, y):
@@ -93,7 +95,7 @@ class ScreeningSelector(SelectorMixin, BaseEstimator):
             raise ValueError(
                 f"need at least 4 samples to screen; got n_samples = {source.n_samples}"
             )
-        k = keep_size(self.keep, source.n_samples, source.n_features)
+        k = shortlist_size(self.shortlist, source.n_samples, source.n_features)
         problem = problem_from_arrays(source, y, fam)
         state = fam.prepare(problem.response, None)
         spec = PassSpec(

@@ -12,11 +12,11 @@ import typer
 
 from ._options import (
     CovariatesOpt,
+    DropMissingOpt,
+    DropRareOpt,
     EventOpt,
     FamilyOpt,
-    MaxMissingOpt,
     MemoryOpt,
-    MinMafOpt,
     OutcomeOpt,
     OutOpt,
     QuietOpt,
@@ -104,7 +104,7 @@ def _budget(value: str | None) -> int | None:
         raise typer.BadParameter(f"--memory-budget: {exc}") from None
 
 
-def _parse_keep(value: str) -> int | str:
+def _parse_shortlist(value: str) -> int | str:
     if value == "auto":
         return value
     try:
@@ -136,14 +136,14 @@ def screen_cmd(
     family: FamilyOpt = "linear",
     covariates: CovariatesOpt = None,
     event: EventOpt = None,
-    keep: Annotated[
-        str, typer.Option("--keep", help="Shortlist size: N or 'auto' = floor(n / log n).")
+    shortlist: Annotated[
+        str, typer.Option("--shortlist", help="Shortlist size: N or 'auto' = floor(n / log n).")
     ] = "auto",
     list_top: Annotated[
         int | None, typer.Option("--list", help="Rows in ranking.tsv (default: the shortlist).")
     ] = None,
-    max_missing: MaxMissingOpt = None,
-    min_maf: MinMafOpt = None,
+    drop_missing: DropMissingOpt = None,
+    drop_rare: DropRareOpt = None,
     workers: WorkersOpt = None,
     scheduler: SchedulerOpt = None,
     restart: RestartOpt = False,
@@ -159,10 +159,10 @@ def screen_cmd(
         family=family,
         covariates=_covariates(covariates),
         event=event,
-        keep=_parse_keep(keep),
+        shortlist=_parse_shortlist(shortlist),
         list_top=list_top,
-        max_missing=max_missing,
-        min_maf=min_maf,
+        drop_missing=drop_missing,
+        drop_rare=drop_rare,
     )
     result = screen(
         store,
@@ -216,9 +216,14 @@ def simulate_cmd(
     sigma: Annotated[
         float, typer.Option("--sigma", help="Noise sd of a continuous outcome.")
     ] = 1.5,
-    outcome_kind: Annotated[
-        str, typer.Option("--outcome-kind", help="continuous, binary, count or survival.")
-    ] = "continuous",
+    family: Annotated[
+        str,
+        typer.Option(
+            "--family",
+            help="Model of the outcome: linear (continuous y), logistic (binary y), poisson (counts) "
+            "or cox (survival time and event).",
+        ),
+    ] = "linear",
     seed: Annotated[int, typer.Option("--seed", help="Random seed.")] = 0,
     chunk_features: Annotated[
         int | None, typer.Option("--chunk-features", help="Features per chunk of X.")
@@ -238,7 +243,7 @@ def simulate_cmd(
         n_true=true,
         rho=rho,
         sigma=sigma,
-        outcome=outcome_kind,
+        family=family,
         seed=seed,
         chunk_features=chunk_features,
     )

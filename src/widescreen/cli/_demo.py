@@ -30,7 +30,11 @@ def run_demo(out: Path, *, samples: int, features: int, seed: int, quiet: bool) 
     )
     sim = simulate(store, cfg, overwrite=True, progress=ProgressBar("simulate", quiet))
     config = IterateConfig(
-        response="y", covariates=("age", "batch"), keep="auto", min_maf=0.01, max_missing=0.05
+        response="y",
+        covariates=("age", "batch"),
+        shortlist="auto",
+        drop_rare=0.01,
+        drop_missing=0.05,
     )
     result = run(
         store,

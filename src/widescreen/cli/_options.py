@@ -40,18 +40,18 @@ EventOpt = Annotated[
     str | None,
     typer.Option("--event", help="Survival: column of the event indicator.", rich_help_panel=DATA),
 ]
-MaxMissingOpt = Annotated[
+DropMissingOpt = Annotated[
     float | None,
     typer.Option(
-        "--max-missing",
+        "--drop-missing",
         help="Exclude features missing in more than this share of samples.",
         rich_help_panel=DATA,
     ),
 ]
-MinMafOpt = Annotated[
+DropRareOpt = Annotated[
     float | None,
     typer.Option(
-        "--min-maf",
+        "--drop-rare",
         help="Dosage stores: exclude features with minor allele frequency below this.",
         rich_help_panel=DATA,
     ),

@@ -6,14 +6,14 @@ from typing import Annotated
 
 import typer
 
-from ._app import _budget, _covariates, _parse_keep, _scheduler, app, friendly
+from ._app import _budget, _covariates, _parse_shortlist, _scheduler, app, friendly
 from ._options import (
     CovariatesOpt,
+    DropMissingOpt,
+    DropRareOpt,
     EventOpt,
     FamilyOpt,
-    MaxMissingOpt,
     MemoryOpt,
-    MinMafOpt,
     OutcomeOpt,
     OutOpt,
     QuietOpt,
@@ -40,8 +40,8 @@ def run_cmd(
     family: FamilyOpt = "linear",
     covariates: CovariatesOpt = None,
     event: EventOpt = None,
-    max_missing: MaxMissingOpt = None,
-    min_maf: MinMafOpt = None,
+    drop_missing: DropMissingOpt = None,
+    drop_rare: DropRareOpt = None,
     penalty: Annotated[
         str,
         typer.Option(
@@ -56,10 +56,10 @@ def run_cmd(
             "--criterion", help="Tuning of the refit: ebic, bic or cv.", rich_help_panel=_MODEL
         ),
     ] = "ebic",
-    keep: Annotated[
+    shortlist: Annotated[
         str,
         typer.Option(
-            "--keep",
+            "--shortlist",
             help="Size budget d of the selected set: N or 'auto' = floor(n / log n).",
             rich_help_panel=_MODEL,
         ),
@@ -132,7 +132,7 @@ def run_cmd(
         family=family,
         covariates=_covariates(covariates),
         event=event,
-        keep=_parse_keep(keep),
+        shortlist=_parse_shortlist(shortlist),
         penalty=penalty,
         criterion=criterion,
         max_iter=max_iter,
@@ -141,8 +141,8 @@ def run_cmd(
         n_permutations=permutations,
         split=split,
         seed=seed,
-        max_missing=max_missing,
-        min_maf=min_maf,
+        drop_missing=drop_missing,
+        drop_rare=drop_rare,
     )
     result = run(
         store,

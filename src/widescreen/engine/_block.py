@@ -33,11 +33,11 @@ def _filter_mask(
 ) -> np.ndarray:
     mask = np.zeros(missing_rate.shape, dtype=bool)
     f = spec.filters
-    if f.max_missing is not None:
-        mask |= missing_rate > f.max_missing
-    if f.min_maf is not None and dosage:
+    if f.drop_missing is not None:
+        mask |= missing_rate > f.drop_missing
+    if f.drop_rare is not None and dosage:
         af = mean / 2.0
-        mask |= np.minimum(af, 1.0 - af) < f.min_maf
+        mask |= np.minimum(af, 1.0 - af) < f.drop_rare
     return mask
 
 

@@ -22,17 +22,17 @@ class FeatureFilter:
 
     Attributes
     ----------
-    max_missing : float, optional
+    drop_missing : float, optional
         Exclude features whose missing rate exceeds this.
-    min_maf : float, optional
+    drop_rare : float, optional
         Dosage stores only: exclude features whose minor allele frequency is below this.
     """
 
-    max_missing: float | None = None
-    min_maf: float | None = None
+    drop_missing: float | None = None
+    drop_rare: float | None = None
 
     def to_dict(self) -> dict:
-        return {"max_missing": self.max_missing, "min_maf": self.min_maf}
+        return {"drop_missing": self.drop_missing, "drop_rare": self.drop_rare}
 
 
 @dataclass(frozen=True)

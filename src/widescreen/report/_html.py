@@ -103,11 +103,11 @@ def _job(summary) -> str:
     shape = ds.get("shape")
     covs = cfg.get("covariates") or []
     filters = [
-        f"missing rate > {cfg['max_missing']:g} excluded"
-        if cfg.get("max_missing") is not None
+        f"missing rate > {cfg['drop_missing']:g} excluded"
+        if cfg.get("drop_missing") is not None
         else None,
-        f"minor allele frequency < {cfg['min_maf']:g} excluded"
-        if cfg.get("min_maf") is not None
+        f"minor allele frequency < {cfg['drop_rare']:g} excluded"
+        if cfg.get("drop_rare") is not None
         else None,
     ]
     sessions = m.get("sessions") or [{}]

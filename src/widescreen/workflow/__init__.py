@@ -7,7 +7,7 @@ from ..store._outcome import (
     join_outcome,
     read_outcome_table,
 )
-from ._problem import Problem, keep_size, load_problem, problem_from_arrays
+from ._problem import Problem, load_problem, problem_from_arrays, shortlist_size
 from ._screen import ScreenConfig, ScreenResult, screen
 from ._session import RunSession, open_session
 
@@ -20,12 +20,12 @@ __all__ = [
     "ScreenConfig",
     "ScreenResult",
     "join_outcome",
-    "keep_size",
     "load_problem",
     "open_session",
     "problem_from_arrays",
     "read_outcome_table",
     "screen",
+    "shortlist_size",
 ]
 
 from ._iterate import IterateConfig, IterativeResult, iterate

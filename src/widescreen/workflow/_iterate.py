@@ -24,7 +24,7 @@ from ..engine import FeatureFilter, PassResult, RunFolder
 from ..fit import make_penalty
 from ..store._reader import prepare_block
 from ._candidates import Candidates, ConditioningError, StepContext, screen_step, stats_at
-from ._problem import Problem, keep_size
+from ._problem import Problem, shortlist_size
 from ._refit import FitSettings, FittedModel, fit_token, fit_union
 from ._session import RunSession
 from ._split import read_raw_columns, split_halves
@@ -44,7 +44,7 @@ class IterateConfig:
     family : str
     covariates : tuple of str
     event : str, optional
-    keep : int or "auto"
+    shortlist : int or "auto"
         The size budget d; "auto" = floor(n / log n).
     penalty : str
         "scad", "mcp", "lasso", "enet", "adaptive_lasso" or "dantzig".
@@ -61,7 +61,7 @@ class IterateConfig:
         Screen two random halves and keep the intersection of their top lists.
     seed : int
         Seeds the halves, the permutations and the cross-validation folds.
-    max_missing, min_maf : float, optional
+    drop_missing, drop_rare : float, optional
     sub_block : int
     """
 
@@ -69,7 +69,7 @@ class IterateConfig:
     family: str = "linear"
     covariates: tuple[str, ...] = ()
     event: str | None = None
-    keep: int | str = "auto"
+    shortlist: int | str = "auto"
     penalty: str = "scad"
     criterion: str = "ebic"
     ebic_gamma: float | None = None
@@ -81,8 +81,8 @@ class IterateConfig:
     n_permutations: int = 100
     split: bool = False
     seed: int = 0
-    max_missing: float | None = None
-    min_maf: float | None = None
+    drop_missing: float | None = None
+    drop_rare: float | None = None
     sub_block: int = 1024
 
     def __post_init__(self) -> None:
@@ -93,8 +93,10 @@ class IterateConfig:
             v = getattr(self, name)
             if isinstance(v, bool) or not isinstance(v, int | np.integer) or v < 0:
                 raise ValueError(f"The '{name}' must be a non-negative integer; got {v!r}.")
-        if isinstance(self.keep, str) and self.keep != "auto":
-            raise ValueError(f"The 'keep' must be a positive integer or 'auto'; got {self.keep!r}.")
+        if isinstance(self.shortlist, str) and self.shortlist != "auto":
+            raise ValueError(
+                f"The 'shortlist' must be a positive integer or 'auto'; got {self.shortlist!r}."
+            )
         _ = self.rule  # validates threshold, alpha and n_permutations
 
     @property
@@ -109,7 +111,7 @@ class IterateConfig:
 
     @property
     def filters(self) -> FeatureFilter:
-        return FeatureFilter(max_missing=self.max_missing, min_maf=self.min_maf)
+        return FeatureFilter(drop_missing=self.drop_missing, drop_rare=self.drop_rare)
 
     def to_dict(self) -> dict:
         d = asdict(self)
@@ -224,7 +226,7 @@ def iterate(
     progress : callable(pass name) -> callable(done, total), optional
     """
     n, p = problem.n, problem.source.n_features
-    d = keep_size(config.keep, n, p)
+    d = shortlist_size(config.shortlist, n, p)
     run = session.run if session is not None else None
     halves = split_halves(n, config.seed) if config.split else None
     ctx = StepContext(

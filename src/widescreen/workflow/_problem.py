@@ -13,21 +13,23 @@ from ..families import Family, Response, get_family
 from ..store._outcome import JoinedOutcome, OutcomeError, join_outcome, read_outcome_table
 
 
-def keep_size(keep: int | str, n: int, n_features: int | None = None) -> int:
+def shortlist_size(shortlist: int | str, n: int, n_features: int | None = None) -> int:
     """Shortlist size: an int, or ``"auto"`` = floor(n / log n) (Fan & Lv 2008), capped at the features."""
-    if isinstance(keep, str):
-        if keep != "auto":
+    if isinstance(shortlist, str):
+        if shortlist != "auto":
             try:
-                keep = int(keep)
+                shortlist = int(shortlist)
             except ValueError:
                 raise ValueError(
-                    f"keep must be a positive integer or 'auto'; got {keep!r}"
+                    f"The 'shortlist' must be a positive integer or 'auto'; got {shortlist!r}."
                 ) from None
         else:
-            keep = max(1, math.floor(n / math.log(n))) if n > 2 else 1
-    if isinstance(keep, bool) or not isinstance(keep, int | np.integer) or keep < 1:
-        raise ValueError(f"keep must be a positive integer or 'auto'; got {keep!r}")
-    return int(min(keep, n_features)) if n_features else int(keep)
+            shortlist = max(1, math.floor(n / math.log(n))) if n > 2 else 1
+    if isinstance(shortlist, bool) or not isinstance(shortlist, int | np.integer) or shortlist < 1:
+        raise ValueError(
+            f"The 'shortlist' must be a positive integer or 'auto'; got {shortlist!r}."
+        )
+    return int(min(shortlist, n_features)) if n_features else int(shortlist)
 
 
 @dataclass(frozen=True)

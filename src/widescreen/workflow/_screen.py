@@ -11,7 +11,7 @@ import numpy as np
 from ..engine._pass import FeatureFilter, PassResult, PassSpec, read_stats, run_pass
 from ..engine._runfolder import RunFolder
 from ..report._tables import tsv
-from ._problem import Problem, keep_size, load_problem
+from ._problem import Problem, load_problem, shortlist_size
 from ._session import open_session
 
 
@@ -28,11 +28,11 @@ class ScreenConfig:
         Outcome-table columns adjusted for.
     event : str, optional
         Survival: the event indicator column.
-    keep : int or "auto"
+    shortlist : int or "auto"
         Shortlist size; "auto" = floor(n / log n).
     list_top : int, optional
         Rows of ranking.tsv (default: the shortlist).
-    max_missing, min_maf : float, optional
+    drop_missing, drop_rare : float, optional
         Per-feature filters applied in the pass.
     sub_block : int
         Features prepared at once inside a block (bounds float64 working memory per thread).
@@ -42,10 +42,10 @@ class ScreenConfig:
     family: str = "linear"
     covariates: tuple[str, ...] = ()
     event: str | None = None
-    keep: int | str = "auto"
+    shortlist: int | str = "auto"
     list_top: int | None = None
-    max_missing: float | None = None
-    min_maf: float | None = None
+    drop_missing: float | None = None
+    drop_rare: float | None = None
     sub_block: int = 1024
 
     def to_dict(self) -> dict:
@@ -55,7 +55,7 @@ class ScreenConfig:
 
     @property
     def filters(self) -> FeatureFilter:
-        return FeatureFilter(max_missing=self.max_missing, min_maf=self.min_maf)
+        return FeatureFilter(drop_missing=self.drop_missing, drop_rare=self.drop_rare)
 
 
 @dataclass
@@ -199,7 +199,7 @@ def screen(
         covariates=config.covariates,
         event=config.event,
     )
-    keep = keep_size(config.keep, problem.n, problem.source.n_features)
+    keep = shortlist_size(config.shortlist, problem.n, problem.source.n_features)
     listed = max(keep, config.list_top or 0)
     with open_session(
         out, "screen", config.to_dict(), dataset_record(problem), restart=restart

@@ -1,7 +1,7 @@
 """Thresholds that cut a pass's shortlist: a size budget, a permutation threshold, Bonferroni and BH.
 
 Every threshold here is a plain function of statistics already computed by a pass; none reads the data.
-The size budget d (a fixed number or floor(n / log n), see `keep_size`) bounds the shortlist; a
+The size budget d (a fixed number or floor(n / log n), see `shortlist_size`) bounds the shortlist; a
 data-driven threshold then keeps only the budgeted features that pass it.
 
 Benjamini-Hochberg needs every tested feature's p-value. `bh_cutoff_blocks` finds the exact BH cutoff
