@@ -1,9 +1,8 @@
 """scikit-learn-compatible estimators over arrays, Dask arrays and dataset stores."""
 
-from ._selector import ScreeningSelector
-
-__all__ = ["ScreeningSelector"]
-
 from ._model import IterativeScreeningModel
+from ._selector import ScreeningSelector
+from ._target import concordance_index
+from ._view import StoreView
 
-__all__ += ["IterativeScreeningModel"]
+__all__ = ["IterativeScreeningModel", "ScreeningSelector", "StoreView", "concordance_index"]

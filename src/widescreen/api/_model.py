@@ -5,13 +5,21 @@ from __future__ import annotations
 import numpy as np
 from sklearn.base import BaseEstimator, RegressorMixin
 from sklearn.feature_selection import SelectorMixin
-from sklearn.utils.validation import check_is_fitted, validate_data
+from sklearn.metrics import accuracy_score, r2_score
+from sklearn.utils import ClassifierTags
+from sklearn.utils._available_if import available_if
+from sklearn.utils.validation import check_is_fitted
 
-from ..engine._source import ArraySource, as_source
 from ..fit import make_loss
-from ..workflow._iterate import IterateConfig, iterate
-from ..workflow._problem import problem_from_arrays
-from ._selector import _is_out_of_core, _read_columns, read_selected
+from ..workflow._iterate import IterateConfig
+from ._base import fill_missing, fit_inputs, predict_covariates
+from ._core import iterate_once
+from ._inputs import Design, align, read_design
+from ._target import concordance_index, survival_target
+
+
+def _is_binary(est) -> bool:
+    return est.family == "logistic"
 
 
 class IterativeScreeningModel(SelectorMixin, RegressorMixin, BaseEstimator):
@@ -19,13 +27,20 @@ class IterativeScreeningModel(SelectorMixin, RegressorMixin, BaseEstimator):
 
     Screens every feature, fits a penalised model on the shortlist, ranks the remaining features
     conditionally on the selected ones, refits on the union, and repeats until the selected set stops
-    changing or reaches the size budget. Works on numpy arrays, Dask arrays and dataset stores (read
-    block by block); missing values (NaN) are replaced by each feature's mean.
+    changing or reaches the size budget. Works on numpy arrays, pandas DataFrames, Dask arrays and
+    dataset stores (a path, a `Dataset`, or a `StoreView` of some of its samples, which
+    scikit-learn's model selection can split by row); missing values are replaced by each feature's
+    training mean, in ``fit``, ``predict`` and ``transform`` alike.
+
+    With ``family="logistic"`` the estimator is a binary classifier: ``predict`` gives labels,
+    ``predict_proba`` the two class probabilities, ``score`` the accuracy. With ``family="cox"``,
+    ``predict`` gives the relative risk exp(eta) and ``score`` Harrell's concordance index. Otherwise
+    it is a regressor (``predict`` the mean response, ``score`` R^2).
 
     Parameters
     ----------
     family : str, default="linear"
-        Outcome family (see `widescreen.families.FAMILIES`).
+        Outcome family (see `widescreen.families.FAMILIES`); decides what y must be (see ``fit``).
     shortlist : int or "auto", default="auto"
         Size budget d of the selected set; "auto" = floor(n / log n).
     penalty : str, default="scad"
@@ -46,6 +61,11 @@ class IterativeScreeningModel(SelectorMixin, RegressorMixin, BaseEstimator):
     cv : int, default=5
     random_state : int, default=0
         Seeds the halves, the permutations and the folds.
+    covariates : array-like or pandas DataFrame, optional
+        Adjusted for in every pass and unpenalised in every fit. A DataFrame indexed by sample id is
+        matched to X's samples by id in ``fit``, ``predict`` and ``score`` (so each cross-validation
+        fold of a `StoreView` finds its own rows); an array by position. A ``covariates`` argument
+        to a method replaces it for that call.
     scheduler : optional
         Where passes run (see `widescreen.engine.execute`); threads by default.
 
@@ -57,9 +77,13 @@ class IterativeScreeningModel(SelectorMixin, RegressorMixin, BaseEstimator):
         For features as given, with missing values at their training mean.
     selected_ : ndarray of int of shape (k,)
         Indices of the selected features, increasing.
+    feature_ids_ : ndarray of str of shape (k,)
+        Ids of the selected features: the store's, a DataFrame's column names, or ``x<index>``.
     covariate_coef_ : ndarray of shape (q,)
     mean_ : ndarray of shape (k,)
-        Training means of the selected features (used for missing values in `predict`).
+        Training means of the selected features (used for missing values).
+    classes_ : ndarray of shape (2,)
+        ``logistic`` only: the two labels, sorted; the second is the "1" of the model.
     entered_ : ndarray of int of shape (k,)
         Iteration in which each selected feature entered (0 = the first screen).
     iterations_ : list of dict
@@ -69,6 +93,12 @@ class IterativeScreeningModel(SelectorMixin, RegressorMixin, BaseEstimator):
     n_iter_ : int
         Number of fits done.
     n_features_in_ : int
+
+    Notes
+    -----
+    scikit-learn's ``check_estimator`` passes for every family except ``cox`` (its y is (time,
+    event), which the generic checks cannot draw) and ``poisson`` (y must be integer counts; the
+    checks draw real-valued targets); the test suite states this per family.
 
     Examples
     --------
@@ -95,6 +125,7 @@ class IterativeScreeningModel(SelectorMixin, RegressorMixin, BaseEstimator):
         ebic_gamma=None,
         cv=5,
         random_state=0,
+        covariates=None,
         scheduler=None,
     ):
         self.family = family
@@ -110,6 +141,7 @@ class IterativeScreeningModel(SelectorMixin, RegressorMixin, BaseEstimator):
         self.ebic_gamma = ebic_gamma
         self.cv = cv
         self.random_state = random_state
+        self.covariates = covariates
         self.scheduler = scheduler
 
     def _config(self) -> IterateConfig:
@@ -134,43 +166,35 @@ class IterativeScreeningModel(SelectorMixin, RegressorMixin, BaseEstimator):
 
         Parameters
         ----------
-        X : array-like of shape (n_samples, n_features), Dask array, or a store path / Dataset
-        y : array-like of shape (n_samples,)
-            Aligned with the rows of X (for a store: its sample order).
-        covariates : array-like of shape (n_samples, q), optional
-            Adjusted for in every pass and unpenalised in every fit.
+        X : array-like of shape (n_samples, n_features), Dask array, store path, Dataset or StoreView
+        y : array-like or pandas object
+            One value per sample of X: a pandas Series (or DataFrame) indexed by sample id is matched
+            to X's samples by id when X carries ids (a store, a `StoreView`, a DataFrame); a plain
+            array by position. ``logistic``: two labels, numbers or text; ``poisson``: non-negative
+            integer counts; ``cox``: a structured array (boolean event field, float time field) or
+            two columns (time, event).
+        covariates : array-like or pandas DataFrame, optional
+            As the ``covariates`` parameter, for this fit.
 
         Returns
         -------
         self
         """
         config = self._config()
-        if _is_out_of_core(X):
-            source = as_source(X)
-            y = np.asarray(y, dtype=np.float64).ravel()
-            if y.shape[0] != source.n_samples:
-                raise ValueError(f"y has {y.shape[0]} values but X has {source.n_samples} samples")
-            self.n_features_in_ = source.n_features
-        else:
-            X, y = validate_data(
-                self, X, y, ensure_all_finite="allow-nan", dtype=np.float64, y_numeric=True
+        design, problem, classes = fit_inputs(self, X, y, covariates)
+        if config.split and problem.n < 8:
+            raise ValueError(
+                f"sample splitting needs at least 8 samples; got n_samples = {problem.n}"
             )
-            source = ArraySource(X)
-        n = source.n_samples
-        if n < 4:
-            raise ValueError(f"need at least 4 samples to screen; got n_samples = {n}")
-        if config.split and n < 8:
-            raise ValueError(f"sample splitting needs at least 8 samples; got n_samples = {n}")
-        Z = None
-        if covariates is not None:
-            Z = np.asarray(covariates, dtype=np.float64).reshape(n, -1)
-        problem = problem_from_arrays(source, y, config.family, Z)
-        result = iterate(problem, config, scheduler=self.scheduler)
-        coef = np.zeros(source.n_features)
+        result = iterate_once(problem, config, scheduler=self.scheduler)
+        coef = np.zeros(design.n_features)
         coef[result.index] = result.coef
         self.coef_ = coef
         self.intercept_ = result.intercept
         self.selected_ = result.index
+        self.feature_ids_ = design.feature_ids(
+            result.index, getattr(self, "feature_names_in_", None)
+        )
         self.covariate_coef_ = result.covariate_coef
         self.mean_ = result.mean
         self.entered_ = result.entered
@@ -179,39 +203,64 @@ class IterativeScreeningModel(SelectorMixin, RegressorMixin, BaseEstimator):
         self.budget_ = result.budget
         self.n_iter_ = len(result.iterations)
         self.loss_ = result.problem.family.loss
+        if classes is not None:
+            self.classes_ = classes
         return self
 
-    def _selected_columns(self, X) -> np.ndarray:
-        """The selected features' values of X, shape (m, k), missing values at the training mean."""
-        if _is_out_of_core(X):
-            source = as_source(X)
-            if source.n_features != self.n_features_in_:
-                raise ValueError(
-                    f"X has {source.n_features} features; fitted on {self.n_features_in_}"
-                )
-            cols = _read_columns(source, self.selected_)
-        else:
-            X = validate_data(self, X, reset=False, ensure_all_finite="allow-nan", dtype=np.float64)
-            cols = X[:, self.selected_]
-        return np.where(np.isnan(cols), self.mean_, cols)
+    def _linear_predictor(self, design: Design, covariates) -> np.ndarray:
+        cols = fill_missing(design.columns(self.selected_), self.mean_)
+        eta = self.intercept_ + cols @ self.coef_[self.selected_]
+        Z = predict_covariates(self, design, covariates, self.covariate_coef_.size)
+        return eta if Z is None else eta + Z @ self.covariate_coef_
 
     def linear_predictor(self, X, covariates=None) -> np.ndarray:
-        """Linear predictor of shape (n_samples,) (a regressor has no ``decision_function``)."""
+        """Linear predictor eta of shape (n_samples,) (log relative risk for ``cox``)."""
         check_is_fitted(self, "coef_")
-        eta = self.intercept_ + self._selected_columns(X) @ self.coef_[self.selected_]
-        if self.covariate_coef_.size:
-            if covariates is None:
-                raise ValueError(
-                    f"the model adjusts for {self.covariate_coef_.size} covariates; pass them"
-                )
-            Z = np.asarray(covariates, dtype=np.float64).reshape(eta.shape[0], -1)
-            eta = eta + Z @ self.covariate_coef_
-        return eta
+        return self._linear_predictor(read_design(self, X, reset=False), covariates)
+
+    @available_if(_is_binary)
+    def decision_function(self, X, covariates=None) -> np.ndarray:
+        """``logistic``: log odds of the second class, shape (n_samples,)."""
+        return self.linear_predictor(X, covariates)
+
+    @available_if(_is_binary)
+    def predict_proba(self, X, covariates=None) -> np.ndarray:
+        """``logistic``: probabilities of ``classes_``, shape (n_samples, 2)."""
+        check_is_fitted(self, "coef_")
+        p = make_loss(self.loss_).mean(self.linear_predictor(X, covariates))
+        return np.column_stack([1.0 - p, p])
 
     def predict(self, X, covariates=None) -> np.ndarray:
-        """Mean response of shape (n_samples,) (probability, expected count; Cox: relative risk)."""
+        """``logistic``: labels; ``cox``: relative risk exp(eta); otherwise the mean response."""
         check_is_fitted(self, "coef_")
-        return make_loss(self.loss_).mean(self.linear_predictor(X, covariates))
+        eta = self.linear_predictor(X, covariates)
+        if _is_binary(self):
+            return self.classes_[(eta > 0).astype(np.intp)]
+        return make_loss(self.loss_).mean(eta)
+
+    def score(self, X, y, sample_weight=None, covariates=None) -> float:
+        """Accuracy (``logistic``), Harrell's concordance index (``cox``) or R^2 (otherwise).
+
+        ``y`` is matched to X's samples as in ``fit`` (by id for pandas objects when X carries ids).
+        """
+        check_is_fitted(self, "coef_")
+        design = read_design(self, X, reset=False)
+        y = align(y, design, "y")
+        eta = self._linear_predictor(design, covariates)
+        if _is_binary(self):
+            labels = np.asarray(y).ravel()
+            return float(
+                accuracy_score(
+                    labels, self.classes_[(eta > 0).astype(np.intp)], sample_weight=sample_weight
+                )
+            )
+        if self.loss_ == "cox":
+            if sample_weight is not None:
+                raise ValueError("the concordance index takes no sample weights")
+            surv = survival_target(y)
+            return concordance_index(surv.y, surv.event, eta)
+        y = np.asarray(y, dtype=np.float64).ravel()
+        return float(r2_score(y, make_loss(self.loss_).mean(eta), sample_weight=sample_weight))
 
     def _get_support_mask(self):
         check_is_fitted(self, "coef_")
@@ -220,16 +269,26 @@ class IterativeScreeningModel(SelectorMixin, RegressorMixin, BaseEstimator):
         return mask
 
     def transform(self, X):
-        """Reduce X to the selected features (for a store: their raw values, read once)."""
-        if _is_out_of_core(X):
-            check_is_fitted(self, "coef_")
-            return read_selected(X, self.n_features_in_, self.selected_)
-        return super().transform(X)
+        """The selected features of X (increasing index), missing values at the training means."""
+        check_is_fitted(self, "coef_")
+        design = read_design(self, X, reset=False)
+        return fill_missing(design.columns(self.selected_), self.mean_)
+
+    def get_feature_names_out(self, input_features=None):
+        """Ids of the selected features (the store's feature ids when fitted on a store)."""
+        check_is_fitted(self, "coef_")
+        if input_features is None:
+            return np.asarray(self.feature_ids_, dtype=object)
+        return super().get_feature_names_out(input_features)
 
     def __sklearn_tags__(self):
         tags = super().__sklearn_tags__()
         tags.input_tags.allow_nan = True
         tags.target_tags.required = True
+        if _is_binary(self):
+            tags.estimator_type = "classifier"
+            tags.classifier_tags = ClassifierTags(multi_class=False)
+            tags.regressor_tags = None
         return tags
 
 

@@ -2,36 +2,35 @@
 
 from __future__ import annotations
 
-import os
-
 import numpy as np
 from sklearn.base import BaseEstimator
 from sklearn.feature_selection import SelectorMixin
-from sklearn.utils.validation import check_is_fitted, validate_data
+from sklearn.utils import ClassifierTags
+from sklearn.utils.validation import check_is_fitted
 
-from ..engine._pass import PassSpec, run_pass
-from ..engine._source import ArraySource, BlockSource, as_source
-from ..families import get_family
-from ..workflow._problem import problem_from_arrays, shortlist_size
-
-
-def _is_out_of_core(X) -> bool:
-    from ..store._format import Dataset
-
-    return isinstance(X, str | os.PathLike | Dataset | BlockSource) or (
-        hasattr(X, "dask") and hasattr(X, "chunks")
-    )
+from ._base import fill_missing, fit_inputs
+from ._core import screen_once
+from ._inputs import read_design
 
 
 class ScreeningSelector(SelectorMixin, BaseEstimator):
     """Keep the features most associated with the response (sure independence screening).
 
+    Works on numpy arrays, pandas DataFrames, Dask arrays and dataset stores (a path, a `Dataset`, or
+    a `StoreView` of some of its samples, which scikit-learn's model selection can split by row).
+    Missing values (NaN, or the store's missing code) are replaced by each feature's mean over the
+    training samples, in ``fit`` and in ``transform`` alike.
+
     Parameters
     ----------
     family : str, default="linear"
-        Outcome family (see `widescreen.families.FAMILIES`).
+        Outcome family (see `widescreen.families.FAMILIES`); decides what y must be (see ``fit``).
     shortlist : int or "auto", default="auto"
         Number of features kept; "auto" = floor(n / log n) (Fan & Lv 2008).
+    covariates : array-like or pandas DataFrame, optional
+        Adjusted for in the screen. A DataFrame indexed by sample id is matched to X's samples by id
+        (for a store or a `StoreView`, so each cross-validation fold finds its own rows); an array is
+        matched by position. A ``covariates`` argument to ``fit`` replaces it.
     scheduler : optional
         Where passes over out-of-core inputs run (see `widescreen.engine.execute`); threads by default.
 
@@ -39,14 +38,25 @@ class ScreeningSelector(SelectorMixin, BaseEstimator):
     ----------
     scores_ : ndarray of shape (n_features,)
         Screening utility of every feature (larger is stronger).
-    pvalues_ : ndarray of shape (n_features,)
+    pvalues_ : ndarray of shape (n_features,) or None
         Marginal p-values, where the family has a test.
     statistics_ : dict of str -> ndarray of shape (n_features,)
         Every statistic the family's kernel computed.
     ranking_ : ndarray of shape (k,)
         Indices of the kept features, strongest first.
+    feature_ids_ : ndarray of str of shape (k,)
+        Ids of the kept features in column order of ``transform`` (increasing index): the store's
+        feature ids, a DataFrame's column names, or ``x<index>``.
+    means_ : ndarray of shape (k,)
+        Training means of the kept features (what ``transform`` puts in place of a missing value).
     missing_rate_ : ndarray of shape (n_features,)
     n_features_in_ : int
+
+    Notes
+    -----
+    scikit-learn's ``check_estimator`` passes for every family except ``cox`` (its y is (time,
+    event), which the generic checks cannot draw) and ``poisson`` (y must be integer counts; the
+    checks draw real-valued targets); the test suite states this per family.
 
     Examples
     --------
@@ -59,60 +69,44 @@ class ScreeningSelector(SelectorMixin, BaseEstimator):
     """
 
     def __init__(
-        self, family: str = "linear", shortlist: int | str = "auto", scheduler=None
+        self, family: str = "linear", shortlist: int | str = "auto", covariates=None, scheduler=None
     ) -> None:
         self.family = family
         self.shortlist = shortlist
+        self.covariates = covariates
         self.scheduler = scheduler
 
-    def fit(self, X, y):
+    def fit(self, X, y, covariates=None):
         """Screen every feature of X against y.
 
         Parameters
         ----------
-        X : array-like of shape (n_samples, n_features), Dask array, or a store path / Dataset
-            Missing values (NaN) are mean-imputed per feature.
-        y : array-like of shape (n_samples,)
-            Aligned with the rows of X (for a store: its sample order).
+        X : array-like of shape (n_samples, n_features), Dask array, store path, Dataset or StoreView
+        y : array-like or pandas object
+            One value per sample of X: a pandas Series (or DataFrame) indexed by sample id is matched
+            to X's samples by id when X carries ids (a store, a `StoreView`, a DataFrame); a plain
+            array by position. ``logistic``: two labels, numbers or text; ``poisson``: non-negative
+            integer counts; ``cox``: a structured array (boolean event field, float time field) or
+            two columns (time, event).
+        covariates : array-like or pandas DataFrame, optional
+            As the ``covariates`` parameter, for this fit.
 
         Returns
         -------
         self
         """
-        fam = get_family(self.family)
-        if _is_out_of_core(X):
-            source = as_source(X)
-            y = np.asarray(y, dtype=np.float64).ravel()
-            if y.shape[0] != source.n_samples:
-                raise ValueError(f"y has {y.shape[0]} values but X has {source.n_samples} samples")
-            self.n_features_in_ = source.n_features
-        else:
-            X, y = validate_data(
-                self, X, y, ensure_all_finite="allow-nan", dtype=np.float64, y_numeric=True
-            )
-            source = ArraySource(X)
-        if source.n_samples < 4:
-            raise ValueError(
-                f"need at least 4 samples to screen; got n_samples = {source.n_samples}"
-            )
-        k = shortlist_size(self.shortlist, source.n_samples, source.n_features)
-        problem = problem_from_arrays(source, y, fam)
-        state = fam.prepare(problem.response, None)
-        spec = PassSpec(
-            name="screen",
-            kernel=fam.kernel,
-            state=state,
-            columns=fam.columns,
-            keep=k,
-            keep_values=False,
-        )
-        result = run_pass(source, spec, None, scheduler=self.scheduler)
+        design, problem, _ = fit_inputs(self, X, y, covariates)
+        result, k = screen_once(problem, self.shortlist, scheduler=self.scheduler)
         self.statistics_ = result.stats
         self.scores_ = result.stats["score"]
         self.pvalues_ = result.stats.get("p_value")
         self.missing_rate_ = result.stats["missing_rate"]
         self.ranking_ = result.topk.index
         self.k_ = k
+        support = np.sort(self.ranking_)
+        means = np.asarray(result.stats["mean"], dtype=np.float64)[support]
+        self.means_ = np.where(np.isfinite(means), means, 0.0)  # a wholly missing column -> 0
+        self.feature_ids_ = design.feature_ids(support, getattr(self, "feature_names_in_", None))
         return self
 
     def _get_support_mask(self):
@@ -122,39 +116,36 @@ class ScreeningSelector(SelectorMixin, BaseEstimator):
         return mask
 
     def transform(self, X):
-        """Reduce X to the kept features (for a store: their raw values, read once)."""
-        if _is_out_of_core(X):
-            check_is_fitted(self, "ranking_")
-            return read_selected(X, self.n_features_in_, np.sort(self.ranking_))
-        return super().transform(X)
+        """The kept features of X, in increasing index order, missing values at the training means.
+
+        Parameters
+        ----------
+        X : array-like, Dask array, store path, Dataset or StoreView with the features seen in fit
+
+        Returns
+        -------
+        ndarray of shape (n_samples, k)
+        """
+        check_is_fitted(self, "ranking_")
+        design = read_design(self, X, reset=False)
+        return fill_missing(design.columns(np.sort(self.ranking_)), self.means_)
+
+    def get_feature_names_out(self, input_features=None):
+        """Ids of the kept features (the store's feature ids when fitted on a store)."""
+        check_is_fitted(self, "ranking_")
+        if input_features is None:
+            return np.asarray(self.feature_ids_, dtype=object)
+        return super().get_feature_names_out(input_features)
 
     def __sklearn_tags__(self):
         tags = super().__sklearn_tags__()
         tags.input_tags.allow_nan = True
         tags.target_tags.required = True
+        if self.family == "logistic":
+            # Binary targets only: lets scikit-learn's checks draw two classes (the selector stays
+            # a transformer, not a classifier).
+            tags.classifier_tags = ClassifierTags(multi_class=False)
         return tags
 
 
-def read_selected(X, n_features_in: int, cols: np.ndarray) -> np.ndarray:
-    """Raw values of the selected columns of an out-of-core X, after checking its width."""
-    source = as_source(X)
-    if source.n_features != n_features_in:
-        raise ValueError(f"X has {source.n_features} features; fitted on {n_features_in}")
-    return _read_columns(source, cols)
-
-
-def _read_columns(source: BlockSource, cols: np.ndarray) -> np.ndarray:
-    """Raw values (NaN for missing) of the given columns, each block read once."""
-    from ..store._format import MISSING_INT8
-
-    out = np.empty((source.n_samples, cols.size), dtype=np.float64)
-    blocks = cols // source.block_width
-    for b in np.unique(blocks):
-        start, _ = source.bounds(int(b))
-        sel = np.flatnonzero(blocks == b)
-        raw = source.read(int(b))[:, cols[sel] - start]
-        vals = raw.astype(np.float64)
-        if raw.dtype == np.int8:
-            vals[raw == MISSING_INT8] = np.nan
-        out[:, sel] = vals
-    return out
+__all__ = ["ScreeningSelector"]
