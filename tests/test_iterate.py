@@ -259,7 +259,12 @@ def test_cli_run_writes_the_tables_and_refuses_bad_options(tmp_path, study):
     model = read_tsv(out / "model.tsv")
     assert model["feature"][0] == "(intercept)"
     ranking = read_tsv(out / "ranking.tsv")
-    assert set(ranking["passed"]) <= {"0", "1"}
+    # shortlisted: the first iteration's candidates (top d, kept by the BH threshold)
+    man = json.loads((out / "manifest.json").read_text())
+    first = set(man["iterations"][0]["candidates"])
+    assert [s == "true" for s in ranking["shortlisted"]] == [
+        int(i) in first for i in ranking["index"]
+    ]
     shutil.rmtree(out)
     res = runner.invoke(app, [*args, "--out", str(out), "--penalty", "ridge", "-q"])
     assert res.exit_code == 1

@@ -12,7 +12,7 @@ from ._progress import ProgressBar
 
 def run_demo(out: Path, *, samples: int, features: int, seed: int, quiet: bool) -> None:
     from ..report import build_report
-    from ..report._tables import read_tsv
+    from ..schema import read_tsv
     from ..simulate import SimulationConfig, simulate
     from ..workflow._iterate import IterateConfig
     from ..workflow._run import run

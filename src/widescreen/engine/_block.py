@@ -20,6 +20,7 @@ from pathlib import Path
 
 import numpy as np
 
+from ..schema import PassLayout, stats_chunk_bytes
 from ..store._reader import Block, prepare_block
 from ._runfolder import atomic_write
 from ._scheduler import WorkerAccessError
@@ -52,11 +53,11 @@ def process_block(source: BlockSource, spec: PassSpec, i: int, out_dir: str | No
         folder.
     """
     t0 = time.perf_counter()
-    if out_dir is not None and not (Path(out_dir) / "stats").is_dir():
+    if out_dir is not None and not PassLayout(Path(out_dir)).stats.is_dir():
         # Checked before the read so a worker that does not see the run folder says so plainly.
         raise WorkerAccessError(
             f"run folder {Path(out_dir).parent.parent} is not reachable from host "
-            f"{socket.gethostname()} (pid {os.getpid()}): no {Path(out_dir) / 'stats'}"
+            f"{socket.gethostname()} (pid {os.getpid()}): no {PassLayout(Path(out_dir)).stats}"
         )
     start, stop = source.bounds(i)
     raw = source.read(i)
@@ -147,29 +148,14 @@ def write_stats(out_dir: str | Path, block: int, stats: dict[str, np.ndarray], w
     """Write one block's chunk of every statistic straight to its file.
 
     The pass creates its statistic arrays uncompressed (Zarr v3 ``bytes`` codec, little endian), one
-    chunk per block, so a chunk file is just the float64 values, padded with NaN to the chunk length
-    at the last block. Writing it directly costs a file write instead of zarr's per-call machinery
-    (which took longer than the statistics of a small block). Each file is written to a temporary
-    name and renamed, so a chunk file that exists is whole.
+    chunk per block (`widescreen.schema.create_stats`), so a chunk file is just the float64 values,
+    padded with NaN to the chunk length at the last block. Writing it directly costs a file write
+    instead of zarr's per-call machinery (which took longer than the statistics of a small block).
+    Each file is written to a temporary name and renamed, so a chunk file that exists is whole.
     """
+    layout = PassLayout(Path(out_dir))
     for c, v in stats.items():
-        buf = np.full(width, np.nan, dtype="<f8")
-        buf[: v.size] = v
-        atomic_write(stats_chunk(out_dir, c, block), buf.tobytes(), sync=False)
-
-
-def stats_codecs_ok(array) -> bool:
-    """Whether a statistic array has the layout `write_stats` writes (checked when the pass is made)."""
-    meta = array.metadata.to_dict()
-    codecs = meta.get("codecs", [])
-    key = meta.get("chunk_key_encoding", {})
-    return (
-        len(codecs) == 1
-        and codecs[0].get("name") == "bytes"
-        and (codecs[0].get("configuration") or {}).get("endian", "little") == "little"
-        and key.get("name") == "default"
-        and (key.get("configuration") or {}).get("separator", "/") == "/"
-    )
+        atomic_write(layout.stats_chunk(c, block), stats_chunk_bytes(v, width), sync=False)
 
 
 def write_marker(out_dir: str | Path, record: dict) -> None:
@@ -187,7 +173,7 @@ def write_marker(out_dir: str | Path, record: dict) -> None:
         "sub_block": record.get("sub_block"),
         "seconds": record["seconds"],
     }
-    atomic_write(Path(out_dir) / "done" / f"{record['block']}.json", json.dumps(marker))
+    atomic_write(PassLayout(Path(out_dir)).marker(record["block"]), json.dumps(marker))
 
 
 def write_kept(
@@ -214,7 +200,7 @@ def write_kept(
 
 
 def kept_path(out_dir: str | Path, block: int) -> Path:
-    return Path(out_dir) / "done" / f"{block}.kept.npz"
+    return PassLayout(Path(out_dir)).kept(block)
 
 
 def read_kept(out_dir: str | Path, block: int) -> tuple[np.ndarray, np.ndarray] | None:
@@ -231,8 +217,8 @@ def read_kept(out_dir: str | Path, block: int) -> tuple[np.ndarray, np.ndarray] 
 
 
 def stats_chunk(out_dir: str | Path, column: str, block: int) -> Path:
-    """File of one block's chunk of a statistic (the pass creates the arrays with '/'-separated keys)."""
-    return Path(out_dir) / "stats" / column / "c" / str(block)
+    """File of one block's chunk of a statistic (see `widescreen.schema.PassLayout.stats_chunk`)."""
+    return PassLayout(Path(out_dir)).stats_chunk(column, block)
 
 
 def read_marker(
@@ -244,7 +230,7 @@ def read_marker(
     file of the block exists and is not empty (an empty file is what a crash of the machine can leave
     behind); otherwise the block is computed again.
     """
-    path = Path(out_dir) / "done" / f"{block}.json"
+    path = PassLayout(Path(out_dir)).marker(block)
     try:
         m = json.loads(path.read_text())
         if (int(m["start"]), int(m["stop"])) != tuple(bounds):

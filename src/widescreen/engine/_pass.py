@@ -22,9 +22,9 @@ from pathlib import Path
 from typing import Any
 
 import numpy as np
-import zarr
 
-from ._block import fetch_columns, process_block, read_kept, read_marker, stats_codecs_ok
+from ..schema import PassLayout, PassMeta, create_stats, read_pass_meta, read_stats
+from ._block import fetch_columns, process_block, read_kept, read_marker
 from ._memory import (
     BASELINE_BYTES,
     CLUSTER_SHARE,
@@ -34,7 +34,7 @@ from ._memory import (
     plan_memory,
     process_baseline,
 )
-from ._runfolder import RunFolder, RunFolderError, atomic_write
+from ._runfolder import RunFolder, atomic_write
 from ._scheduler import Executor, n_cores, open_executor
 from ._source import BlockSource
 from ._spec import ENGINE_COLUMNS, FeatureFilter, PassResult, PassSpec
@@ -102,58 +102,41 @@ def build_pass(
 # The pass folder
 
 
-def _prepare_out_dir(run: RunFolder, source: BlockSource, spec: PassSpec) -> tuple[str, dict]:
+def _prepare_out_dir(run: RunFolder, source: BlockSource, spec: PassSpec) -> tuple[str, PassMeta]:
     """Create (or check) the pass's statistics group; a pass of other inputs under this name starts over.
 
-    Returns the folder and its metadata (``pass.json``: token, statistic names, block plan, and the
+    Returns the folder and its `PassMeta` (``pass.json``: token, statistic names, block plan, and the
     sub-block width of the first session, or None when the folder is new).
     """
-    d = run.pass_dir(spec.name)
+    layout = run.layout.pass_(spec.name)
+    d = layout.root
     token = spec.token(source)
-    meta_path = d / "pass.json"
-    if meta_path.exists():
-        try:
-            meta = json.loads(meta_path.read_text())
-        except ValueError:
-            meta = {}
-        if meta.get("token") == token:
-            _clean_partial_files(d)
-            return str(d), meta
+    meta = read_pass_meta(layout)
+    if meta is not None and meta.token == token:
+        _clean_partial_files(layout)
+        return str(d), meta
     if d.exists():
         shutil.rmtree(d)
     d.mkdir(parents=True)
-    group = zarr.open_group(d / "stats", mode="w")
-    for c in spec.all_columns:
-        arr = group.create_array(
-            c,
-            shape=(source.n_features,),
-            chunks=(source.block_width,),
-            dtype="<f8",
-            fill_value=np.nan,
-            # Uncompressed: block tasks write their chunk files directly (see `write_stats`).
-            compressors=None,
-            filters=None,
-        )
-        if not stats_codecs_ok(arr):  # pragma: no cover - guards against a zarr default change
-            raise RuntimeError(f"{d / 'stats' / c}: unexpected array layout {arr.metadata}")
-    (d / "done").mkdir()
-    meta = {
-        "token": token,
-        "columns": list(spec.all_columns),
-        "n_features": source.n_features,
-        "block_width": source.block_width,
-        "n_blocks": source.n_blocks,
-        "sub_block": None,
-    }
-    atomic_write(meta_path, json.dumps(meta))  # last: the folder counts as made once this exists
+    create_stats(layout, spec.all_columns, source.n_features, source.block_width)
+    layout.done.mkdir()
+    meta = PassMeta(
+        token=token,
+        columns=tuple(spec.all_columns),
+        n_features=source.n_features,
+        block_width=source.block_width,
+        n_blocks=source.n_blocks,
+    )
+    # Last: the folder counts as made once this exists.
+    atomic_write(layout.meta, json.dumps(meta.to_dict()))
     return str(d), meta
 
 
-def _clean_partial_files(d: Path) -> None:
+def _clean_partial_files(layout: PassLayout) -> None:
     """Temporary files that a killed writer left (zarr's ``*.partial``, our ``.*.tmp-*``)."""
-    for f in (d / "done").glob(".*.tmp-*"):
+    for f in layout.done.glob(".*.tmp-*"):
         f.unlink(missing_ok=True)
-    for f in (d / "stats").glob("*/c/*.partial"):
+    for f in layout.stats.glob("*/c/*.partial"):
         f.unlink(missing_ok=True)
 
 
@@ -234,9 +217,7 @@ def run_pass(
         # Workers may run in another working folder (or on another machine): absolute paths only.
         run = RunFolder(Path(run.path).resolve())
     source = source.absolute()
-    out_dir, meta = (
-        _prepare_out_dir(run, source, spec) if run is not None else (None, {"sub_block": None})
-    )
+    out_dir, meta = _prepare_out_dir(run, source, spec) if run is not None else (None, None)
     reused = []
     if run is not None:
         for i in sorted(run.done_blocks(spec.name)):
@@ -248,13 +229,15 @@ def run_pass(
     todo = [i for i in range(n_blocks) if i not in done]
     notes: list[str] = []
     with open_executor(scheduler, memory_budget=budget) as ex:
-        sub_block, plan = _choose_sub_block(source, spec, ex, meta.get("sub_block"))
+        sub_block, plan = _choose_sub_block(
+            source, spec, ex, None if meta is None else meta.sub_block
+        )
         spec = replace(spec, sub_block=sub_block)
         if out_dir is not None:
-            _record_sub_block(Path(out_dir), meta, sub_block, bool(todo), notes)
+            _record_sub_block(PassLayout(Path(out_dir)), meta, sub_block, bool(todo), notes)
         if todo and out_dir is not None:
             checks = [
-                ("run folder", Path(run.path), Path(out_dir, "pass.json").relative_to(run.path))
+                ("run folder", Path(run.path), PassLayout(Path(out_dir)).meta.relative_to(run.path))
             ]
             location = source.location()
             if location is not None:
@@ -310,18 +293,18 @@ def run_pass(
     )
 
 
-def _record_sub_block(d: Path, meta: dict, sub_block: int, computing: bool, notes: list) -> None:
-    first = meta.get("sub_block")
+def _record_sub_block(
+    layout: PassLayout, meta: PassMeta, sub_block: int, computing: bool, notes: list
+) -> None:
+    first = meta.sub_block
     if first is None:
-        meta = {**meta, "sub_block": sub_block}
-        atomic_write(d / "pass.json", json.dumps(meta))
+        atomic_write(layout.meta, json.dumps(replace(meta, sub_block=sub_block).to_dict()))
     elif first != sub_block and computing:
-        widths = sorted({*meta.get("sub_blocks_used", [first]), sub_block})
-        meta = {**meta, "sub_blocks_used": widths}
-        atomic_write(d / "pass.json", json.dumps(meta))
+        widths = tuple(sorted({*(meta.sub_blocks_used or (first,)), sub_block}))
+        atomic_write(layout.meta, json.dumps(replace(meta, sub_blocks_used=widths).to_dict()))
         notes.append(
-            f"blocks were computed with sub-block widths {widths} (the memory budget changed); "
-            "statistics may differ from an uninterrupted run in the last bits"
+            f"blocks were computed with sub-block widths {list(widths)} (the memory budget "
+            "changed); statistics may differ from an uninterrupted run in the last bits"
         )
 
 
@@ -365,49 +348,6 @@ def _kept_values(
             source, top.index[missing], spec.rows, spec.sub_block, n_threads=n_threads
         )
     return values
-
-
-def read_stats(
-    run: RunFolder,
-    name: str,
-    columns: tuple[str, ...] | None = None,
-    start: int = 0,
-    stop: int | None = None,
-) -> dict[str, np.ndarray]:
-    """Statistics of a finished pass, read back from the run folder.
-
-    Returns
-    -------
-    dict of ndarray of shape (stop - start,)
-
-    Raises
-    ------
-    RunFolderError
-        The run folder or the pass is missing, or the pass has unfinished blocks.
-    """
-    d = run.pass_dir(name)
-    if not run.path.is_dir():
-        raise RunFolderError(f"{run.path}: no such run folder")
-    try:
-        meta = json.loads((d / "pass.json").read_text())
-    except FileNotFoundError:
-        raise RunFolderError(f"{run.path}: has no pass {name!r}") from None
-    except ValueError as exc:
-        raise RunFolderError(f"{d / 'pass.json'}: unreadable: {exc}") from None
-    n_blocks = meta.get("n_blocks")
-    if n_blocks is not None:
-        finished = len([i for i in run.done_blocks(name) if i < n_blocks])
-        if finished < n_blocks:
-            raise RunFolderError(
-                f"{run.path}: pass {name!r} is not finished ({finished} of {n_blocks} blocks); "
-                "rerun the command to resume it"
-            )
-    cols = columns or tuple(meta["columns"])
-    unknown = [c for c in cols if c not in meta["columns"]]
-    if unknown:
-        raise KeyError(f"pass {name!r} has no statistic {unknown[0]!r}; it has {meta['columns']}")
-    group = zarr.open_group(d / "stats", mode="r")
-    return {c: np.asarray(group[c][start:stop]) for c in cols}
 
 
 __all__ = [

@@ -1,14 +1,7 @@
 """The run folder: manifest, lock, per-pass statistics and block completion markers.
 
-Layout::
-
-    RUN/
-      manifest.json                 config, dataset fingerprint, versions, state and timings of each pass
-      .lock                         flock-ed while a process works on the folder (pid, host, start time)
-      passes/NAME/pass.json         the pass's input token and statistic names
-      passes/NAME/stats/            Zarr v3 group: one (n_features,) float64 array per statistic, chunked like X
-      passes/NAME/done/BLOCK.json   completion marker of one block: written after its statistics
-      ranking.tsv, model.tsv, ...   final tables, written to a temporary name and renamed
+The layout (where each file lives) is `widescreen.schema.RunLayout`; this module holds the lock, the
+manifest's reading and writing, and atomic writes.
 
 Every file that exists is complete: JSON and tables go through `atomic_write`, and a block counts as
 finished only when its marker exists, which is written after its statistics.
@@ -27,9 +20,7 @@ from pathlib import Path
 
 import numpy as np
 
-
-class RunFolderError(RuntimeError):
-    """The run folder cannot be used as asked: held by another process, or made by another config."""
+from ..schema import RunFolderError, RunLayout
 
 
 def atomic_write(path: Path, data: str | bytes, *, sync: bool = True) -> None:
@@ -168,14 +159,15 @@ class RunFolder:
 
     def __init__(self, path: str | os.PathLike) -> None:
         self.path = Path(path)
+        self.layout = RunLayout(self.path)
 
     @property
     def manifest_path(self) -> Path:
-        return self.path / "manifest.json"
+        return self.layout.manifest
 
     def lock(self) -> RunLock:
         self.path.mkdir(parents=True, exist_ok=True)
-        return RunLock(self.path / ".lock")
+        return RunLock(self.layout.lock)
 
     def read_manifest(self) -> dict | None:
         if not self.manifest_path.exists():
@@ -192,19 +184,16 @@ class RunFolder:
         )
 
     def pass_dir(self, name: str) -> Path:
-        return self.path / "passes" / name
+        return self.layout.pass_(name).root
 
     def marker(self, pass_name: str, block: int) -> Path:
-        return self.pass_dir(pass_name) / "done" / f"{block}.json"
+        return self.layout.pass_(pass_name).marker(block)
 
     def done_blocks(self, pass_name: str) -> set[int]:
-        d = self.pass_dir(pass_name) / "done"
-        if not d.is_dir():
-            return set()
-        return {int(p.stem) for p in d.glob("*.json") if p.stem.isdigit()}
+        return self.layout.pass_(pass_name).done_blocks()
 
     def write_table(self, name: str, text: str) -> Path:
-        path = self.path / name
+        path = self.layout.table(name)
         atomic_write(path, text)
         return path
 

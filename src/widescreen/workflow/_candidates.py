@@ -17,6 +17,7 @@ from typing import Any
 import numpy as np
 
 from ..engine import FeatureFilter, PassResult, PassSpec, RunFolder, read_stats, run_pass
+from ..schema import read_stats_at
 from ._problem import Problem
 from ._split import fetch_prepared, intersect_ranked
 from ._thresholds import ThresholdRule, bh_cutoff_blocks, bonferroni_cutoff, permutation_cutoff
@@ -159,8 +160,6 @@ def stats_at(run: RunFolder | None, result: PassResult, index: np.ndarray) -> di
     """Every recorded statistic of a pass at the given features (from memory or the run folder)."""
     if run is None:
         return {c: v[index] for c, v in (result.stats or {}).items()}
-    from ._screen import read_stats_at
-
     return read_stats_at(run, result.name, np.asarray(index, dtype=np.int64))
 
 

@@ -10,9 +10,10 @@ import numpy as np
 
 from ..engine._pass import FeatureFilter, PassResult, PassSpec, read_stats, run_pass
 from ..engine._runfolder import RunFolder
-from ..report._tables import tsv
+from ..schema import RANKING
 from ._problem import Problem, load_problem, shortlist_size
 from ._session import open_session
+from ._tables import ranking_text
 
 
 @dataclass(frozen=True)
@@ -120,58 +121,6 @@ def screen_spec(
     )
 
 
-def ranking_columns(
-    problem: Problem,
-    run: RunFolder | None,
-    result: PassResult,
-    name: str,
-    index: np.ndarray,
-    score: np.ndarray,
-) -> dict[str, np.ndarray]:
-    """The ranking table's columns for the given features (strongest first)."""
-    fam = problem.family
-    cols: dict[str, np.ndarray] = {
-        "feature": problem.feature_ids(index),
-        "rank": np.arange(1, index.size + 1),
-        "score": score,
-    }
-    if run is not None:
-        stats = read_stats_at(run, name, index)
-    else:
-        stats = {c: v[index] for c, v in result.stats.items()}
-    for c in fam.columns:
-        if c != "score":
-            cols[c] = stats[c]
-    cols["missing_rate"] = stats["missing_rate"]
-    if problem.source.value_kind == "dosage":
-        cols["allele_freq"] = stats["mean"] / 2.0
-    ds = getattr(problem.source, "dataset", None)
-    ann = ds.annotations_at(index) if ds is not None else None
-    if ann is not None:
-        cols["chrom"] = ann["chrom"]
-        cols["pos"] = ann["pos"]
-    cols["index"] = index
-    return cols
-
-
-def read_stats_at(run: RunFolder, name: str, index: np.ndarray) -> dict[str, np.ndarray]:
-    import zarr
-
-    group = zarr.open_group(run.pass_dir(name) / "stats", mode="r")
-    order = np.argsort(index)
-    out = {}
-    for c in group.array_keys():
-        vals = (
-            np.asarray(group[c].get_coordinate_selection(index[order]))
-            if index.size
-            else np.empty(0)
-        )
-        back = np.empty_like(vals)
-        back[order] = vals
-        out[c] = back
-    return out
-
-
 def screen(
     store: str | os.PathLike,
     outcome: str | os.PathLike,
@@ -220,12 +169,13 @@ def screen(
         )
         session.record_pass("screen", result.summary())
         top = result.topk
-        cols = ranking_columns(problem, session.run, result, "screen", top.index, top.score)
-        session.run.write_table("ranking.tsv", tsv(cols))
+        shortlisted = np.arange(top.index.size) < keep
+        text = ranking_text(problem, session.run, result, top.index, top.score, shortlisted)
+        session.run.write_table(RANKING.file, text)
         session.finish(seconds_total=round(time.perf_counter() - t0, 3))
         return ScreenResult(
             index=top.index[:keep],
-            feature_ids=cols["feature"][:keep],
+            feature_ids=problem.feature_ids(top.index[:keep]),
             score=top.score[:keep],
             values=None if top.values is None else top.values[:, :keep],
             pass_result=result,

@@ -1,0 +1,100 @@
+"""The run folder's schema: where things live, what its JSON records hold, the columns of its tables.
+
+The one place the engine, the workflow and the report learn the run folder from:
+
+- `RunLayout` / `PassLayout`: every path (manifest, passes, statistics chunks, markers, tables).
+- Typed records with ``to_dict`` / ``from_dict``: `PassMeta` (pass.json), `PassSummary`,
+  `FitRecord` and `PathRecord`, `IterationRecord`, `ModelRecord`, `SessionRecord`, and
+  `ManifestRecord` for the whole manifest.
+- Table specs (`RANKING`, `MODEL`, `ITERATIONS`, `ENTRIES`, `STATS`): name, dtype and meaning of each
+  column; `format_table` writes them, `read_table` reads them into pandas with those dtypes.
+- `PassStats`: a pass's statistics by range or at coordinates; `stats_frame` joins the feature ids.
+
+Imports only numpy here; zarr and pandas load when statistics or typed tables are read.
+"""
+
+from ._layout import PassLayout, RunFolderError, RunLayout
+from ._records import (
+    FitRecord,
+    IterationRecord,
+    ManifestRecord,
+    ModelRecord,
+    PassMeta,
+    PassSummary,
+    PathRecord,
+    SessionRecord,
+)
+from ._stats import (
+    PassStats,
+    create_stats,
+    read_pass_meta,
+    read_stats,
+    read_stats_at,
+    stats_chunk_bytes,
+    stats_frame,
+)
+from ._tables import (
+    ENTRIES,
+    FIT_SLOT,
+    ITERATION_SLOT,
+    ITERATIONS,
+    MODEL,
+    RANKING,
+    STATISTICS,
+    STATISTICS_SLOT,
+    STATS,
+    TABLES,
+    Column,
+    Slot,
+    TableSpec,
+    format_table,
+    format_value,
+    pandas_dtypes,
+    read_table,
+    read_tsv,
+    statistic_column,
+    statistic_columns,
+    tsv,
+)
+
+__all__ = [
+    "ENTRIES",
+    "FIT_SLOT",
+    "ITERATIONS",
+    "ITERATION_SLOT",
+    "MODEL",
+    "RANKING",
+    "STATISTICS",
+    "STATISTICS_SLOT",
+    "STATS",
+    "TABLES",
+    "Column",
+    "FitRecord",
+    "IterationRecord",
+    "ManifestRecord",
+    "ModelRecord",
+    "PassLayout",
+    "PassMeta",
+    "PassStats",
+    "PassSummary",
+    "PathRecord",
+    "RunFolderError",
+    "RunLayout",
+    "SessionRecord",
+    "Slot",
+    "TableSpec",
+    "create_stats",
+    "format_table",
+    "format_value",
+    "pandas_dtypes",
+    "read_pass_meta",
+    "read_stats",
+    "read_stats_at",
+    "read_table",
+    "read_tsv",
+    "statistic_column",
+    "statistic_columns",
+    "stats_chunk_bytes",
+    "stats_frame",
+    "tsv",
+]

@@ -1,0 +1,114 @@
+"""Where everything lives in a run folder.
+
+Layout::
+
+    RUN/
+      manifest.json                 config, dataset fingerprint, versions, sessions, passes, iterations
+      .lock                         flock-ed while a process works on the folder
+      passes/NAME/pass.json         the pass's input token, statistic names and block plan (`PassMeta`)
+      passes/NAME/stats/            Zarr v3 group: one (n_features,) float64 array per statistic,
+                                    one uncompressed chunk per block, element j = the store's feature j
+      passes/NAME/stats/COL/c/BLOCK the chunk file of one block of one statistic
+      passes/NAME/done/BLOCK.json   completion marker of one block (`BlockMarker`), after its statistics
+      passes/NAME/done/BLOCK.kept.npz  stored values of the block's top-k columns, before the marker
+      ranking.tsv, model.tsv, iterations.tsv, entries.tsv   the tables (`widescreen.schema.TABLES`)
+      report.html, figures/NAME.png the report
+
+Only this module spells these paths; the engine, the workflow and the report ask it.
+"""
+
+from __future__ import annotations
+
+import os
+from dataclasses import dataclass
+from pathlib import Path
+
+
+class RunFolderError(RuntimeError):
+    """The run folder cannot be used as asked: held by another process, made by another config, or
+    missing what was asked of it (the message names the folder or file)."""
+
+
+@dataclass(frozen=True)
+class PassLayout:
+    """The folder of one pass (``RUN/passes/NAME``); also what a block task on a worker is given."""
+
+    root: Path
+
+    @property
+    def meta(self) -> Path:
+        return self.root / "pass.json"
+
+    @property
+    def stats(self) -> Path:
+        return self.root / "stats"
+
+    @property
+    def done(self) -> Path:
+        return self.root / "done"
+
+    def stats_chunk(self, column: str, block: int) -> Path:
+        """File of one block's chunk of a statistic (arrays are made with '/'-separated chunk keys)."""
+        return self.stats / column / "c" / str(block)
+
+    def marker(self, block: int) -> Path:
+        return self.done / f"{block}.json"
+
+    def kept(self, block: int) -> Path:
+        return self.done / f"{block}.kept.npz"
+
+    def done_blocks(self) -> set[int]:
+        if not self.done.is_dir():
+            return set()
+        return {int(p.stem) for p in self.done.glob("*.json") if p.stem.isdigit()}
+
+    def has_stats(self) -> bool:
+        return (self.stats / "zarr.json").is_file()
+
+
+@dataclass(frozen=True)
+class RunLayout:
+    """The paths of a run folder."""
+
+    root: Path
+
+    def __init__(self, root: str | os.PathLike) -> None:
+        object.__setattr__(self, "root", Path(root))
+
+    @property
+    def manifest(self) -> Path:
+        return self.root / "manifest.json"
+
+    @property
+    def lock(self) -> Path:
+        return self.root / ".lock"
+
+    @property
+    def passes(self) -> Path:
+        return self.root / "passes"
+
+    def pass_(self, name: str) -> PassLayout:
+        return PassLayout(self.passes / name)
+
+    def table(self, file: str) -> Path:
+        return self.root / file
+
+    @property
+    def figures(self) -> Path:
+        return self.root / "figures"
+
+    def figure(self, name: str) -> Path:
+        return self.figures / f"{name}.png"
+
+    @property
+    def report(self) -> Path:
+        return self.root / "report.html"
+
+    def pass_names(self) -> list[str]:
+        """Passes that hold a statistics group, sorted by name."""
+        if not self.passes.is_dir():
+            return []
+        return sorted(p.name for p in self.passes.iterdir() if PassLayout(p).has_stats())
+
+
+__all__ = ["PassLayout", "RunFolderError", "RunLayout"]

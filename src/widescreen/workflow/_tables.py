@@ -1,0 +1,235 @@
+"""The tables of a run folder, built from a workflow's results to the schemas of `widescreen.schema`.
+
+``ranking.tsv`` (screen and run), ``model.tsv``, ``iterations.tsv`` and ``entries.tsv`` (run). Every
+column, its dtype and meaning is in `widescreen.schema` (and the README); this module only gathers the
+values.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+
+from ..schema import (
+    ENTRIES,
+    ITERATIONS,
+    MODEL,
+    RANKING,
+    FitRecord,
+    IterationRecord,
+    ModelRecord,
+    format_table,
+    read_stats_at,
+    statistic_columns,
+)
+from ._problem import Problem
+
+#: Extension point: `model.tsv` columns of the fit beyond ``coefficient`` (`widescreen.schema.FIT_SLOT`),
+#: as (Column, function of the IterativeResult giving one value per selected feature, in store order).
+MODEL_FIT_COLUMNS: tuple = ()
+
+
+def _annotations(problem: Problem, index: np.ndarray) -> tuple[list, list]:
+    """Chromosome and position of the given features (None where the store has no annotations)."""
+    ds = getattr(problem.source, "dataset", None)
+    ann = ds.annotations_at(index) if ds is not None else None
+    if ann is None:
+        return [None] * index.size, [None] * index.size
+    return [str(c) for c in ann["chrom"]], [int(p) for p in ann["pos"]]
+
+
+def _allele_freq(problem: Problem, mean: np.ndarray) -> np.ndarray:
+    if problem.source.value_kind == "dosage":
+        return np.asarray(mean, dtype=np.float64) / 2.0
+    return np.full(np.shape(mean), np.nan)
+
+
+def ranking_columns(
+    problem: Problem,
+    stats: dict[str, np.ndarray],
+    index: np.ndarray,
+    score: np.ndarray,
+    shortlisted: np.ndarray,
+) -> dict[str, object]:
+    """The columns of ``ranking.tsv`` for the given features, strongest first.
+
+    Parameters
+    ----------
+    problem : Problem
+    stats : dict of str -> ndarray of shape (k,)
+        The pass's statistics at ``index`` (every family column, ``missing_rate`` and ``mean``).
+    index : ndarray of int of shape (k,)
+    score : ndarray of shape (k,)
+    shortlisted : ndarray of bool of shape (k,)
+    """
+    fam = problem.family
+    chrom, pos = _annotations(problem, index)
+    cols: dict[str, object] = {
+        "feature": problem.feature_ids(index),
+        "rank": np.arange(1, index.size + 1),
+        "score": score,
+    }
+    for c in statistic_columns(fam.columns):
+        cols[c.name] = stats[c.name]
+    cols.update(
+        missing_rate=stats["missing_rate"],
+        mean=stats["mean"],
+        allele_freq=_allele_freq(problem, stats["mean"]),
+        chrom=chrom,
+        pos=pos,
+        index=index,
+        shortlisted=np.asarray(shortlisted, dtype=bool),
+    )
+    return cols
+
+
+def ranking_text(
+    problem: Problem,
+    run,
+    pass_result,
+    index: np.ndarray,
+    score: np.ndarray,
+    shortlisted: np.ndarray,
+) -> str:
+    """``ranking.tsv`` of a pass (statistics from the run folder, or in memory without one)."""
+    if run is not None:
+        stats = read_stats_at(run, pass_result.name, index)
+    else:
+        stats = {c: v[index] for c, v in pass_result.stats.items()}
+    cols = ranking_columns(problem, stats, index, score, shortlisted)
+    return format_table(RANKING, cols, statistics=statistic_columns(problem.family.columns))
+
+
+def model_record(result) -> ModelRecord:
+    """The final model as the manifest records it (``model``): the numbers of model.tsv."""
+    problem = result.problem
+    order = model_order(result)
+    return ModelRecord(
+        features=tuple(str(f) for f in result.feature_ids[order]),
+        index=result.index[order],
+        coefficient=result.coef[order],
+        entered=result.entered[order],
+        intercept=None if problem.family.loss == "cox" else float(result.intercept),
+        covariates=tuple(problem.covariate_names),
+        covariate_coef=np.asarray(result.covariate_coef, dtype=np.float64),
+        stop_reason=result.stop_reason,
+    )
+
+
+def model_order(result) -> np.ndarray:
+    """Selected features in model.tsv's order: earliest entry first, then strongest, then by index."""
+    return np.lexsort((result.index, -result.marginal["score"], result.entered))
+
+
+def model_columns(result) -> dict[str, object]:
+    """Columns of ``model.tsv``: intercept and covariate rows first, then the selected features."""
+    problem = result.problem
+    order = model_order(result)
+    # The Cox partial likelihood has no intercept: its row would only be a shift that cancels.
+    cox = problem.family.loss == "cox"
+    head = ([] if cox else ["(intercept)"]) + [f"covariate:{c}" for c in problem.covariate_names]
+    terms = ([] if cox else ["intercept"]) + ["covariate"] * len(problem.covariate_names)
+    h = len(head)
+    na = [None] * h
+    nan = [float("nan")] * h
+    index = result.index[order]
+    chrom, pos = _annotations(problem, index)
+    mean = result.mean[order]
+    cols: dict[str, object] = {
+        "feature": head + [str(f) for f in result.feature_ids[order]],
+        "term": terms + ["feature"] * index.size,
+        "coefficient": [
+            *([] if cox else [result.intercept]),
+            *np.asarray(result.covariate_coef).tolist(),
+            *result.coef[order].tolist(),
+        ],
+    }
+    for col, values in MODEL_FIT_COLUMNS:
+        cols[col.name] = nan + list(np.asarray(values(result))[order])
+    cols["entered"] = na + result.entered[order].tolist()
+    cols["score"] = nan + result.marginal["score"][order].tolist()
+    for c in statistic_columns(problem.family.columns):
+        cols[c.name] = nan + result.marginal[c.name][order].tolist()
+    cols["missing_rate"] = nan + result.marginal["missing_rate"][order].tolist()
+    cols["mean"] = nan + mean.tolist()
+    cols["allele_freq"] = nan + _allele_freq(problem, mean).tolist()
+    cols["chrom"] = na + chrom
+    cols["pos"] = na + pos
+    cols["index"] = na + index.tolist()
+    return cols
+
+
+def model_text(result) -> str:
+    return format_table(
+        MODEL,
+        model_columns(result),
+        statistics=statistic_columns(result.problem.family.columns),
+        fit=tuple(c for c, _ in MODEL_FIT_COLUMNS),
+    )
+
+
+def iterations_columns(records: list[IterationRecord], criterion: str) -> dict[str, list]:
+    """Columns of ``iterations.tsv``, one row per iteration."""
+    return {
+        "iteration": [r.iteration for r in records],
+        "passes": [",".join(r.passes) for r in records],
+        "candidates": [r.n_candidates for r in records],
+        "entered": [len(r.entered) for r in records],
+        "left": [len(r.left) for r in records],
+        "selected": [r.selected_size for r in records],
+        "refit": [r.refit for r in records],
+        "criterion": [criterion if r.refit else None for r in records],
+        "criterion_value": [r.model.criterion_value for r in records],
+        "lambda": [float("nan") if r.model.lambda_ is None else r.model.lambda_ for r in records],
+        "pass_seconds": [r.pass_seconds for r in records],
+        "fit_seconds": [r.model.seconds if r.refit else 0.0 for r in records],
+    }
+
+
+def iterations_text(records: list[IterationRecord], criterion: str) -> str:
+    return format_table(ITERATIONS, iterations_columns(records, criterion))
+
+
+def entries_columns(problem: Problem, records: list[IterationRecord]) -> dict[str, list]:
+    """Columns of ``entries.tsv``: every feature that entered or left the selected set, by iteration.
+
+    Worked out from consecutive fits (their selected store indices), so it needs nothing but the
+    iteration records.
+    """
+    cols: dict[str, list] = {
+        k: [] for k in ("iteration", "event", "feature", "index", "coefficient")
+    }
+    before = np.empty(0, dtype=np.int64)
+    for r in records:
+        fit: FitRecord = r.model
+        now = np.sort(fit.index)
+        for event, idx in (
+            ("entered", np.setdiff1d(now, before)),
+            ("left", np.setdiff1d(before, now)),
+        ):
+            if not idx.size:
+                continue
+            cols["iteration"] += [r.iteration] * idx.size
+            cols["event"] += [event] * idx.size
+            cols["feature"] += [str(f) for f in problem.feature_ids(idx)]
+            cols["index"] += idx.tolist()
+            cols["coefficient"] += fit.coefficient_of(idx).tolist()
+        before = now
+    return cols
+
+
+def entries_text(problem: Problem, records: list[IterationRecord]) -> str:
+    return format_table(ENTRIES, entries_columns(problem, records))
+
+
+__all__ = [
+    "MODEL_FIT_COLUMNS",
+    "entries_columns",
+    "entries_text",
+    "iterations_columns",
+    "iterations_text",
+    "model_columns",
+    "model_record",
+    "model_text",
+    "ranking_columns",
+    "ranking_text",
+]
