@@ -7,6 +7,7 @@ import json
 import re
 import shutil
 
+import matplotlib
 import numpy as np
 import pytest
 import zarr
@@ -20,12 +21,13 @@ from widescreen.report import (
     build_report,
     make_report,
     manhattan_plot,
+    png_bytes,
     read_tsv,
     save_png,
-    tsv,
 )
+from widescreen.schema import read_table
 from widescreen.store import DatasetWriter
-from widescreen.workflow import ScreenConfig, screen
+from widescreen.workflow import IterateConfig, ScreenConfig, run, screen
 
 from .conftest import write_outcome
 
@@ -101,8 +103,9 @@ def test_html_is_self_contained_with_cautions_and_top_feature(run_copy):
     assert html_path == run_copy / "report.html"
     html = html_path.read_text()
     ranking = read_tsv(run_copy / "ranking.tsv")
-    assert f">{ranking['feature'][0]}<" in html  # the top feature, in the table
-    assert f">{ranking['feature'][4]}<" in html and f">{ranking['feature'][5]}<" not in html
+    tables = html[html.index('id="tables"') : html.index('id="details"')]
+    assert f">{ranking['feature'][0]}<" in tables  # the top feature, in the table
+    assert f">{ranking['feature'][4]}<" in tables and f">{ranking['feature'][5]}<" not in tables
     for caution in (
         "not evidence of causation",
         "not a diagnosis",
@@ -132,53 +135,109 @@ def test_manhattan_uses_chromosomes_when_the_store_is_annotated(run_copy):
     assert (run_copy / "figures" / "manhattan.png").stat().st_size > 10_000
 
 
-def test_iterative_files_are_used_when_present_and_absent_otherwise(run_copy):
-    ranking = read_tsv(run_copy / "ranking.tsv")
-    lam = np.geomspace(1.0, 0.01, 12)
-    coefs = np.outer(np.maximum(0, 1 - lam), [0.8, -0.5, 0.1])
-    _edit_manifest(
-        run_copy,
-        fit={
-            "lambdas": lam.tolist(),
-            "coefs": coefs.tolist(),
-            "criterion_values": ((np.log(lam) + 2) ** 2).tolist(),
-            "criterion": "ebic",
-            "lambda_": float(lam[5]),
-            "features": ranking["feature"][:3].tolist(),
-        },
-    )
-    (run_copy / "iterations.tsv").write_text(
-        tsv(
-            {
-                "iteration": [1, 2],
-                "entered": [f"{ranking['feature'][0]},{ranking['feature'][1]}", ""],
-                "left": ["", ""],
-                "selected_size": [2, 2],
-            }
-        )
-    )
-    (run_copy / "model.tsv").write_text(
-        tsv(
-            {
-                "feature": ranking["feature"][:2],
-                "coefficient": [0.8, -0.5],
-                "p_value": [1e-8, 1e-6],
-            }
-        )
-    )
-    files = make_report(run_copy)
+@pytest.fixture(scope="module")
+def iterative_run(study_run):
+    """A finished run (screen, fits, conditional passes) on the same store, with a covariate."""
+    root = study_run.parent
+    rng = np.random.default_rng(8)
+    g = zarr.open_group(root / "s.zarr", mode="r")
+    ids = [str(s) for s in g["samples/id"][:]]
+    X = g["X"][:, [40, 1200, 700]].astype(float)
+    age = rng.normal(50, 10, len(ids))
+    y = 0.9 * X[:, 0] - 0.8 * X[:, 1] + 0.6 * X[:, 2] + 0.02 * age + rng.normal(size=len(ids))
+    write_outcome(root / "o2.tsv", ids, {"y": y.tolist(), "age": age.tolist()})
+    cfg = IterateConfig(response="y", covariates=("age",), shortlist=10, max_iter=2)
+    run(root / "s.zarr", root / "o2.tsv", cfg, root / "iterative")
+    return root / "iterative"
+
+
+def test_iterative_parts_come_from_the_records(iterative_run, tmp_path):
+    folder = tmp_path / "it"
+    shutil.copytree(iterative_run, folder)
+    files = make_report(folder)
     names = {p.stem for p in files.figures}
-    assert {"iterations", "lambda_path", "criterion"} <= names
-    html = files.html.read_text()
-    assert "Selected model" in html and "Iterations" in html
-    assert "diamonds: the 2 features of the selected model" in html
-    # Without the files (and the path record), the pictures of the last report are removed.
-    (run_copy / "iterations.tsv").unlink()
-    (run_copy / "model.tsv").unlink()
-    _edit_manifest(run_copy, fit=None)
-    files = make_report(run_copy)
+    assert {"manhattan", "lambda_path", "selection_trace", "criterion"} <= names
+    page = files.html.read_text()
+    model = read_table(folder / "model.tsv")
+    feats = model[model["term"] == "feature"]
+    assert f"labelled with their ids: the {len(feats)} features of the selected model" in page
+    # The summary leads: the selected features with coefficients and positions before any picture.
+    summary = page[page.index('id="summary"') : page.index('id="pictures"')]
+    for f, pos in zip(feats["feature"], feats["pos"], strict=True):
+        assert f">{f}<" in summary and f">{pos}<" in summary
+    assert "covariate:age" in summary
+    man = json.loads((folder / "manifest.json").read_text())
+    final = man["iterations"][-1]["model"]
+    assert f"iteration {man['iterations'][-1]['iteration']}" in page or not final["path"]
+    # Without the iterative records and tables, their pictures of the last report are removed.
+    for f in ("iterations.tsv", "model.tsv", "entries.tsv"):
+        (folder / f).unlink()
+    man.pop("iterations")
+    man.pop("model")
+    (folder / "manifest.json").write_text(json.dumps(man))
+    files = make_report(folder)
     assert {p.stem for p in files.figures} == {"manhattan", "qq", "score_histogram"}
-    assert not (run_copy / "figures" / "lambda_path.png").exists()
+    assert not (folder / "figures" / "lambda_path.png").exists()
+
+
+def test_a_resumed_run_shows_each_session_and_their_total(study_run, tmp_path):
+    root = study_run.parent
+    cfg = ScreenConfig(response="y", shortlist=12)
+    for _ in range(2):  # the second session resumes the finished run
+        screen(root / "s.zarr", root / "o.tsv", cfg, tmp_path / "twice")
+    man = json.loads((tmp_path / "twice" / "manifest.json").read_text())
+    secs = [s["seconds"] for s in man["sessions"]]
+    assert len(secs) == 2 and man["sessions"][1]["resumed"]
+    page = build_report(tmp_path / "twice").read_text()
+    total = sum(secs)
+    assert f"2 sessions, 1 resumed; {total:.1f} s of work in total" in page
+    runs = man["passes"]["screen"]["runs"]
+    per = ", ".join(f"{r['session'] + 1}: {r['seconds']:.2f} s" for r in runs)
+    assert f">{per}<" in page
+    assert page.count("numpy ") == 1  # versions listed once
+
+
+def test_manhattan_draws_one_line_when_bonferroni_meets_genome_wide(rng):
+    # 0.05 / 1,000,000 = 5e-8: the Bonferroni level is the genome-wide level (common practice).
+    fig = manhattan_plot(np.arange(50.0), rng.exponential(0.4, 50), n_tested=1_000_000)
+    texts = [t.get_text() for t in fig.axes[0].get_legend().get_texts()]
+    assert len([t for t in texts if "Bonferroni" in t or "genome-wide" in t]) == 1
+    assert any("Bonferroni" in t and "genome-wide" in t for t in texts)
+    fig = manhattan_plot(np.arange(50.0), rng.exponential(0.4, 50), n_tested=1500)
+    texts = [t.get_text() for t in fig.axes[0].get_legend().get_texts()]
+    assert len([t for t in texts if "Bonferroni" in t or "genome-wide" in t]) == 2
+
+
+def test_feature_ids_are_plain_text_even_with_tex_on(rng):
+    ids = np.array(["rs$1", "", "a_$b$_{c}", ""], dtype=object)
+    with matplotlib.rc_context({"text.usetex": True}):
+        fig = manhattan_plot(
+            np.arange(4.0),
+            np.array([9.0, 1.0, 8.0, 2.0]),
+            n_tested=4,
+            point_ids=ids,
+            marked=np.array([True, False, True, False]),
+        )
+        data = png_bytes(fig)  # TeX would fail on these ids (and is not installed here)
+    assert data[:8] == PNG_SIGNATURE
+    shown = {t.get_text() for t in fig.axes[0].texts}
+    assert shown == {"rs$1", "a_$b$_{c}"}
+
+
+def test_picture_colours_differ_in_lightness():
+    # Relative luminance (WCAG 2.1 definition): the categories of the Manhattan plot must stay
+    # apart when printed in grey, beside their different marker shapes.
+    from matplotlib.colors import to_rgb
+
+    from widescreen.report import _plots
+
+    def lum(c):
+        rgb = np.array(to_rgb(c))
+        lin = np.where(rgb <= 0.04045, rgb / 12.92, ((rgb + 0.055) / 1.055) ** 2.4)
+        return float(lin @ [0.2126, 0.7152, 0.0722])
+
+    shades = sorted(lum(c) for c in (*_plots.CHROM_COLOURS, _plots.HIGHLIGHT, _plots.MODEL))
+    assert min(np.diff(shades)) > 0.03
 
 
 def test_an_unfinished_run_is_refused(run_copy, tmp_path):

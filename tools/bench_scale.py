@@ -38,6 +38,8 @@ from pathlib import Path
 
 import numpy as np
 
+from widescreen.schema import ManifestRecord, RunLayout, read_pass_meta
+
 BUILD_WIDTH = 8192
 
 WARM_UP = r"""
@@ -161,37 +163,37 @@ def resume_after_kill(store: Path, out: Path, at: float) -> dict:
     shutil.rmtree(out, ignore_errors=True)
     cmd = [sys.executable, "-c", SCREEN_CHILD, str(store), _outcome(store), str(out)]
     proc = subprocess.Popen(cmd, stdout=subprocess.DEVNULL, stderr=subprocess.PIPE)
-    done = out / "passes" / "screen" / "done"
-    meta = out / "passes" / "screen" / "pass.json"
+    layout = RunLayout(out).pass_("screen")
     t0 = time.perf_counter()
     while True:
         if proc.poll() is not None:
             raise RuntimeError(
                 f"the screen ended before it was killed: {proc.stderr.read()[-2000:]}"
             )
-        if meta.exists() and done.is_dir():
-            n_blocks = json.loads(meta.read_text())["n_blocks"]
-            if len(list(done.glob("*.json"))) >= at * n_blocks:
+        meta = read_pass_meta(layout)
+        if meta is not None and layout.done.is_dir():
+            n_blocks = meta.n_blocks
+            if len(layout.done_blocks()) >= at * n_blocks:
                 break
         time.sleep(0.05)
     proc.send_signal(signal.SIGKILL)
     proc.wait()
     proc.stderr.close()
     killed_after = time.perf_counter() - t0
-    left = len(list(done.glob("*.json")))
+    left = len(layout.done_blocks())
     t1 = time.perf_counter()
     rerun = subprocess.run(cmd, capture_output=True, text=True, check=False)
     if rerun.returncode != 0:
         raise RuntimeError(f"the resumed screen failed: {rerun.stderr[-2000:]}")
     rec = json.loads(rerun.stdout.strip().splitlines()[-1])
     rec["wall"] = time.perf_counter() - t1
-    man = json.loads((out / "manifest.json").read_text())
+    man = ManifestRecord.from_dict(json.loads(RunLayout(out).manifest.read_text()))
     return {
         "n_blocks": n_blocks,
         "markers_at_kill": left,
         "killed_after": killed_after,
         "resumed": rec,
-        "manifest_runs": man["passes"]["screen"]["runs"],
+        "manifest_runs": [r.to_dict() for r in man.passes["screen"].runs],
     }
 
 

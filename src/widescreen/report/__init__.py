@@ -21,6 +21,7 @@ _LAZY = {
     "qq_plot": "._plots",
     "save_png": "._plots",
     "score_histogram": "._plots",
+    "selection_trace_plot": "._plots",
     "lambda_gc": "._stats",
     "qq_points": "._stats",
     "thin_mask": "._stats",
@@ -52,6 +53,7 @@ __all__ = [
     "read_tsv",
     "save_png",
     "score_histogram",
+    "selection_trace_plot",
     "thin_mask",
     "tsv",
 ]

@@ -1,9 +1,9 @@
 """Build the report of a finished run: figures into ``RUN/figures/``, one page ``RUN/report.html``.
 
-Reads only what the run folder holds (the manifest, the tables, the statistics of the marginal pass)
-and, when it is still where the manifest says and unchanged, the chromosome and position annotations
-of the store. Files of the iterative workflow (``iterations.tsv``, ``model.tsv``, a lambda path in the
-manifest) are used when present and skipped when not.
+Reads only what the run folder holds, through `widescreen.schema` (the manifest as typed records, the
+tables with their dtypes, the statistics of the marginal pass by range) and, when it is still where
+the manifest says and unchanged, the chromosome and position annotations of the store. The parts of
+the iterative workflow (model.tsv, iterations, lambda paths) are used when present.
 """
 
 from __future__ import annotations
@@ -15,19 +15,32 @@ from pathlib import Path
 import numpy as np
 
 from ..engine._runfolder import RunFolder, atomic_write
+from ..schema import (
+    MODEL,
+    RANKING,
+    FitRecord,
+    IterationRecord,
+    ManifestRecord,
+    PassStats,
+    RunLayout,
+    read_table,
+)
 from . import _plots
 from ._scan import Counts, PValueScan, RankSelector, ScoreHistogram, scan
-from ._stats import lambda_from_middle, order_band, qq_from_histogram
-from ._tables import read_tsv
+from ._stats import GENOME_WIDE, lambda_from_middle, order_band, qq_from_histogram
 
 FIGURE_NAMES = (
     "manhattan",
     "qq",
     "score_histogram",
-    "iterations",
     "lambda_path",
+    "selection_trace",
+    "iterations",
     "criterion",
 )
+
+#: Features labelled in the Manhattan plot of a screen (the strongest of the shortlist).
+SCREEN_LABELS = 10
 
 
 class ReportError(ValueError):
@@ -36,12 +49,13 @@ class ReportError(ValueError):
 
 @dataclass(frozen=True)
 class FigureRecord:
-    """One picture of the report: file name stem, title, caption and the PNG bytes."""
+    """One picture of the report: file name stem, title, caption, alt text and the PNG bytes."""
 
     name: str
     title: str
     caption: str
     png: bytes
+    alt: str = ""
 
 
 @dataclass(frozen=True)
@@ -65,19 +79,27 @@ class ReportFiles:
 
 @dataclass
 class RunSummary:
-    """Everything the page shows, gathered from the run folder."""
+    """Everything the page shows, gathered from the run folder.
+
+    ``ranking``, ``model``, ``iterations`` and ``entries`` are pandas DataFrames with the schema's
+    dtypes (None when the run has no such table); ``record`` is the manifest as typed records.
+    """
 
     path: Path
     manifest: dict
+    record: ManifestRecord
     pass_name: str | None
-    ranking: dict[str, np.ndarray] | None
-    model: dict[str, np.ndarray] | None
-    iterations: dict[str, np.ndarray] | None
+    ranking: object | None
+    model: object | None
+    iterations: object | None
+    entries: object | None
     top: int
     lambda_gc: float | None = None
     counts: dict[str, int] = field(default_factory=dict)
     figures: list[FigureRecord] = field(default_factory=list)
     notes: list[str] = field(default_factory=list)
+    cautions: list[str] = field(default_factory=list)
+    model_rows: object | None = None
 
 
 # --------------------------------------------------------------------------------------------
@@ -103,58 +125,45 @@ def open_finished_run(run_dir: str | os.PathLike) -> tuple[RunFolder, dict]:
     return run, manifest
 
 
-def _table(path: Path) -> dict[str, np.ndarray] | None:
-    return read_tsv(path) if path.is_file() else None
+def _table(layout: RunLayout, file: str):
+    path = layout.table(file)
+    return read_table(path) if path.is_file() else None
 
 
 def marginal_pass(run: RunFolder) -> str | None:
     """Name of the marginal screening pass: ``screen``, else ``iter1``, else the first pass found."""
-    root = run.path / "passes"
-    if not root.is_dir():
-        return None
-    names = sorted(p.name for p in root.iterdir() if (p / "stats" / "zarr.json").is_file())
+    names = RunLayout(run.path).pass_names()
     for preferred in ("screen", "iter1"):
         if preferred in names:
             return preferred
     return names[0] if names else None
 
 
-def _ints(col: np.ndarray) -> np.ndarray:
-    try:
-        return col.astype(np.int64)
-    except ValueError:
-        return np.empty(0, np.int64)
-
-
-def _floats(col: np.ndarray) -> np.ndarray:
-    out = np.full(col.shape, np.nan)
-    ok = ~np.isin(col, ["", "NA", "nan"])
-    try:
-        out[ok] = col[ok].astype(np.float64)
-    except ValueError:
-        return np.full(col.shape, np.nan)
-    return out
-
-
 def shortlist_index(summary: RunSummary) -> np.ndarray:
+    """Store indices of the shortlist: the rows of ranking.tsv marked ``shortlisted``."""
     r = summary.ranking
     if r is None or "index" not in r:
         return np.empty(0, np.int64)
-    d = int(summary.manifest.get("shortlist_size", r["index"].size))
-    return _ints(r["index"][:d])
+    if "shortlisted" in r:
+        return r.loc[r["shortlisted"], "index"].to_numpy(np.int64)
+    d = summary.record.shortlist or len(r)
+    return r["index"].to_numpy(np.int64)[:d]
+
+
+def model_features(summary: RunSummary):
+    """The feature rows of model.tsv (None without a model)."""
+    m = summary.model
+    if m is None:
+        return None
+    return m[m["term"] == "feature"] if "term" in m else m[m["index"].notna()]
 
 
 def model_index(summary: RunSummary) -> np.ndarray:
-    """Store indices of the model's features: its ``index`` column, or its names looked up in the ranking."""
-    m, r = summary.model, summary.ranking
-    if m is None:
+    """Store indices of the model's features."""
+    f = model_features(summary)
+    if f is None or "index" not in f:
         return np.empty(0, np.int64)
-    if "index" in m:
-        return _ints(m["index"])
-    if "feature" in m and r is not None and "feature" in r and "index" in r:
-        where = dict(zip(r["feature"].tolist(), _ints(r["index"]).tolist(), strict=False))
-        return np.array([where[f] for f in m["feature"].tolist() if f in where], dtype=np.int64)
-    return np.empty(0, np.int64)
+    return f["index"].to_numpy(np.int64)
 
 
 def store_annotations(manifest: dict, n_features: int, notes: list[str]):
@@ -179,70 +188,22 @@ def store_annotations(manifest: dict, n_features: int, notes: list[str]):
     return g["features/chrom"], g["features/pos"]
 
 
-def find_path_record(obj) -> dict | None:
-    """The last record in the manifest that holds a lambda path.
-
-    That is a dict with a ``lambdas`` list and beside it ``coefs`` or ``criterion_values`` (a bare
-    list of lambdas, such as a configured grid, is not a path).
-    """
-    found = None
-    if isinstance(obj, dict):
-        lam = obj.get("lambdas")
-        has_path = any(
-            isinstance(obj.get(k), list)
-            for k in ("coefs", "coef_path", "criterion_values", "criterion_path")
-        )
-        if isinstance(lam, list) and len(lam) >= 2 and has_path:
-            found = obj
-        for v in obj.values():
-            found = find_path_record(v) or found
-    elif isinstance(obj, list):
-        for v in obj:
-            found = find_path_record(v) or found
-    return found
-
-
-def _first(d: dict, *keys):
-    for k in keys:
-        if d.get(k) is not None:
-            return d[k]
+def final_fit(summary: RunSummary) -> tuple[IterationRecord, FitRecord] | None:
+    """The iteration whose fit is the final model (the last refit with a path)."""
+    for rec in reversed(summary.record.iterations):
+        if rec.refit and rec.model.path is not None and len(rec.model.path.lambdas) >= 2:
+            return rec, rec.model
     return None
-
-
-def _column(table: dict[str, np.ndarray], *names: str) -> np.ndarray | None:
-    norm = {k.lower().replace(" ", "_").replace("-", "_"): k for k in table}
-    for n in names:
-        if n in norm:
-            return table[norm[n]]
-    return None
-
-
-def _count_or_number(col: np.ndarray) -> np.ndarray:
-    """Numbers as they are; a list of feature names (comma, semicolon or space separated) as its length."""
-    nums = _floats(col)
-    if np.all(np.isfinite(nums) | np.isin(col, ["", "NA"])):
-        return np.nan_to_num(nums)
-    return np.array(
-        [
-            0
-            if s in ("", "NA", "-")
-            else len([t for t in s.replace(";", ",").split(",") if t.strip()])
-            for s in col.tolist()
-        ],
-        dtype=float,
-    )
 
 
 # --------------------------------------------------------------------------------------------
-# The figures
+# The figures of the statistics
 
 
 def _stats_figures(summary: RunSummary, run: RunFolder, *, threshold: float, max_points: int):
-    import zarr
-
-    group = zarr.open_group(run.pass_dir(summary.pass_name) / "stats", mode="r")
-    names = set(group.array_keys())
-    n = int(group["score"].shape[0]) if "score" in names else 0
+    stats = PassStats(run.path, summary.pass_name)
+    names = set(stats.columns)
+    n = stats.n_features
     shortlist = shortlist_index(summary)
     in_model = model_index(summary)
     counts = Counts()
@@ -256,7 +217,7 @@ def _stats_figures(summary: RunSummary, run: RunFolder, *, threshold: float, max
     if "score" in names:
         hist = ScoreHistogram()
         accs.append(hist)
-    scan(group, accs)
+    scan(stats, accs)
     summary.counts.update(
         features=counts.features, filtered=counts.filtered, untested=counts.untested
     )
@@ -269,12 +230,22 @@ def _stats_figures(summary: RunSummary, run: RunFolder, *, threshold: float, max
         summary.figures.append(_score_histogram(summary, hist, shortlist.size))
 
 
+def _ids_of(summary: RunSummary) -> dict[int, str]:
+    """Feature id of each store index the tables name (shortlist and model)."""
+    out: dict[int, str] = {}
+    for t in (summary.ranking, model_features(summary)):
+        if t is not None and "index" in t and "feature" in t:
+            out.update(zip(t["index"].astype("int64").tolist(), t["feature"].tolist(), strict=True))
+    return out
+
+
 def _manhattan(summary, pscan: PValueScan, shortlist, in_model) -> FigureRecord:
     pts = pscan.points()
     n_below = pscan.n_tested - pscan.n_above
     drawn_below = int((~pts["above"]).sum())
     if pscan.fraction >= 1.0:
         how = f"All {pscan.n_tested:,} tested features are drawn."
+        short_note = None
     else:
         how = (
             f"Every tested feature with -log10 p >= {pscan.threshold:g} is drawn "
@@ -282,6 +253,11 @@ def _manhattan(summary, pscan: PValueScan, shortlist, in_model) -> FigureRecord:
             f"(each with probability {pscan.fraction:.2%} + (1 - {pscan.fraction:.2%}) "
             f"10^(y - {pscan.threshold:g}) at height y, so the density has no step at the "
             "threshold) and the shortlisted ones."
+        )
+        short_note = (
+            f"Thinned for drawing: all {pscan.n_above:,} features with -log10 p >= "
+            f"{pscan.threshold:g} are shown, and {drawn_below:,} of the {n_below:,} below it "
+            "(chosen at random, denser near the cut)."
         )
     kw = {}
     if "chrom" in pts and pscan.chroms is not None:
@@ -293,28 +269,57 @@ def _manhattan(summary, pscan: PValueScan, shortlist, in_model) -> FigureRecord:
     else:
         x = pts["index"].astype(float)
         where = "by feature index in the store (the store has no chromosome/position annotations)"
+    ids_of = _ids_of(summary)
+    marked = np.isin(pts["index"], in_model)
+    to_label = marked
+    if not in_model.size:  # a screen: label the strongest of the shortlist
+        top = shortlist[:SCREEN_LABELS]
+        to_label = np.isin(pts["index"], top)
+    point_ids = np.full(pts["index"].size, "", dtype=object)
+    point_ids[to_label] = [ids_of.get(int(i), str(i)) for i in pts["index"][to_label]]
     fig = _plots.manhattan_plot(
         x,
         pts["y"],
         n_tested=pscan.n_tested,
         highlight=np.isin(pts["index"], shortlist),
-        marked=np.isin(pts["index"], in_model),
-        note=how,
+        marked=marked,
+        point_ids=point_ids,
+        note=short_note,
         **kw,
     )
-    caption = (
-        f"-log10 p of the marginal screen, {where}. {how} Orange: the {shortlist.size} shortlisted "
-        "features"
+    bonf = 0.05 / pscan.n_tested if pscan.n_tested else None
+    merged = bonf is not None and abs(np.log10(bonf) - np.log10(GENOME_WIDE)) < _plots.MERGE_LINES
+    lines = (
+        f"One dashed line: the Bonferroni level 0.05 / {pscan.n_tested:,} tested features "
+        f"(p = {bonf:.2g}), which here nearly coincides with the usual genome-wide level p = 5e-8 "
+        "(common practice), so it stands for both."
+        if merged
+        else "Dashed line: p = 5e-8, the usual genome-wide level for common-variant studies "
+        "(common practice)"
         + (
-            f"; diamonds: the {in_model.size} features of the selected model"
-            if in_model.size
-            else ""
+            f"; dotted line: Bonferroni 0.05 / {pscan.n_tested:,} tested features (p = {bonf:.2g})."
+            if bonf
+            else "."
         )
-        + ". Dashed line: p = 5e-8, the usual genome-wide level for common-variant studies (common "
-        f"practice); dotted line: Bonferroni 0.05 / {pscan.n_tested:,} tested features. "
-        "A p-value of 0 (below the float64 range) is drawn at 307.7."
     )
-    return FigureRecord("manhattan", "Manhattan plot", caption, _plots.png_bytes(fig))
+    caption = (
+        f"-log10 p of the marginal screen, {where}. {how} Orange triangles: the "
+        f"{shortlist.size} shortlisted features"
+        + (
+            f"; blue diamonds, labelled with their ids: the {in_model.size} features of the "
+            "selected model"
+            if in_model.size
+            else f"; the strongest {min(SCREEN_LABELS, shortlist.size)} are labelled with their ids"
+        )
+        + f". {lines} A p-value of 0 (below the float64 range) is drawn at 307.7."
+    )
+    labelled = [str(v) for v in point_ids[point_ids != ""]][:8]
+    alt = (
+        f"Manhattan plot of {pscan.n_tested:,} tested features {where.split(' (')[0]}; "
+        f"highest -log10 p {float(np.max(pts['y'])) if pts['y'].size else 0:.1f}; "
+        + (f"labelled: {', '.join(labelled)}." if labelled else "no feature labelled.")
+    )
+    return FigureRecord("manhattan", "Manhattan plot", caption, _plots.png_bytes(fig), alt)
 
 
 def _qq(summary: RunSummary, pscan: PValueScan) -> FigureRecord:
@@ -339,16 +344,19 @@ def _qq(summary: RunSummary, pscan: PValueScan) -> FigureRecord:
             else ""
         )
     )
-    return FigureRecord("qq", "QQ plot", caption, _plots.png_bytes(fig))
+    alt = f"QQ plot of {qq.m:,} p-values against the uniform expectation" + (
+        f"; lambda_GC {lam:.3f}." if lam is not None else "."
+    )
+    return FigureRecord("qq", "QQ plot", caption, _plots.png_bytes(fig), alt)
 
 
 def _score_histogram(summary: RunSummary, hist: ScoreHistogram, d: int) -> FigureRecord:
     cutoff = None
     r = summary.ranking
     if r is not None and "score" in r and d:
-        scores = _floats(r["score"][:d])
+        scores = r["score"].to_numpy(np.float64)[:d]
         cutoff = float(scores[-1]) if scores.size else None
-    fam = summary.manifest.get("config", {}).get("family", "")
+    fam = summary.record.config.get("family", "")
     fig = _plots.score_histogram(
         hist.edges,
         hist.counts,
@@ -360,63 +368,115 @@ def _score_histogram(summary: RunSummary, hist: ScoreHistogram, d: int) -> Figur
         f"Screening scores of the {int(hist.counts.sum()):,} tested features (log-scaled counts); "
         "larger is stronger."
         + (
-            f" The line marks the score of the last of the {d} shortlisted features ({cutoff:.4g})."
+            f" The dashed line marks the score of the last of the {d} shortlisted features "
+            f"({cutoff:.4g})."
             if cutoff is not None
             else ""
         )
     )
-    return FigureRecord("score_histogram", "Screening scores", caption, _plots.png_bytes(fig))
+    alt = f"Histogram of the screening scores of {int(hist.counts.sum()):,} features" + (
+        f", shortlist cutoff at {cutoff:.4g}." if cutoff is not None else "."
+    )
+    return FigureRecord("score_histogram", "Screening scores", caption, _plots.png_bytes(fig), alt)
+
+
+# --------------------------------------------------------------------------------------------
+# The figures of the iterations
+
+
+def _union_ids(records) -> dict[int, str]:
+    """Feature id of every fitted store index, from the fits' paths (features align with union)."""
+    out: dict[int, str] = {}
+    for rec in records:
+        p = rec.model.path
+        if p is not None and len(p.features) == rec.model.union.size:
+            out.update(zip(rec.model.union.tolist(), p.features, strict=True))
+    return out
 
 
 def _iteration_figures(summary: RunSummary) -> None:
-    it = summary.iterations
-    if it is not None and next(iter(it.values()), np.empty(0)).size:
-        size = _column(it, "selected_size", "n_selected", "size", "selected", "model_size")
-        if size is not None:
-            step = _column(it, "iteration", "iter", "step")
-            x = _floats(step) if step is not None else np.arange(1, size.size + 1, dtype=float)
-            ent = _column(it, "entered", "n_entered", "added")
-            left = _column(it, "left", "n_left", "removed", "dropped")
-            fig = _plots.iterations_plot(
-                x,
-                _count_or_number(size),
-                entered=None if ent is None else _count_or_number(ent),
-                left=None if left is None else _count_or_number(left),
-            )
-            moves = " and the numbers of features that entered and left" if ent is not None else ""
-            caption = (
-                f"Size of the selected set after each iteration of the iterative screen{moves}."
-            )
-            summary.figures.append(
-                FigureRecord("iterations", "Iterations", caption, _plots.png_bytes(fig))
-            )
-    rec = find_path_record(summary.manifest)
-    if rec is None:
+    records = summary.record.iterations
+    if not records:
         return
-    lam = np.asarray(rec["lambdas"], dtype=float)
-    chosen = _first(rec, "lambda_", "lambda", "chosen_lambda", "best_lambda", "selected_lambda")
-    chosen = float(chosen) if isinstance(chosen, int | float) else None
-    coefs = _first(rec, "coefs", "coef_path")
-    if coefs is not None and np.asarray(coefs, float).size % max(lam.size, 1) == 0:
-        names = _first(rec, "features", "feature_ids", "names")
-        fig = _plots.lambda_path_plot(lam, np.asarray(coefs, float), chosen=chosen, names=names)
+    it = np.array([r.iteration for r in records])
+    ids = {**_union_ids(records), **_ids_of(summary)}
+    final = set(model_index(summary).tolist())
+    ever = sorted(
+        {int(i) for r in records for i in r.model.index},
+        key=lambda i: (min(r.iteration for r in records if i in r.model.index), ids.get(i, "")),
+    )
+    if ever:
+        member = np.array([[i in set(r.model.index.tolist()) for r in records] for i in ever])
+        names = [ids.get(i, f"index {i}") for i in ever]
+        fig = _plots.selection_trace_plot(
+            names, it, member, final=np.array([i in final for i in ever])
+        )
+        moves = sum(len(r.entered) + len(r.left) for r in records)
         summary.figures.append(
             FigureRecord(
-                "lambda_path",
-                "Coefficient path",
-                "Coefficients of the penalised refit on the "
-                "shortlist along the lambda path; the dashed line is the chosen lambda.",
+                "selection_trace",
+                "Entries and exits",
+                "Each row is a feature that was ever in the selected set (final model in bold), "
+                "each column an iteration: a square while it is in the set, a triangle where it "
+                "entered, a cross where it left (entries.tsv lists the same events).",
                 _plots.png_bytes(fig),
+                f"Trace of {len(ever)} features over {len(records)} iterations with {moves} "
+                f"entries and exits; final model: {', '.join(names[k] for k in range(len(ever)) if ever[k] in final)[:300]}.",
             )
         )
-    values = _first(rec, "criterion_values", "criterion_path")
-    if values is not None and len(values) == lam.size:
-        name = rec.get("criterion") if isinstance(rec.get("criterion"), str) else "criterion"
-        se = rec.get("cv_std_error")
+    if len(records) > 1:
+        fig = _plots.iterations_plot(
+            it,
+            np.array([r.selected_size for r in records]),
+            entered=np.array([len(r.entered) for r in records]),
+            left=np.array([len(r.left) for r in records]),
+        )
+        summary.figures.append(
+            FigureRecord(
+                "iterations",
+                "Iterations",
+                "Size of the selected set after each iteration of the iterative screen and the "
+                "numbers of features that entered and left.",
+                _plots.png_bytes(fig),
+                "Bar chart of the selected set's size by iteration: "
+                + ", ".join(f"{r.iteration}: {r.selected_size}" for r in records)
+                + ".",
+            )
+        )
+    found = final_fit(summary)
+    if found is None:
+        return
+    rec, fit = found
+    path = fit.path
+    lam = np.asarray(path.lambdas, dtype=float)
+    selected = [ids.get(int(i), f"index {i}") for i in fit.index]
+    fig = _plots.lambda_path_plot(
+        lam,
+        path.coefs,
+        chosen=path.lambda_,
+        names=list(path.features),
+        selected=selected,
+        title=f"Coefficient path of the final fit (iteration {rec.iteration})",
+    )
+    summary.figures.append(
+        FigureRecord(
+            "lambda_path",
+            "Coefficient path",
+            f"Coefficients of the penalised fit of iteration {rec.iteration} (the final model) on "
+            f"its {fit.union.size} features along the lambda path: the {len(selected)} selected "
+            "features in colour and named, the others grey; the dotted line is the chosen lambda.",
+            _plots.png_bytes(fig),
+            f"Coefficient paths of {fit.union.size} features against log10 lambda; selected: "
+            f"{', '.join(selected)[:300]}.",
+        )
+    )
+    if len(path.criterion_values) == lam.size:
+        name = path.criterion or "criterion"
+        se = path.extra.get("cv_std_error")
         fig = _plots.criterion_plot(
             lam,
-            np.asarray(values, float),
-            chosen=chosen,
+            np.asarray(path.criterion_values, float),
+            chosen=path.lambda_,
             name=name.upper(),
             std_error=None if se is None or len(se) != lam.size else np.asarray(se, float),
         )
@@ -424,11 +484,44 @@ def _iteration_figures(summary: RunSummary) -> None:
             FigureRecord(
                 "criterion",
                 "Tuning criterion",
-                f"The tuning criterion ({name}) along the lambda "
-                "path; the chosen lambda minimises it.",
+                f"The tuning criterion ({name}) of the final fit along the lambda path; the chosen "
+                "lambda minimises it.",
                 _plots.png_bytes(fig),
+                f"Line chart of {name.upper()} against log10 lambda, minimum at the chosen lambda.",
             )
         )
+
+
+# --------------------------------------------------------------------------------------------
+# Cautions that depend on the run
+
+
+def run_cautions(summary: RunSummary) -> list[str]:
+    """What a reader of this run's results should know beyond the general cautions."""
+    out: list[str] = []
+    lam = summary.lambda_gc
+    if lam is not None and np.isfinite(lam) and lam > 1.1:
+        out.append(
+            f"lambda_GC = {lam:.3f}: the p-values are inflated; confounding (population structure, "
+            "batch) or many small true effects; consider adjusting for more covariates."
+        )
+    elif lam is not None and np.isfinite(lam) and lam < 0.9:
+        out.append(f"lambda_GC = {lam:.3f}: the test is conservative for these data.")
+    stop = summary.record.stop_reason
+    if stop == "iteration limit":
+        out.append("The iterations reached --max-iter before the selected set settled.")
+    elif stop == "empty model":
+        out.append("The penalised fit selected no feature.")
+    elif stop and stop.startswith("cannot condition"):
+        out.append(f"The iterations stopped early: {stop}.")
+    if summary.record.config.get("split"):
+        out.append(
+            "Sample splitting: each half was screened on its own; no ranking of all samples."
+        )
+    for p in summary.record.passes.values():
+        out += list(p.notes)
+    out += [str(n) for n in summary.record.extra.get("notes", [])]
+    return out
 
 
 # --------------------------------------------------------------------------------------------
@@ -459,13 +552,16 @@ def make_report(
     if isinstance(top, bool) or not isinstance(top, int | np.integer) or top < 1:
         raise ReportError(f"The 'top' parameter must be a positive int; got {top!r}.")
     run, manifest = open_finished_run(run_dir)
+    layout = RunLayout(run.path)
     summary = RunSummary(
         path=run.path,
         manifest=manifest,
+        record=ManifestRecord.from_dict(manifest),
         pass_name=marginal_pass(run),
-        ranking=_table(run.path / "ranking.tsv"),
-        model=_table(run.path / "model.tsv"),
-        iterations=_table(run.path / "iterations.tsv"),
+        ranking=_table(layout, RANKING.file),
+        model=_table(layout, MODEL.file),
+        iterations=_table(layout, "iterations.tsv"),
+        entries=_table(layout, "entries.tsv"),
         top=int(top),
     )
     if summary.pass_name is not None:
@@ -473,19 +569,18 @@ def make_report(
     else:
         summary.notes.append("The run folder holds no per-feature statistics; no pictures of them.")
     _iteration_figures(summary)
-    fig_dir = run.path / "figures"
+    summary.cautions = run_cautions(summary)
     written = []
     for rec in summary.figures:
-        path = fig_dir / f"{rec.name}.png"
+        path = layout.figure(rec.name)
         atomic_write(path, rec.png)
         written.append(path)
     for stale in FIGURE_NAMES:  # pictures of an earlier report that this run no longer has
-        p = fig_dir / f"{stale}.png"
+        p = layout.figure(stale)
         if p not in written and p.exists():
             p.unlink()
-    html = run.path / "report.html"
-    atomic_write(html, render_html(summary))
-    return ReportFiles(html=html, figures=tuple(written), lambda_gc=summary.lambda_gc)
+    atomic_write(layout.report, render_html(summary))
+    return ReportFiles(html=layout.report, figures=tuple(written), lambda_gc=summary.lambda_gc)
 
 
 def build_report(run_dir: str | os.PathLike, top: int = 50) -> Path:

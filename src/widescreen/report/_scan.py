@@ -1,6 +1,7 @@
 """Blockwise summaries of one pass's statistics, with memory bounded independently of p.
 
-A pass's statistics are one float64 array of shape (n_features,) per column in a Zarr group. Every
+A pass's statistics are one float64 array of shape (n_features,) per column (read through
+`widescreen.schema.PassStats`, by range). Every
 summary here is an accumulator fed block by block (update), possibly over several passes over the
 arrays (end_pass), then finished; `scan` drives a set of them with one read per block and pass.
 
@@ -46,31 +47,25 @@ class Accumulator:
         pass
 
 
-def scan(group, accumulators: list[Accumulator], block: int = BLOCK) -> None:
-    """Feed every block of the statistics group to the accumulators, pass after pass until done.
+def scan(stats, accumulators: list[Accumulator], block: int = BLOCK) -> None:
+    """Feed every block of a pass's statistics to the accumulators, pass after pass until done.
 
     Parameters
     ----------
-    group : zarr.Group
-        The pass's statistics: arrays of shape (n_features,).
+    stats : widescreen.schema.PassStats
+        The pass's statistics: arrays of shape (n_features,), read by range.
     accumulators : list of Accumulator
     block : int
         Features per block (rounded up to a multiple of the arrays' chunk length).
     """
-    names = set(group.array_keys())
-    ref = group["score"] if "score" in names else group[next(iter(sorted(names)))]
-    n = int(ref.shape[0])
-    chunk_len = int(ref.chunks[0])
-    step = max(chunk_len, -(-block // chunk_len) * chunk_len)
+    names = set(stats.columns)
     while True:
         active = [a for a in accumulators if a.wants_pass()]
         if not active:
             return
         need = {c for a in active for c in a.columns} | {"filtered", "score", "p_value"}
         need &= names
-        for start in range(0, n, step):
-            stop = min(start + step, n)
-            cols = {c: np.asarray(group[c][start:stop], dtype=np.float64) for c in need}
+        for start, stop, cols in stats.blocks(sorted(need), step=block):
             chunk = Chunk(start, stop, cols, tested_mask(cols, stop - start))
             for a in active:
                 a.update(chunk)
