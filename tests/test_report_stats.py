@@ -2,6 +2,8 @@
 
 from __future__ import annotations
 
+import json
+
 import numpy as np
 import pytest
 import zarr
@@ -17,6 +19,7 @@ from widescreen.report._stats import (
     qq_points,
     thinning_plan,
 )
+from widescreen.schema import PassMeta, PassStats, RunLayout, create_stats
 
 
 def _median_se(m: int) -> float:
@@ -47,12 +50,22 @@ def test_lambda_gc_definition_against_scipy(rng):
     assert np.isnan(lambda_gc(np.array([np.nan])))
 
 
-def _stats_group(path, cols: dict[str, np.ndarray], chunk: int):
-    g = zarr.open_group(path, mode="w")
+def _stats_group(path, cols: dict[str, np.ndarray], chunk: int) -> PassStats:
+    """A finished pass "p" in run folder ``path`` holding ``cols``, made through the schema."""
+    layout = RunLayout(path).pass_("p")
+    layout.root.mkdir(parents=True)
+    n = next(iter(cols.values())).size
+    create_stats(layout, list(cols), n, chunk)
+    g = zarr.open_group(layout.stats, mode="r+")
     for c, v in cols.items():
-        a = g.create_array(c, shape=v.shape, chunks=(chunk,), dtype="float64", fill_value=np.nan)
-        a[:] = v
-    return g
+        g[c][:] = v
+    n_blocks = -(-n // chunk)
+    layout.done.mkdir()
+    for i in range(n_blocks):
+        layout.marker(i).write_text("{}")
+    meta = PassMeta("t", tuple(cols), n_features=n, block_width=chunk, n_blocks=n_blocks)
+    layout.meta.write_text(json.dumps(meta.to_dict()))
+    return PassStats(path, "p")
 
 
 @pytest.mark.parametrize("m", [1, 2, 999, 4096])
