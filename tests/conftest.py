@@ -5,6 +5,7 @@ from __future__ import annotations
 import numpy as np
 import pytest
 
+from widescreen.families import FAMILY_NAMES
 from widescreen.store import DatasetWriter
 
 
@@ -34,3 +35,11 @@ def write_outcome(path, ids, columns: dict, order=None):
 @pytest.fixture
 def rng():
     return np.random.default_rng(12345)
+
+
+@pytest.fixture(scope="module", params=sorted(FAMILY_NAMES))
+def family_case(request, tmp_path_factory):
+    """Every registered family's small problem (see `family_kit`); shared by the tests of a module."""
+    from .family_kit import make_case
+
+    return make_case(tmp_path_factory.mktemp(f"kit-{request.param}"), request.param)

@@ -85,21 +85,7 @@ def test_selector_finds_the_strong_feature_and_keeps_the_error_contract(family, 
     assert list(sto.get_feature_names_out()) == [f"f{j}" for j in np.sort(sel.ranking_)]
 
 
-@pytest.mark.parametrize(
-    "family",
-    [
-        pytest.param(
-            f,
-            marks=pytest.mark.xfail(
-                strict=True,
-                reason="the iterative workflow runs no Gram pass before HOLP's first screen",
-            ),
-        )
-        if f == "holp"
-        else f
-        for f in FAMILIES
-    ],
-)
+@pytest.mark.parametrize("family", list(FAMILIES))
 def test_model_selects_the_strong_feature_and_predicts(family, data):
     X, ys, _, _ = data
     y = ys[family]

@@ -19,8 +19,8 @@ from widescreen.engine import (
     as_source,
     block_topk,
     build_pass,
-    fetch_columns,
     merge_all,
+    read_columns,
     read_stats,
     run_pass,
 )
@@ -176,16 +176,16 @@ def test_sub_block_width_does_not_change_the_list(data):
     np.testing.assert_allclose(a.stats["correlation"], b.stats["correlation"], rtol=1e-13, atol=0)
 
 
-def test_fetch_columns_matches_numpy(data):
+def test_read_columns_matches_numpy(data):
     X, _y, src = data
     idx = np.array([999, 0, 65, 64, 7, 500])
     rows = np.array([5, 3, 1, 80, 2, *list(range(10, 60))])
-    got = fetch_columns(src, idx, rows, sub_block=16, n_threads=2)
+    got = read_columns(src, idx, rows=rows, sub_block=16, n_threads=2).values
     xc, _, _ = _imputed(X[rows])
     np.testing.assert_allclose(got, xc[:, idx], atol=1e-12)
     assert got.flags.f_contiguous
     with pytest.raises(IndexError, match=r"0\.\.999"):
-        fetch_columns(src, np.array([1000]), None)
+        read_columns(src, np.array([1000]))
 
 
 def test_graph_names_are_deterministic(data):
@@ -263,7 +263,7 @@ def test_resume_rebuilds_kept_values_without_reading_blocks(data, tmp_path, monk
         raise AssertionError("the kept columns of reused blocks should not be read again")
 
     with monkeypatch.context() as m:
-        m.setattr(engine_pass, "fetch_columns", no_reads)
+        m.setattr(engine_pass, "read_columns", no_reads)
         res = run_pass(src, spec, run)
     assert res.blocks_reused == 14
     assert np.any(~np.isin(res.topk.index // 64, [1, 2]))  # some kept features are in reused blocks

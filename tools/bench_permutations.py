@@ -15,8 +15,7 @@ import time
 import numpy as np
 
 from widescreen.engine import PassSpec, as_source, run_pass
-from widescreen.families import get_family
-from widescreen.families._base import Response
+from widescreen.families import Response, get_family
 from widescreen.store import DatasetWriter, open_dataset
 
 

@@ -69,14 +69,14 @@ PASS_CHILD = (
     + r"""
 import json, sys, time
 from widescreen.engine import RunFolder
-from widescreen.workflow._problem import load_problem
-from widescreen.workflow._screen import ScreenConfig, screen_spec
+from widescreen.workflow import PassContext, load_problem
 store, outcome, out = sys.argv[1:4]
 t0 = time.perf_counter()
 problem = load_problem(store, outcome, response="y")
-spec = screen_spec(problem, ScreenConfig(response="y"), 100)
+ctx = PassContext(problem, run=RunFolder(out))
+spec = ctx.spec("screen", keep=100)
 t1 = time.perf_counter()
-res = run_pass(problem.source, spec, RunFolder(out))
+res = ctx.run_spec(spec)
 t2 = time.perf_counter()
 print(json.dumps({"seconds": t2 - t1, "setup": t1 - t0, "summary": res.summary(), "rss0": RSS0,
                   "maxrss": resource.getrusage(resource.RUSAGE_SELF).ru_maxrss * 1024}))

@@ -163,10 +163,9 @@ def _cpu() -> float:
 
 def measure_pass(workdir: Path, kind: str, threads: int, sub_block: int, keep_values: bool) -> dict:
     from widescreen.engine import PassSpec, StoreSource, run_pass
-    from widescreen.families import get_family
-    from widescreen.families._base import Response
+    from widescreen.families import Response, get_family
     from widescreen.store import open_dataset
-    from widescreen.workflow._problem import shortlist_size
+    from widescreen.workflow import shortlist_size
 
     ds = open_dataset(workdir / f"{kind}.store")
     source = StoreSource(ds)
@@ -175,7 +174,7 @@ def measure_pass(workdir: Path, kind: str, threads: int, sub_block: int, keep_va
     rss0 = _maxrss_mib()
     cpu0 = _cpu()
     t0 = time.perf_counter()
-    # The spec `workflow._screen.screen_spec` builds for the linear family without covariates.
+    # The spec `workflow.PassContext.spec` builds for the linear family without covariates.
     spec = PassSpec(
         name="screen",
         kernel=fam.kernel,

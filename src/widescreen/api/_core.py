@@ -2,16 +2,18 @@
 
 from __future__ import annotations
 
-from dataclasses import replace
-
 import numpy as np
 
-from ..engine._pass import PassResult, run_pass
+from ..engine import PassResult
 from ..families import Family, Response
-from ..store._outcome import JoinedOutcome, OutcomeTable
-from ..workflow._iterate import IterateConfig, IterativeResult, iterate
-from ..workflow._problem import Problem, shortlist_size
-from ..workflow._screen import ScreenConfig, screen_spec
+from ..workflow import (
+    IterateConfig,
+    IterativeResult,
+    Problem,
+    iterate,
+    screen_problem,
+    shortlist_size,
+)
 from ._inputs import Design
 
 
@@ -24,12 +26,15 @@ def make_problem(
 ) -> Problem:
     """A workflow problem over X's samples (store rows when X is a view of a store)."""
     n = design.n
-    ids = design.ids if design.ids is not None else np.arange(n).astype(str)
-    rows = np.arange(n, dtype=np.int64) if design.rows is None else design.rows
-    table = OutcomeTable(path="<array>", ids=ids, columns={})  # type: ignore[arg-type]
-    joined = JoinedOutcome(table, rows, ids, {}, np.arange(n) + 2, n, design.source.n_samples, 0)
     return Problem(
-        design.source, joined, family, response, covariates, covariate_names, design.rows
+        source=design.source,
+        family=family,
+        response=response,
+        covariates=covariates,
+        covariate_names=covariate_names,
+        rows=design.rows,
+        sample_ids=design.ids if design.ids is not None else np.arange(n).astype(str),
+        samples={"n_analysed": n, "n_store": design.source.n_samples},
     )
 
 
@@ -38,10 +43,9 @@ def screen_once(
 ) -> tuple[PassResult, int]:
     """The screening pass of `widescreen.workflow.screen` (with HOLP's Gram pass), without a run folder."""
     k = shortlist_size(shortlist, problem.n, problem.source.n_features)
-    config = ScreenConfig(response="y", family=problem.family.name, shortlist=k)
     # The selector keeps no shortlist values: transform reads the kept columns of whatever X it gets.
-    spec = replace(screen_spec(problem, config, k, scheduler=scheduler), keep_values=False)
-    return run_pass(problem.source, spec, None, scheduler=scheduler), k
+    found = screen_problem(problem, shortlist=k, keep_values=False, scheduler=scheduler)
+    return found.pass_result, k
 
 
 def iterate_once(problem: Problem, config: IterateConfig, *, scheduler=None) -> IterativeResult:

@@ -14,8 +14,9 @@ from dataclasses import dataclass
 import numpy as np
 from sklearn.utils.validation import check_array, validate_data
 
-from ..engine._source import ArraySource, BlockSource, StoreSource, as_source
-from ..store._format import MISSING_INT8, Dataset
+from ..engine import ArraySource, BlockSource, StoreSource, as_source
+from ..engine import read_columns as engine_read_columns
+from ..store._format import Dataset
 from ._view import StoreView, _positions
 
 
@@ -172,17 +173,7 @@ def read_covariates(covariates, design: Design) -> tuple[np.ndarray | None, tupl
 
 def read_columns(source: BlockSource, cols: np.ndarray) -> np.ndarray:
     """Raw values (NaN for missing) of the given columns at every source row, each block read once."""
-    out = np.empty((source.n_samples, cols.size), dtype=np.float64)
-    blocks = cols // source.block_width
-    for b in np.unique(blocks):
-        start, _ = source.bounds(int(b))
-        sel = np.flatnonzero(blocks == b)
-        raw = source.read(int(b))[:, cols[sel] - start]
-        vals = raw.astype(np.float64)
-        if raw.dtype == np.int8:
-            vals[raw == MISSING_INT8] = np.nan
-        out[:, sel] = vals
-    return out
+    return engine_read_columns(source, np.asarray(cols, dtype=np.int64), kind="float")
 
 
 __all__ = ["Design", "align", "is_out_of_core", "read_columns", "read_covariates", "read_design"]

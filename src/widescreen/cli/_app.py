@@ -39,11 +39,14 @@ app = typer.Typer(
 
 
 def _expected_errors() -> tuple[type[BaseException], ...]:
-    from ..engine._runfolder import RunFolderError
-    from ..store._format import StoreError
-    from ..store._outcome import OutcomeError
+    # A bad value in a configuration is a ConfigError (a ValueError) naming the field: one line, never
+    # reported as a bug.
+    from .._config import ConfigError
+    from ..engine import RunFolderError
+    from ..store import OutcomeError, StoreError
 
     return (
+        ConfigError,
         StoreError,
         OutcomeError,
         RunFolderError,
@@ -63,6 +66,10 @@ def friendly(fn):
             return fn(*args, **kwargs)
         except typer.Exit:
             raise
+        except typer.BadParameter as exc:
+            # A bad option value found in the command's body (typer.BadParameter): a usage error.
+            typer.echo(f"error: {exc.format_message()}", err=True)
+            raise typer.Exit(code=exc.exit_code) from None
         except KeyboardInterrupt:
             typer.echo(
                 "\ninterrupted; finished blocks are kept, rerun the same command to resume",
@@ -175,7 +182,7 @@ def screen_cmd(
         memory_budget=_budget(memory_budget),
     )
     s = result.pass_result
-    rep = result.problem.joined.report()
+    rep = result.problem.samples
     typer.echo(
         f"screened {s.n_features} features on {rep['n_analysed']} samples "
         f"({rep['n_dropped_missing']} dropped for missing values, {rep['n_unknown_ids']} unknown ids); "

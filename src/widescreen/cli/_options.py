@@ -7,6 +7,8 @@ from typing import Annotated
 
 import typer
 
+from ..families import FAMILY_NAMES
+
 DATA = "Data and filters"
 RUNNING = "Running"
 
@@ -26,7 +28,7 @@ FamilyOpt = Annotated[
     str,
     typer.Option(
         "--family",
-        help="Outcome family: linear, logistic, poisson, cox, rank, rank-utility, dcor, spline, holp.",
+        help=f"Outcome family: {', '.join(FAMILY_NAMES)}.",
         rich_help_panel=DATA,
     ),
 ]

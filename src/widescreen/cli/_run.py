@@ -154,7 +154,7 @@ def run_cmd(
         restart=restart,
         memory_budget=_budget(memory_budget),
     )
-    rep = result.problem.joined.report()
+    rep = result.problem.samples
     shown = ", ".join(str(f) for f in result.feature_ids[:10])
     more = f" and {result.index.size - 10} more" if result.index.size > 10 else ""
     typer.echo(

@@ -1,7 +1,8 @@
 """The pass engine: block sources, Dask graphs over feature blocks, checkpoints, schedulers, top-k,
 memory plans."""
 
-from ._block import fetch_columns, process_block, read_marker
+from ._block import process_block, read_marker
+from ._columns import Columns, read_columns
 from ._memory import (
     BlockShape,
     MemoryBudgetError,
@@ -12,6 +13,7 @@ from ._memory import (
     thread_bytes,
 )
 from ._pass import build_pass, read_stats, run_pass
+from ._reduce import add_tree, reduce_blocks, stream_combine, sum_arrays, tree_combine
 from ._runfolder import RunFolder, RunFolderError, RunLock, atomic_write, diff_config
 from ._scheduler import Executor, WorkerAccessError, execute, n_cores, open_executor
 from ._source import ArraySource, BlockSource, StoreSource, as_source
@@ -23,6 +25,7 @@ __all__ = [
     "ArraySource",
     "BlockShape",
     "BlockSource",
+    "Columns",
     "Executor",
     "FeatureFilter",
     "MemoryBudgetError",
@@ -35,13 +38,13 @@ __all__ = [
     "StoreSource",
     "TopK",
     "WorkerAccessError",
+    "add_tree",
     "as_source",
     "atomic_write",
     "block_topk",
     "build_pass",
     "diff_config",
     "execute",
-    "fetch_columns",
     "merge_all",
     "merge_topk",
     "n_cores",
@@ -50,8 +53,13 @@ __all__ = [
     "plan_memory",
     "process_baseline",
     "process_block",
+    "read_columns",
     "read_marker",
     "read_stats",
+    "reduce_blocks",
     "run_pass",
+    "stream_combine",
+    "sum_arrays",
     "thread_bytes",
+    "tree_combine",
 ]

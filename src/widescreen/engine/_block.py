@@ -1,4 +1,4 @@
-"""The block task of a pass, its completion marker, and reading kept columns back.
+"""The block task of a pass, its completion marker, and the kept columns beside it.
 
 A block task reads one block (a column of chunks of X), computes its statistics sub-block by
 sub-block, writes them into the pass's Zarr group, then writes its completion marker, and returns
@@ -14,14 +14,13 @@ import json
 import os
 import socket
 import time
-from concurrent.futures import ThreadPoolExecutor
 from dataclasses import replace
 from pathlib import Path
 
 import numpy as np
 
 from ..schema import PassLayout, stats_chunk_bytes
-from ..store._reader import Block, prepare_block
+from ..store import Block, prepare_block
 from ._runfolder import atomic_write
 from ._scheduler import WorkerAccessError
 from ._source import BlockSource
@@ -251,65 +250,3 @@ def read_marker(
         except OSError:
             return None
     return {**m, "topk": top}
-
-
-# --------------------------------------------------------------------------------------------
-# Kept columns
-
-
-def fetch_columns(
-    source: BlockSource,
-    index: np.ndarray,
-    rows: np.ndarray | None,
-    sub_block: int = 1024,
-    n_threads: int = 1,
-) -> np.ndarray:
-    """Imputed, centred float64 values of the given features, reading each block once.
-
-    Each column is prepared within the same sub-block as in the pass, so the values are bit-identical
-    to those the pass kept.
-
-    Parameters
-    ----------
-    source : BlockSource
-    index : ndarray of int, shape (m,)
-        Store indices of the features, in the order wanted.
-    rows : ndarray of int, optional
-        Store rows of the analysed samples.
-    sub_block : int
-    n_threads : int
-        Blocks read at once.
-
-    Returns
-    -------
-    ndarray of shape (n_analysed, m), Fortran order
-    """
-    index = np.asarray(index, dtype=np.int64)
-    n = source.n_samples if rows is None else len(rows)
-    out = np.empty((n, index.size), dtype=np.float64, order="F")
-    if index.size == 0:
-        return out
-    if index.min() < 0 or index.max() >= source.n_features:
-        raise IndexError(f"feature indices must lie in 0..{source.n_features - 1}")
-    blocks = index // source.block_width
-
-    def one(i: int) -> None:
-        start, stop = source.bounds(i)
-        raw = source.read(i)
-        sel = np.flatnonzero(blocks == i)
-        local = index[sel] - start
-        for a in np.unique(local // sub_block * sub_block):
-            b = min(int(a) + sub_block, stop - start)
-            block = prepare_block(raw[:, a:b], start + int(a), rows)
-            here = (local >= a) & (local < b)
-            out[:, sel[here]] = block.columns(local[here] - a)
-
-    todo = [int(i) for i in np.unique(blocks)]
-    if n_threads <= 1 or len(todo) == 1:
-        for i in todo:
-            one(i)
-    else:
-        # Each thread decodes into its own reused buffers; the columns written are disjoint.
-        with ThreadPoolExecutor(max_workers=n_threads) as pool:
-            list(pool.map(one, todo))
-    return out

@@ -17,14 +17,16 @@ import json
 import shutil
 import time
 from collections.abc import Callable
-from dataclasses import replace
+from dataclasses import dataclass, replace
+from functools import partial
 from pathlib import Path
 from typing import Any
 
 import numpy as np
 
 from ..schema import PassLayout, PassMeta, create_stats, read_pass_meta, read_stats
-from ._block import fetch_columns, process_block, read_kept, read_marker
+from ._block import process_block, read_kept, read_marker
+from ._columns import read_columns
 from ._memory import (
     BASELINE_BYTES,
     CLUSTER_SHARE,
@@ -34,6 +36,7 @@ from ._memory import (
     plan_memory,
     process_baseline,
 )
+from ._reduce import add_tree
 from ._runfolder import RunFolder, atomic_write
 from ._scheduler import Executor, n_cores, open_executor
 from ._source import BlockSource
@@ -41,7 +44,7 @@ from ._spec import ENGINE_COLUMNS, FeatureFilter, PassResult, PassSpec
 from ._topk import TopK, merge_all
 
 
-def _merge_records(records: list[dict], k: int, n_nulls: int) -> dict:
+def _merge_records(records: list[dict], *, k: int, n_nulls: int) -> dict:
     top = merge_all([r["topk"] for r in records], k, n_nulls)
     return {
         "topk": top,
@@ -82,19 +85,8 @@ def build_pass(
     if block_keys:
         graph[src_key] = source
         graph[spec_key] = spec
-    level, layer = 0, block_keys
-    while len(layer) > 1:
-        nxt = []
-        for j in range(0, len(layer), split_every):
-            key = (f"{name}-merge{level}", j)
-            graph[key] = (_merge_records, list(layer[j : j + split_every]), spec.keep, spec.n_nulls)
-            nxt.append(key)
-        layer, level = nxt, level + 1
-    final = layer[0] if layer else None
-    if final is not None and final in block_keys:
-        key = (f"{name}-merge0", 0)
-        graph[key] = (_merge_records, [final], spec.keep, spec.n_nulls)
-        final = key
+    merge = partial(_merge_records, k=spec.keep, n_nulls=spec.n_nulls)
+    final = add_tree(graph, block_keys, merge, f"{name}-merge", split_every)
     return graph, block_keys, final
 
 
@@ -212,21 +204,62 @@ def run_pass(
     """
     t0 = time.perf_counter()
     budget = parse_budget(memory_budget)
-    n_blocks = source.n_blocks
     if run is not None:
         # Workers may run in another working folder (or on another machine): absolute paths only.
         run = RunFolder(Path(run.path).resolve())
     source = source.absolute()
     out_dir, meta = _prepare_out_dir(run, source, spec) if run is not None else (None, None)
-    reused = []
-    if run is not None:
-        for i in sorted(run.done_blocks(spec.name)):
-            if 0 <= i < n_blocks:
-                rec = read_marker(out_dir, i, spec.keep, source.bounds(i), spec.all_columns)
-                if rec is not None:
-                    reused.append(rec)
+    reused = _reused_blocks(run, out_dir, source, spec)
     done = {r["block"] for r in reused}
-    todo = [i for i in range(n_blocks) if i not in done]
+    todo = [i for i in range(source.n_blocks) if i not in done]
+    computed = _compute_blocks(
+        source, spec, run, out_dir, meta, todo, len(done), scheduler, budget, progress
+    )
+    return _finish(source, computed, reused, out_dir, t0)
+
+
+@dataclass
+class _Computed:
+    """What the blocks computed in this call left: their merged record and how they ran."""
+
+    spec: PassSpec  # with the sub-block width chosen
+    final: dict | None  # the merged record of the computed blocks
+    blocks: list[dict]  # their records (only without a run folder: they carry the statistics)
+    n_computed: int
+    plan: MemoryPlan | None
+    notes: list[str]
+    where: str
+    fetch_threads: int
+
+
+def _reused_blocks(
+    run: RunFolder | None, out_dir: str | None, source: BlockSource, spec: PassSpec
+) -> list[dict]:
+    """Records of the blocks whose completion markers (and statistics) can be trusted."""
+    reused = []
+    if run is None:
+        return reused
+    for i in sorted(run.done_blocks(spec.name)):
+        if 0 <= i < source.n_blocks:
+            rec = read_marker(out_dir, i, spec.keep, source.bounds(i), spec.all_columns)
+            if rec is not None:
+                reused.append(rec)
+    return reused
+
+
+def _compute_blocks(
+    source: BlockSource,
+    spec: PassSpec,
+    run: RunFolder | None,
+    out_dir: str | None,
+    meta: PassMeta | None,
+    todo: list[int],
+    n_done: int,
+    scheduler: Any,
+    budget: int | None,
+    progress: Callable[[int, int], None] | None,
+) -> _Computed:
+    """Plan the memory, check the workers see the data, run the blocks still to do."""
     notes: list[str] = []
     with open_executor(scheduler, memory_budget=budget) as ex:
         sub_block, plan = _choose_sub_block(
@@ -245,25 +278,39 @@ def run_pass(
             ex.check_reachable(checks)
         graph, block_keys, final = build_pass(source, spec, todo, out_dir)
         if progress is not None:
-            progress(len(done), n_blocks)
+            progress(n_done, source.n_blocks)
         results = ex.run(
             graph,
             block_keys,
             final,
             progress=progress,
-            offset=len(done),
-            total=n_blocks,
+            offset=n_done,
+            total=source.n_blocks,
             want_blocks=out_dir is None,
         )
-        fetch_threads = ex.threads_per_worker if ex.kind == "threads" else n_cores()
-        where = ex.describe()
-    computed = results["final"]
+        return _Computed(
+            spec=spec,
+            final=results["final"],
+            blocks=results["blocks"],
+            n_computed=len(todo),
+            plan=plan,
+            notes=notes,
+            where=ex.describe(),
+            fetch_threads=ex.threads_per_worker if ex.kind == "threads" else n_cores(),
+        )
+
+
+def _finish(
+    source: BlockSource, computed: _Computed, reused: list[dict], out_dir: str | None, t0: float
+) -> PassResult:
+    """Merge the computed and reused blocks' top lists, gather statistics and kept values."""
+    spec = computed.spec
     merged = _merge_records(
-        [r for r in (computed, *reused) if r is not None], spec.keep, spec.n_nulls
+        [r for r in (computed.final, *reused) if r is not None], k=spec.keep, n_nulls=spec.n_nulls
     )
     stats = None
     if out_dir is None:
-        recs = sorted(results["blocks"], key=lambda r: r["start"])
+        recs = sorted(computed.blocks, key=lambda r: r["start"])
         stats = (
             {c: np.concatenate([r["stats"][c] for r in recs]) for c in spec.all_columns}
             if recs
@@ -272,7 +319,8 @@ def run_pass(
     t_fetch = time.perf_counter()
     top = merged["topk"]
     if top.values is None and spec.keep_values and top.index.size:
-        top = replace(top, values=_kept_values(source, spec, top, computed, out_dir, fetch_threads))
+        values = _kept_values(source, spec, top, computed.final, out_dir, computed.fetch_threads)
+        top = replace(top, values=values)
     t_fetch = time.perf_counter() - t_fetch if reused else 0.0
     return PassResult(
         name=spec.name,
@@ -282,14 +330,14 @@ def run_pass(
         n_filtered=merged["n_filtered"],
         n_constant=merged["n_constant"],
         blocks_reused=len(reused),
-        blocks_computed=len(todo),
+        blocks_computed=computed.n_computed,
         seconds=time.perf_counter() - t0,
-        sub_block=sub_block,
-        scheduler=where,
-        plan=None if plan is None else plan.to_dict(),
-        seconds_blocks=0.0 if computed is None else float(computed["busy"]),
+        sub_block=spec.sub_block,
+        scheduler=computed.where,
+        plan=None if computed.plan is None else computed.plan.to_dict(),
+        seconds_blocks=0.0 if computed.final is None else float(computed.final["busy"]),
         seconds_fetch=t_fetch,
-        notes=tuple(notes),
+        notes=tuple(computed.notes),
     )
 
 
@@ -344,9 +392,13 @@ def _kept_values(
             have[want[ok]] = True
     if not have.all():
         missing = np.flatnonzero(~have)
-        values[:, missing] = fetch_columns(
-            source, top.index[missing], spec.rows, spec.sub_block, n_threads=n_threads
-        )
+        values[:, missing] = read_columns(
+            source,
+            top.index[missing],
+            rows=spec.rows,
+            sub_block=spec.sub_block,
+            n_threads=n_threads,
+        ).values
     return values
 
 
@@ -356,7 +408,6 @@ __all__ = [
     "PassResult",
     "PassSpec",
     "build_pass",
-    "fetch_columns",
     "process_block",
     "read_stats",
     "run_pass",

@@ -14,8 +14,7 @@ from pathlib import Path
 
 import numpy as np
 
-from ..store._format import MISSING_INT8, Dataset, StoreError
-from ..store._reader import ChunkError, ChunkLayout, read_block
+from ..store import MISSING_INT8, ChunkError, ChunkLayout, Dataset, StoreError, read_block
 from ._memory import BlockShape
 
 
@@ -115,7 +114,7 @@ class StoreSource(BlockSource):
 
     def absolute(self) -> StoreSource:
         """The same source with an absolute store path (what cluster workers need)."""
-        from ..store._format import open_dataset
+        from ..store import open_dataset
 
         if self.dataset.path.is_absolute():
             return self
@@ -181,7 +180,7 @@ class ArraySource(BlockSource):
 
 def as_source(X) -> BlockSource:
     """A block source for a store, an opened Dataset, a numpy array or a Dask array."""
-    from ..store._format import open_dataset
+    from ..store import open_dataset
 
     if isinstance(X, BlockSource):
         return X

@@ -9,6 +9,7 @@ from typing import Any
 import numpy as np
 from dask.base import tokenize
 
+from .._config import check_number
 from ._source import BlockSource
 from ._topk import TopK
 
@@ -30,6 +31,10 @@ class FeatureFilter:
 
     drop_missing: float | None = None
     drop_rare: float | None = None
+
+    def __post_init__(self) -> None:
+        check_number("drop_missing", self.drop_missing, 0.0, 1.0, optional=True)
+        check_number("drop_rare", self.drop_rare, 0.0, 0.5, optional=True)
 
     def to_dict(self) -> dict:
         return {"drop_missing": self.drop_missing, "drop_rare": self.drop_rare}

@@ -1,37 +1,56 @@
-"""What a family is: one object that supplies the screening kernel, the refit loss and the conditioning rule.
+"""What a family is: the whole plug-in of an outcome type, declared in one class.
+
+A `Family` says everything a workflow needs to screen and fit its outcome, so no workflow code asks
+which family it runs:
+
+- the response: which outcome-table columns it reads (`response_columns`), how raw values are validated
+  and coded (`code`, reached from a table by `response` and from arrays by `response_from_arrays`), and
+  the response the refit takes (`refit_response`);
+- the screening kernel (`kernel`, `prepare`, `columns`, `pass_columns`) and its `pre_passes`
+  (reductions over every block needed before the screening pass, such as HOLP's Gram matrix);
+- the refit: its `loss` and whether the model has an `intercept`;
+- the iterative pass: how it conditions on the selected set (`conditioning`), and whether it scores
+  permuted responses in the same pass (`supports_permutation`).
 
 Adding a family means one new module with a `Family` subclass and one line in the registry
-(`widescreen.families.FAMILIES`).
+(`widescreen.families.FAMILIES`); the command line's help and the documentation list the registry.
 """
 
 from __future__ import annotations
 
 from abc import ABC, abstractmethod
-from dataclasses import dataclass, field
+from collections.abc import Callable
+from dataclasses import dataclass
 from typing import Any, ClassVar
 
 import numpy as np
 
-from ..store._outcome import JoinedOutcome, OutcomeError
+from ..store import JoinedOutcome, OutcomeError
+from ._response import ArrayWhere, Response, TableWhere, Where
+
+#: How an iterative pass conditions on the selected set (see `Family.conditioning`).
+CONDITIONING = ("columns", "offset", "score")
 
 
 @dataclass(frozen=True)
-class Response:
-    """A validated response, aligned with the joined samples.
+class PrePass:
+    """A reduction over every block that a family needs before its screening pass.
 
     Attributes
     ----------
-    y : ndarray of shape (n,)
-        The response (for survival: the time).
-    event : ndarray of shape (n,), optional
-        Survival only: 1 for an observed event, 0 for censoring.
-    mapping : dict, optional
-        How text labels were coded (binary outcomes given as two labels).
+    name : str
+        The keyword under which `Family.prepare` receives the result, and the pass's name in a run folder
+        (prefixed by the screening pass it serves).
+    chunk : callable (Block) -> ndarray
+        One sub-block's part (a module-level function, so it pickles to worker processes). Parts are
+        summed in float64 over a fixed tree, so the result is deterministic.
+    check : callable (n_analysed) -> None, optional
+        Refuses up front (ValueError) when the reduction cannot be done, for example for its memory.
     """
 
-    y: np.ndarray
-    event: np.ndarray | None = None
-    mapping: dict[str, Any] = field(default_factory=dict)
+    name: str
+    chunk: Callable[[Any], np.ndarray]
+    check: Callable[[int], None] | None = None
 
 
 class Family(ABC):
@@ -40,35 +59,91 @@ class Family(ABC):
     Class attributes
     ----------------
     name : str
-        The name users pick with ``--family``.
+        The name users pick with ``--family`` (and ``family=`` in the estimators).
+    description : str
+        One line for the command line's help and the documentation.
     columns : tuple of str
         Kernel outputs recorded for every feature and shown in the ranking (``score`` first).
     loss : str
         Loss of the refit in `widescreen.fit` ("gaussian", "binomial", "poisson", "cox").
+    intercept : bool
+        Whether the refit model has an intercept (the Cox partial likelihood has none: it cancels).
+    takes_event : bool
+        Whether the response comes with an event indicator (survival).
     conditioning : {"columns", "offset", "score"}
         How the iterative pass conditions on the selected set: project the selected columns out
         (linear); add the current model's linear predictor as an offset (Cox, model-free); or both,
         a score test at the current fit adjusted for the selected columns (logistic, Poisson).
     supports_permutation : bool
         Whether the kernel computes null scores for permuted responses in the same pass.
+    pre_passes : tuple of PrePass
+        Reductions over every block needed before the screening pass; their results reach `prepare`
+        as keywords.
     """
 
     name: ClassVar[str]
+    description: ClassVar[str] = ""
     columns: ClassVar[tuple[str, ...]]
     loss: ClassVar[str] = "gaussian"
+    intercept: ClassVar[bool] = True
+    takes_event: ClassVar[bool] = False
     conditioning: ClassVar[str] = "columns"
     supports_permutation: ClassVar[bool] = False
-    description: ClassVar[str] = ""
+    pre_passes: ClassVar[tuple[PrePass, ...]] = ()
+
+    # ---------------------------------------------------------------------------------------
+    # The response
+
+    @property
+    def has_p_values(self) -> bool:
+        return "p_value" in self.columns
 
     def response_columns(self, response: str, event: str | None = None) -> list[str]:
         """Outcome-table columns this family reads."""
+        if self.takes_event:
+            if event is None:
+                raise OutcomeError(
+                    f"the {self.name} family needs --event, the column of the event indicator"
+                )
+            return [response, event]
         if event is not None:
             raise OutcomeError(f"the {self.name} family takes no event column")
         return [response]
 
     @abstractmethod
+    def code(self, where: Where) -> Response:
+        """Validate and code the raw response; errors name where the first bad value came from."""
+
     def response(self, joined: JoinedOutcome, response: str, event: str | None = None) -> Response:
-        """Validate and code the response; errors name the column and the first bad line."""
+        """The response from an outcome table joined to the store (errors name column and line)."""
+        roles = dict(
+            zip(("response", "event"), self.response_columns(response, event), strict=False)
+        )
+        return self.code(TableWhere(joined, roles))
+
+    def response_from_arrays(self, y, event=None, sample_ids: np.ndarray | None = None) -> Response:
+        """The response from arrays of shape (n,) (errors name the position or the sample id)."""
+        values = {"response": _column(y, "y")}
+        if self.takes_event:
+            if event is None:
+                raise OutcomeError(f"the {self.name} family needs an event indicator")
+            values["event"] = _column(event, "event")
+            if values["event"].size != values["response"].size:
+                raise OutcomeError(
+                    f"event has {values['event'].size} values but y has {values['response'].size}"
+                )
+        elif event is not None:
+            raise OutcomeError(f"the {self.name} family takes no event indicator")
+        return self.code(ArrayWhere(values, sample_ids))
+
+    def refit_response(self, response: Response) -> np.ndarray:
+        """The response as `widescreen.fit.fit_path` takes it for this family's loss."""
+        if self.takes_event:
+            return np.column_stack([response.y, response.event])  # (time, event)
+        return response.y
+
+    # ---------------------------------------------------------------------------------------
+    # The screening kernel
 
     @abstractmethod
     def prepare(
@@ -80,18 +155,13 @@ class Family(ABC):
         offset: np.ndarray | None = None,
         n_permutations: int = 0,
         seed: int = 0,
+        **pre: Any,
     ) -> Any:
-        """The kernel's response state for one pass."""
+        """The kernel's response state for one pass (``pre``: the results of the `pre_passes`)."""
 
     def pass_columns(self, state) -> tuple[str, ...]:
         """Kernel outputs recorded by a pass with this state (some states compute other statistics)."""
         return self.columns
-
-    def refit_response(self, response: Response) -> np.ndarray:
-        """The response as `widescreen.fit.fit_path` takes it for this family's loss."""
-        if response.event is not None:
-            return np.column_stack([response.y, response.event])  # Cox: (time, event)
-        return response.y
 
     @staticmethod
     @abstractmethod
@@ -99,15 +169,13 @@ class Family(ABC):
         """The pure statistics kernel (a module-level function)."""
 
 
-def numeric_response(joined: JoinedOutcome, column: str) -> np.ndarray:
-    y = joined.numeric(column)
-    bad = ~np.isfinite(y)
-    if bad.any():
-        i = int(np.flatnonzero(bad)[0])
-        raise OutcomeError(
-            f"{joined.table.path}: column {column!r}, line {joined.lines[i]}: value is not finite"
-        )
-    return y
+def _column(v, name: str) -> np.ndarray:
+    a = np.asarray(v)
+    if a.ndim == 2 and a.shape[1] == 1:
+        a = a[:, 0]
+    if a.ndim != 1:
+        raise OutcomeError(f"{name} must be one-dimensional; got shape {a.shape}")
+    return a
 
 
 def permuted_copies(y: np.ndarray, n_permutations: int, seed: int) -> np.ndarray:
@@ -117,3 +185,6 @@ def permuted_copies(y: np.ndarray, n_permutations: int, seed: int) -> np.ndarray
     rng = np.random.default_rng(seed)
     perms = np.stack([rng.permutation(y) for _ in range(n_permutations)], axis=1)
     return np.column_stack([y, perms])
+
+
+__all__ = ["CONDITIONING", "Family", "PrePass", "Response", "permuted_copies"]

@@ -4,9 +4,9 @@ from __future__ import annotations
 
 import numpy as np
 
-from ..kernels._linear import linear_statistics, prepare_linear
-from ..store._outcome import JoinedOutcome
-from ._base import Family, Response, numeric_response
+from ..kernels import linear_statistics, prepare_linear
+from ._base import Family
+from ._response import Response, Where, quantitative
 
 
 class LinearFamily(Family):
@@ -19,8 +19,8 @@ class LinearFamily(Family):
     supports_permutation = True
     description = "quantitative trait: (partial) Pearson correlation, t test"
 
-    def response(self, joined: JoinedOutcome, response: str, event: str | None = None) -> Response:
-        return Response(y=numeric_response(joined, response))
+    def code(self, where: Where) -> Response:
+        return quantitative(where)
 
     def prepare(
         self, response, covariates, *, conditioning=None, offset=None, n_permutations=0, seed=0

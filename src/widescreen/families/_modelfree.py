@@ -9,16 +9,22 @@ from __future__ import annotations
 
 import numpy as np
 
-from ..kernels._dcor import dcor_statistics, prepare_dcor
-from ..kernels._holp import holp_statistics, prepare_holp
-from ..kernels._rank import (
+from ..kernels import (
+    check_holp_size,
+    dcor_statistics,
+    holp_gram,
+    holp_statistics,
+    prepare_dcor,
+    prepare_holp,
     prepare_rank_utility,
     prepare_spearman,
+    prepare_spline,
     rank_utility_statistics,
     spearman_statistics,
+    spline_statistics,
 )
-from ..kernels._spline import prepare_spline, spline_statistics
-from ._base import Family, Response, numeric_response, permuted_copies
+from ._base import Family, PrePass, permuted_copies
+from ._response import Response, Where, quantitative
 
 
 class _ResidualFamily(Family):
@@ -27,10 +33,8 @@ class _ResidualFamily(Family):
     supports_permutation = True
     takes_covariates = True
 
-    def response(self, joined, response, event=None) -> Response:
-        if event is not None:
-            raise ValueError(f"the {self.name} family takes no event column")
-        return Response(y=numeric_response(joined, response))
+    def code(self, where: Where) -> Response:
+        return quantitative(where)
 
     def _y(
         self, response, covariates, offset, n_permutations, seed
@@ -119,12 +123,12 @@ class HolpFamily(_ResidualFamily):
 
     name = "holp"
     columns = ("score", "beta")
-    needs_gram = True
+    pre_passes = (PrePass("gram", holp_gram, check_holp_size),)
     description = "joint projection: X^T (X X^T + rI)^-1 y (Wang & Leng 2016), two passes"
 
     def _prepare(self, y, Z, gram=None, ridge=0.0):
         if gram is None:
-            raise ValueError("HOLP needs the Gram matrix of a first pass (workflow.gram_pass)")
+            raise ValueError("HOLP needs the Gram matrix of its pre-pass (see pre_passes)")
         return prepare_holp(y, gram, Z, ridge=ridge)
 
     kernel = staticmethod(holp_statistics)

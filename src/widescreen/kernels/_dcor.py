@@ -33,7 +33,7 @@ from dataclasses import dataclass
 import numpy as np
 from scipy import special
 
-from ..store._reader import Block
+from ..store import Block
 
 #: Features per tile: the level arrays of a tile (a few of shape (TILE, 2^ceil(log2 n))) stay in cache.
 TILE = 128

@@ -24,7 +24,7 @@ from dataclasses import dataclass
 import numpy as np
 from scipy import linalg
 
-from ..store._reader import Block
+from ..store import Block
 from ._linear import _orthonormal_basis
 
 #: Default memory allowed for the n x n matrices of a HOLP pass (bytes).

@@ -13,7 +13,7 @@ from dataclasses import dataclass, field
 import numpy as np
 from scipy import special
 
-from ..store._reader import Block
+from ..store import Block
 
 
 @dataclass(frozen=True)

@@ -25,7 +25,7 @@ from dataclasses import dataclass
 import numpy as np
 from scipy import special
 
-from ..store._reader import Block
+from ..store import Block
 from ._linear import LinearState, prepare_linear
 
 #: Features per tile: keeps the work arrays of the ranking sort and of the cumulative sums in cache.

@@ -37,7 +37,7 @@ from dataclasses import dataclass
 import numpy as np
 from scipy import special
 
-from ..store._reader import Block
+from ..store import Block
 from ._linear import _orthonormal_basis
 
 #: Features per tile: the basis of a tile, (n_basis + degree) arrays of shape (n, TILE), stays small.

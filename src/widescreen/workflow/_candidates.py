@@ -11,15 +11,16 @@ read (except after sample splitting, see `_split`).
 from __future__ import annotations
 
 from collections.abc import Callable, Iterator
-from dataclasses import dataclass, field, replace
+from dataclasses import dataclass, field
 from typing import Any
 
 import numpy as np
 
-from ..engine import FeatureFilter, PassResult, PassSpec, RunFolder, read_stats, run_pass
+from ..engine import FeatureFilter, PassResult, RunFolder, read_columns, read_stats
 from ..schema import read_stats_at
+from ._passes import PassContext
 from ._problem import Problem
-from ._split import fetch_prepared, intersect_ranked
+from ._split import intersect_ranked
 from ._thresholds import ThresholdRule, bh_cutoff_blocks, bonferroni_cutoff, permutation_cutoff
 
 
@@ -56,6 +57,20 @@ class StepContext:
     scheduler: Any = None
     progress: Callable[[str], Any] | None = None
     memory_budget: int | str | None = None
+    passes: PassContext = field(init=False, repr=False, compare=False)
+
+    def __post_init__(self) -> None:
+        # The one pass builder of the run; it holds the pre-pass results shared by its passes.
+        passes = PassContext(
+            self.problem,
+            filters=self.filters,
+            sub_block=self.sub_block,
+            run=self.run,
+            scheduler=self.scheduler,
+            progress=self.progress,
+            memory_budget=self.memory_budget,
+        )
+        object.__setattr__(self, "passes", passes)
 
 
 @dataclass
@@ -93,17 +108,6 @@ def pass_seed(seed: int, iteration: int, half: int) -> int:
     return int(np.random.SeedSequence([int(seed), int(iteration), int(half)]).generate_state(1)[0])
 
 
-def _subset_rows(problem: Problem, sel: np.ndarray | None):
-    """Response, covariates and store rows restricted to the analysed samples at positions ``sel``."""
-    resp, Z, rows = problem.response, problem.covariates, problem.rows
-    if sel is None:
-        return resp, Z, rows
-    resp = replace(resp, y=resp.y[sel], event=None if resp.event is None else resp.event[sel])
-    Z = None if Z is None else Z[sel]
-    rows = sel if rows is None else rows[sel]
-    return resp, Z, rows
-
-
 def _one_pass(
     ctx: StepContext,
     name: str,
@@ -115,43 +119,29 @@ def _one_pass(
     seed: int,
     keep_values: bool,
 ) -> tuple[PassResult, np.ndarray, dict]:
-    problem, fam = ctx.problem, ctx.problem.family
-    resp, Z, rows = _subset_rows(problem, sel)
-    kwargs: dict[str, Any] = {"n_permutations": ctx.rule.permutations, "seed": seed}
-    if exclude.size:
-        if fam.conditioning in ("columns", "score"):
-            kwargs["conditioning"] = conditioning if sel is None else conditioning[sel]
-        if fam.conditioning in ("offset", "score"):
-            kwargs["offset"] = offset if sel is None else offset[sel]
+    fam = ctx.problem.family
+    conditional = exclude.size > 0
     try:
-        state = fam.prepare(resp, Z, **kwargs)
+        spec = ctx.passes.spec(
+            name,
+            keep=budget,
+            sel=sel,
+            exclude=exclude,
+            conditioning=conditioning
+            if conditional and fam.conditioning in ("columns", "score")
+            else None,
+            offset=offset if conditional and fam.conditioning in ("offset", "score") else None,
+            n_permutations=ctx.rule.permutations,
+            seed=seed,
+            keep_values=keep_values,
+        )
     except ValueError as exc:
-        if not exclude.size:
+        if not conditional:
             raise
         # The current model leaves nothing to condition on (no variation left, separation, too
         # few samples for the selected columns): the iteration ends here, with the model it has.
         raise ConditioningError(str(exc)) from exc
-    spec = PassSpec(
-        name=name,
-        kernel=fam.kernel,
-        state=state,
-        columns=fam.pass_columns(state),
-        keep=budget,
-        rows=rows,
-        exclude=exclude,
-        filters=ctx.filters,
-        keep_values=keep_values,
-        sub_block=ctx.sub_block,
-    )
-    progress = ctx.progress(name) if ctx.progress is not None else None
-    result = run_pass(
-        problem.source,
-        spec,
-        ctx.run,
-        scheduler=ctx.scheduler,
-        progress=progress,
-        memory_budget=ctx.memory_budget,
-    )
+    result = ctx.passes.run_spec(spec)
     kept, info = apply_threshold(ctx, result, exclude)
     return result, kept, info
 
@@ -210,7 +200,7 @@ def apply_threshold(
         keep = top.score > cutoff
         info["cutoff_score"] = _finite(cutoff)
     elif rule.needs_p_values:
-        if "p_value" not in ctx.problem.family.columns:
+        if not ctx.problem.family.has_p_values:
             raise ValueError(
                 f"the {ctx.problem.family.name} family has no p-values; choose another threshold"
             )
@@ -301,7 +291,7 @@ def screen_step(
         lists.append(result.topk.index[kept])
     index = intersect_ranked(lists[0], lists[1])
     score = np.minimum(*(_score_of(r.topk, index) for r in passes))
-    prep = fetch_prepared(ctx.problem.source, index, ctx.problem.rows, ctx.sub_block)
+    prep = read_columns(ctx.problem.source, index, rows=ctx.problem.rows, sub_block=ctx.sub_block)
     return Candidates(index, score, prep.values, prep.mean, passes, infos)
 
 

@@ -20,17 +20,15 @@ from dataclasses import asdict, dataclass, field, fields
 
 import numpy as np
 
-from ..engine import FeatureFilter, PassResult, RunFolder
-from ..fit import make_penalty
-from ..store._reader import prepare_block
+from .._config import ConfigError, check_int, check_keep
+from ..engine import FeatureFilter, PassResult, RunFolder, read_columns
+from ..store import prepare_block
 from ._candidates import Candidates, ConditioningError, StepContext, screen_step, stats_at
-from ._problem import Problem, shortlist_size
+from ._problem import Problem, check_problem_fields, shortlist_size
 from ._refit import FitSettings, FittedModel, fit_token, fit_union
 from ._session import RunSession
-from ._split import read_raw_columns, split_halves
+from ._split import split_halves
 from ._thresholds import ThresholdRule
-
-CRITERIA = ("ebic", "bic", "cv")
 
 
 @dataclass(frozen=True)
@@ -86,22 +84,18 @@ class IterateConfig:
     sub_block: int = 1024
 
     def __post_init__(self) -> None:
-        make_penalty(self.penalty)  # a clear error for an unknown penalty name
-        if self.criterion not in CRITERIA:
-            raise ValueError(f"The 'criterion' must be one of {CRITERIA}; got {self.criterion!r}.")
-        for name in ("max_iter", "seed"):
-            v = getattr(self, name)
-            if isinstance(v, bool) or not isinstance(v, int | np.integer) or v < 0:
-                raise ValueError(f"The '{name}' must be a non-negative integer; got {v!r}.")
-        if isinstance(self.shortlist, str) and self.shortlist != "auto":
-            raise ValueError(
-                f"The 'shortlist' must be a positive integer or 'auto'; got {self.shortlist!r}."
-            )
-        _ = self.rule  # validates threshold, alpha and n_permutations
+        check_problem_fields(self)
+        check_keep("shortlist", self.shortlist)
+        check_int("max_iter", self.max_iter, 0)
+        check_int("seed", self.seed, 0)
+        if not isinstance(self.split, bool):
+            raise ConfigError("split", "True or False", self.split)
+        _ = self.fit  # validates penalty, criterion, ebic_gamma, cv, n_lambda (`FitSettings`)
+        _ = self.rule  # validates threshold, alpha and n_permutations (`ThresholdRule`)
 
     @property
     def rule(self) -> ThresholdRule:
-        return ThresholdRule(self.threshold, float(self.alpha), int(self.n_permutations))
+        return ThresholdRule(self.threshold, self.alpha, self.n_permutations)
 
     @property
     def fit(self) -> FitSettings:
@@ -212,7 +206,7 @@ def iterate(
     progress=None,
     memory_budget: int | str | None = None,
 ) -> IterativeResult:
-    """Run the iterative workflow on a loaded problem.
+    """Run the iterative workflow on a problem (the array-level core of `run`).
 
     Parameters
     ----------
@@ -224,97 +218,165 @@ def iterate(
     scheduler : optional
         Where the passes run (see `widescreen.engine.execute`).
     progress : callable(pass name) -> callable(done, total), optional
+    memory_budget : int or str, optional
     """
     n, p = problem.n, problem.source.n_features
     d = shortlist_size(config.shortlist, n, p)
-    run = session.run if session is not None else None
-    halves = split_halves(n, config.seed) if config.split else None
     ctx = StepContext(
         problem,
         config.rule,
         config.filters,
         config.sub_block,
-        run,
-        halves,
+        session.run if session is not None else None,
+        split_halves(n, config.seed) if config.split else None,
         scheduler,
         progress,
         memory_budget,
     )
-    old = list(session.manifest.get("iterations", [])) if session is not None else []
-    records: list[dict] = []
-    pool = _Pool(n)
-    model: FittedModel | None = None
-    entered_at: dict[int, int] = {}
-    seen: list[tuple[int, ...]] = []
-    screen_passes: list[PassResult] = []
-    n_screened = p
-    stop = "iteration limit"
+    loop = _Loop(
+        pool=_Pool(n),
+        old=list(session.manifest.get("iterations", [])) if session is not None else [],
+        n_screened=p,
+    )
     for k in range(config.max_iter + 1):
-        selected = model.index if model is not None else np.empty(0, dtype=np.int64)
-        budget = d - selected.size
-        if budget <= 0:
-            stop = "size budget reached"
+        stop = _iteration(ctx, config, session, loop, k, d)
+        if stop is not None:
+            loop.stop = stop
             break
-        eta = (
-            model.linear_predictor(pool.values, problem.covariates)
-            if model is not None and problem.family.conditioning in ("offset", "score")
-            else None
-        )
-        try:
-            cands = screen_step(ctx, k, budget, selected, pool.values, eta, config.seed)
-        except ConditioningError as exc:
-            stop = f"cannot condition on the selected set: {exc}"
-            break
-        if k == 0:
-            screen_passes = cands.passes
-            n_screened = int(min(r.n_features - r.n_filtered for r in cands.passes))
-        for r in cands.passes:
-            if session is not None:
-                session.record_pass(r.name, r.summary())
-        if k > 0 and cands.index.size == 0:
-            rec = _record(problem, k, cands, model, model, refit=False)
-            prev = old[k] if k < len(old) else None
-            if prev is not None and not prev.get("refit", True) and prev["model"] == rec["model"]:
-                rec = prev  # the same outcome as before: keep its timings
-            records.append(rec)
-            stop = "no new candidates"
-            break
-        pool.add(cands)
-        token = fit_token(problem, pool.index, config.fit, n_screened)
-        prev = old[k] if k < len(old) else None
-        if prev is not None and prev.get("fit_token") == token:
-            new = FittedModel.from_record(prev["model"])
-            rec = prev
-        else:
-            new = fit_union(problem, pool.index, pool.values, config.fit, n_screened)
-            rec = _record(problem, k, cands, new, model)
-            rec["fit_token"] = token
-        records.append(rec)
-        if session is not None:
-            session.manifest["iterations"] = records + old[k + 1 :]
-            session.save()
-        for j in np.setdiff1d(new.index, selected).tolist():
-            entered_at[j] = k
-        pool.keep(new.index)
-        model = new
-        key = tuple(new.index.tolist())
-        if new.index.size == 0:
-            stop = "empty model"  # conditioning on nothing would only repeat the screen
-            break
-        if k > 0 and np.array_equal(new.index, selected):
-            stop = "converged"
-            break
-        if k > 0 and key in seen:
-            stop = "cycle"
-            break
-        seen.append(key)
-    assert model is not None
     if session is not None:
-        session.manifest["iterations"] = records
-        session.manifest["stop_reason"] = stop
+        session.manifest["iterations"] = loop.records
+        session.manifest["stop_reason"] = loop.stop
         session.save()
-    marginal = _marginal(ctx, screen_passes, model.index)
-    entered = np.array([entered_at[j] for j in model.index.tolist()], dtype=np.int64)
+    return _result(ctx, loop, d)
+
+
+@dataclass
+class _Loop:
+    """The state of the iteration between its steps."""
+
+    pool: _Pool
+    old: list[dict]  # the iteration records of an earlier session (resume)
+    n_screened: int
+    records: list[dict] = field(default_factory=list)
+    model: FittedModel | None = None
+    entered_at: dict[int, int] = field(default_factory=dict)
+    seen: list[tuple[int, ...]] = field(default_factory=list)
+    screen_passes: list[PassResult] = field(default_factory=list)
+    stop: str = "iteration limit"
+
+    @property
+    def selected(self) -> np.ndarray:
+        return self.model.index if self.model is not None else np.empty(0, dtype=np.int64)
+
+    def previous(self, k: int) -> dict | None:
+        return self.old[k] if k < len(self.old) else None
+
+
+def _iteration(
+    ctx: StepContext,
+    config: IterateConfig,
+    session: RunSession | None,
+    loop: _Loop,
+    k: int,
+    d: int,
+) -> str | None:
+    """Iteration ``k``: screen (conditionally on the model when k > 0), refit; the stop reason or None."""
+    selected = loop.selected
+    budget = d - selected.size
+    if budget <= 0:
+        return "size budget reached"
+    try:
+        cands = _screen(ctx, config, session, loop, k, budget)
+    except ConditioningError as exc:
+        return f"cannot condition on the selected set: {exc}"
+    if k > 0 and cands.index.size == 0:
+        _keep_model(ctx.problem, loop, k, cands)
+        return "no new candidates"
+    new = _refit(ctx.problem, config, session, loop, k, cands)
+    for j in np.setdiff1d(new.index, selected).tolist():
+        loop.entered_at[j] = k
+    loop.pool.keep(new.index)
+    loop.model = new
+    return _stop_after_fit(loop, k, new, selected)
+
+
+def _screen(
+    ctx: StepContext,
+    config: IterateConfig,
+    session: RunSession | None,
+    loop: _Loop,
+    k: int,
+    budget: int,
+) -> Candidates:
+    """The step's pass(es), conditioned as the family says on the current model; recorded."""
+    problem, model = ctx.problem, loop.model
+    eta = (
+        model.linear_predictor(loop.pool.values, problem.covariates)
+        if model is not None and problem.family.conditioning in ("offset", "score")
+        else None
+    )
+    cands = screen_step(ctx, k, budget, loop.selected, loop.pool.values, eta, config.seed)
+    if k == 0:
+        loop.screen_passes = cands.passes
+        loop.n_screened = int(min(r.n_features - r.n_filtered for r in cands.passes))
+    for r in cands.passes:
+        if session is not None:
+            session.record_pass(r.name, r.summary())
+    return cands
+
+
+def _keep_model(problem: Problem, loop: _Loop, k: int, cands: Candidates) -> None:
+    """No new candidate: the iteration ends with the model it has (recorded without a refit)."""
+    rec = _record(problem, k, cands, loop.model, loop.model, refit=False)
+    prev = loop.previous(k)
+    if prev is not None and not prev.get("refit", True) and prev["model"] == rec["model"]:
+        rec = prev  # the same outcome as before: keep its timings
+    loop.records.append(rec)
+
+
+def _refit(
+    problem: Problem,
+    config: IterateConfig,
+    session: RunSession | None,
+    loop: _Loop,
+    k: int,
+    cands: Candidates,
+) -> FittedModel:
+    """Fit on the selected set plus the candidates, or reuse the same fit of an earlier session."""
+    loop.pool.add(cands)
+    token = fit_token(problem, loop.pool.index, config.fit, loop.n_screened)
+    prev = loop.previous(k)
+    if prev is not None and prev.get("fit_token") == token:
+        new = FittedModel.from_record(prev["model"])
+        rec = prev
+    else:
+        new = fit_union(problem, loop.pool.index, loop.pool.values, config.fit, loop.n_screened)
+        rec = _record(problem, k, cands, new, loop.model)
+        rec["fit_token"] = token
+    loop.records.append(rec)
+    if session is not None:
+        session.manifest["iterations"] = loop.records + loop.old[k + 1 :]
+        session.save()
+    return new
+
+
+def _stop_after_fit(loop: _Loop, k: int, new: FittedModel, selected: np.ndarray) -> str | None:
+    if new.index.size == 0:
+        return "empty model"  # conditioning on nothing would only repeat the screen
+    if k > 0 and np.array_equal(new.index, selected):
+        return "converged"
+    key = tuple(new.index.tolist())
+    if k > 0 and key in loop.seen:
+        return "cycle"
+    loop.seen.append(key)
+    return None
+
+
+def _result(ctx: StepContext, loop: _Loop, d: int) -> IterativeResult:
+    problem, model, pool = ctx.problem, loop.model, loop.pool
+    assert model is not None
+    marginal = _marginal(ctx, loop.screen_passes, model.index)
+    entered = np.array([loop.entered_at[j] for j in model.index.tolist()], dtype=np.int64)
     return IterativeResult(
         index=model.index,
         feature_ids=problem.feature_ids(model.index),
@@ -324,14 +386,14 @@ def iterate(
         mean=pool.mean,
         entered=entered,
         marginal=marginal,
-        iterations=records,
-        stop_reason=stop,
+        iterations=loop.records,
+        stop_reason=loop.stop,
         budget=d,
-        n_screened=n_screened,
+        n_screened=loop.n_screened,
         model=model,
-        screen=screen_passes,
+        screen=loop.screen_passes,
         problem=problem,
-        run=run,
+        run=ctx.run,
     )
 
 
@@ -370,10 +432,11 @@ def _marginal(ctx: StepContext, passes: list[PassResult], index: np.ndarray) -> 
     if ctx.halves is None:
         s = stats_at(ctx.run, passes[0], index)
         return {c: np.asarray(s[c], dtype=np.float64) for c in cols}
-    # After splitting no pass saw all samples: score the few selected columns with the kernel.
-    raw = read_raw_columns(ctx.problem.source, index)
+    # After splitting no pass saw all samples: score the few selected columns with the kernel, in a
+    # response state made by the pass builder for all samples (with the family's pre-passes).
+    raw = read_columns(ctx.problem.source, index, kind="raw")
     block = prepare_block(raw, 0, ctx.problem.rows)
-    state = fam.prepare(ctx.problem.response, ctx.problem.covariates)
+    state = ctx.passes.spec("marginal", keep=max(1, index.size), keep_values=False).state
     out = fam.kernel(block, state)
     s = {c: np.asarray(out[c], dtype=np.float64) for c in fam.columns}
     s["missing_rate"] = np.asarray(block.missing_rate, dtype=np.float64)

@@ -1,16 +1,39 @@
-"""Loading a screening problem: the store, the outcome join, the family's response and the covariates."""
+"""The problem every workflow runs on, built from arrays; the file route is an adapter that builds it.
+
+`Problem.from_arrays` is the core: X as a numpy array, a Dask array or a store (path, `Dataset` or
+block source), y (and the event indicator for survival), covariates and, optionally, sample ids. With a
+store and sample ids, y is matched to the store's samples by id (in any order, a subset allowed); with
+a store and no ids, by position. `load_problem` reads an outcome table, joins it to the store by sample
+id and builds the same `Problem`, so screen, run and the estimators share everything after that.
+"""
 
 from __future__ import annotations
 
 import math
 import os
-from dataclasses import dataclass
+from dataclasses import dataclass, field
+from typing import Any
 
 import numpy as np
 
-from ..engine._source import BlockSource, as_source
-from ..families import Family, Response, get_family
-from ..store._outcome import JoinedOutcome, OutcomeError, join_outcome, read_outcome_table
+from .._config import check_choice, check_int, check_names, check_text
+from ..engine import BlockSource, as_source
+from ..families import FAMILY_NAMES, Family, Response, get_family
+from ..store import JoinedOutcome, OutcomeError, join_outcome, read_outcome_table
+
+
+def check_problem_fields(config) -> None:
+    """Validate the fields every workflow configuration shares (called from their ``__post_init__``).
+
+    ``response``, ``family``, ``covariates``, ``event``, ``drop_missing``, ``drop_rare``, ``sub_block``;
+    ``covariates`` given as a list becomes a tuple.
+    """
+    check_text("response", config.response)
+    check_choice("family", config.family, FAMILY_NAMES)
+    object.__setattr__(config, "covariates", check_names("covariates", config.covariates))
+    check_text("event", config.event, optional=True)
+    check_int("sub_block", config.sub_block, 1)
+    _ = config.filters  # validates drop_missing and drop_rare (`FeatureFilter`)
 
 
 def shortlist_size(shortlist: int | str, n: int, n_features: int | None = None) -> int:
@@ -36,36 +59,184 @@ def shortlist_size(shortlist: int | str, n: int, n_features: int | None = None) 
 class Problem:
     """Inputs of every pass of a run, aligned on the analysed samples.
 
+    Build one with `Problem.from_arrays` (arrays, or a store with y by position or by sample id) or
+    `load_problem` (a store and an outcome table).
+
     Attributes
     ----------
     source : BlockSource
-    joined : JoinedOutcome
+        Where the passes read X.
     family : Family
     response : Response
+        The validated response of the analysed samples (in the order of ``rows``).
     covariates : ndarray of shape (n, q) or None
     covariate_names : tuple of str
     rows : ndarray of int or None
-        Store rows of the analysed samples; None when they are all the store's rows in order.
+        Rows of X of the analysed samples; None when they are all of X's rows in order.
+    sample_ids : ndarray of str of shape (n,), optional
+    samples : dict
+        How the samples were matched (recorded in the manifest as ``samples``).
+    joined : JoinedOutcome, optional
+        The file route's join (its table, lines and counts).
     """
 
     source: BlockSource
-    joined: JoinedOutcome
     family: Family
     response: Response
-    covariates: np.ndarray | None
-    covariate_names: tuple[str, ...]
-    rows: np.ndarray | None
+    covariates: np.ndarray | None = None
+    covariate_names: tuple[str, ...] = ()
+    rows: np.ndarray | None = None
+    sample_ids: np.ndarray | None = None
+    samples: dict[str, Any] = field(default_factory=dict)
+    joined: JoinedOutcome | None = None
 
     @property
     def n(self) -> int:
-        return self.joined.n
+        return self.response.n
+
+    @property
+    def n_features(self) -> int:
+        return self.source.n_features
 
     def feature_ids(self, index: np.ndarray) -> np.ndarray:
+        """Ids of the features at the given indices (the store's ids; ``x<i>`` for arrays)."""
         ds = getattr(self.source, "dataset", None)
         index = np.asarray(index, dtype=np.int64)
         if ds is None:
             return np.array([f"x{i}" for i in index], dtype=str)
         return ds.feature_ids_at(index)
+
+    @classmethod
+    def from_arrays(
+        cls,
+        X,
+        y,
+        *,
+        family: str | Family = "linear",
+        event=None,
+        covariates=None,
+        covariate_names: tuple[str, ...] | None = None,
+        sample_ids=None,
+    ) -> Problem:
+        """Validate arrays and build a problem (the route of the estimators).
+
+        Parameters
+        ----------
+        X : ndarray, Dask array, store path, `Dataset` or `BlockSource`, of shape (n_rows, p)
+        y : array-like of shape (n,)
+            The response (survival: the time). Numbers, or two labels for a binary family.
+        family : str or Family
+        event : array-like of shape (n,), optional
+            Survival only: 1 event, 0 censored.
+        covariates : array-like of shape (n, q), optional
+        covariate_names : tuple of str, optional
+            Default ``z0, z1, ...``.
+        sample_ids : array-like of str of shape (n,), optional
+            Ids of y's samples. With a store, y is matched to the store's samples by these ids (any
+            order; a subset of the store is analysed); ids the store lacks, or repeated ids, are
+            refused. Without ids y follows X's rows by position, and must have one value per row.
+
+        Raises
+        ------
+        OutcomeError (a ValueError)
+            Naming the position or sample id of the first bad value.
+        """
+        source = as_source(X)
+        fam = get_family(family) if isinstance(family, str) else family
+        y = np.asarray(y)
+        n = y.shape[0] if y.ndim else 0
+        Z = None
+        if covariates is not None:
+            Z = np.asarray(covariates, dtype=np.float64)
+            Z = Z.reshape(-1, 1) if Z.ndim == 1 else Z
+            if Z.ndim != 2 or Z.shape[0] != n:
+                raise OutcomeError(
+                    f"covariates must have shape (n_samples, q) = ({n}, q); got {Z.shape}"
+                )
+        ev = None if event is None else np.asarray(event)
+        ids = None if sample_ids is None else np.asarray(sample_ids).astype(str)
+        rows = None
+        if ids is not None:
+            if ids.shape != (n,):
+                raise OutcomeError(
+                    f"sample_ids must have one id per value of y ({n}); got {ids.shape}"
+                )
+            rows = _rows_by_id(source, ids)
+            if rows is not None:
+                # Analyse in store order (reads stay sequential; results do not depend on y's order).
+                order = np.argsort(rows, kind="stable")
+                rows, ids, y = rows[order], ids[order], y[order]
+                ev = None if ev is None else ev[order]
+                Z = None if Z is None else Z[order]
+        elif n != source.n_samples:
+            raise OutcomeError(f"y has {n} values but X has {source.n_samples} samples")
+        if (
+            rows is not None
+            and rows.size == source.n_samples
+            and np.array_equal(rows, np.arange(rows.size))
+        ):
+            rows = None
+        check_sample_size(n, 0 if Z is None else Z.shape[1], "")
+        resp = fam.response_from_arrays(y, ev, ids)
+        names = tuple(covariate_names) if covariate_names is not None else ()
+        if Z is not None and not names:
+            names = tuple(f"z{j}" for j in range(Z.shape[1]))
+        if Z is not None:
+            if len(names) != Z.shape[1]:
+                raise OutcomeError(f"{len(names)} covariate names for {Z.shape[1]} covariates")
+            check_covariates(Z, names, "")
+        return cls(
+            source=source,
+            family=fam,
+            response=resp,
+            covariates=Z,
+            covariate_names=names,
+            rows=rows,
+            sample_ids=ids,
+            samples={"n_analysed": n, "n_store": source.n_samples},
+        )
+
+
+def _rows_by_id(source: BlockSource, ids: np.ndarray) -> np.ndarray | None:
+    """Rows of the store's samples with the given ids (None for arrays, which have no ids)."""
+    uniq, counts = np.unique(ids, return_counts=True)
+    if (counts > 1).any():
+        raise OutcomeError(f"sample id {str(uniq[counts > 1][0])!r} appears twice")
+    ds = getattr(source, "dataset", None)
+    if ds is None:
+        if ids.size != source.n_samples:
+            raise OutcomeError(f"y has {ids.size} values but X has {source.n_samples} samples")
+        return None
+    store_ids = np.asarray(ds.sample_ids(), dtype=str)
+    order = np.argsort(store_ids)
+    pos = np.minimum(np.searchsorted(store_ids[order], ids), store_ids.size - 1)
+    found = store_ids[order][pos] == ids
+    if not found.all():
+        missing = ids[~found]
+        shown = ", ".join(repr(str(s)) for s in missing[:3])
+        raise OutcomeError(
+            f"{int(missing.size)} sample id(s) of y are not in the store {ds.path} ({shown}"
+            f"{', ...' if missing.size > 3 else ''})"
+        )
+    return order[pos].astype(np.int64)
+
+
+def check_covariates(Z: np.ndarray, names: tuple[str, ...], where: str) -> None:
+    """Finite, non-constant covariates; ``where`` prefixes the message (the table's path)."""
+    for j, name in enumerate(names):
+        v = Z[:, j]
+        if not np.all(np.isfinite(v)):
+            i = int(np.flatnonzero(~np.isfinite(v))[0])
+            raise OutcomeError(f"{where}covariate {name!r}, sample {i}: value is not finite")
+        if np.std(v) == 0:
+            raise OutcomeError(f"{where}covariate {name!r} is constant over the analysed samples")
+
+
+def check_sample_size(n: int, q: int, where: str) -> None:
+    """At least q + 4 samples (an intercept, q covariates, a feature and a residual degree)."""
+    min_n = q + 4
+    if n < min_n:
+        raise OutcomeError(f"{where}need at least {min_n} samples; got n_samples = {n}")
 
 
 def load_problem(
@@ -77,7 +248,7 @@ def load_problem(
     covariates: tuple[str, ...] = (),
     event: str | None = None,
 ) -> Problem:
-    """Open the store, read and join the outcome table, validate the response and covariates."""
+    """The file route: open the store, read the outcome table, join it by sample id, build the problem."""
     source = as_source(store)
     fam = get_family(family)
     table = read_outcome_table(outcome)
@@ -89,39 +260,36 @@ def load_problem(
     resp = fam.response(joined, response, event)
     Z = None
     if covariates:
-        cols = []
-        for c in covariates:
-            v = joined.numeric(c)
-            if np.nanstd(v) == 0:
-                raise OutcomeError(
-                    f"{table.path}: covariate {c!r} is constant over the analysed samples"
-                )
-            cols.append(v)
-        Z = np.column_stack(cols)
+        Z = np.column_stack([joined.numeric(c) for c in covariates])
+        check_covariates(Z, tuple(covariates), f"{table.path}: ")
     rows = joined.rows
     if rows.size == source.n_samples and np.array_equal(rows, np.arange(rows.size)):
         rows = None
-    min_n = len(covariates) + 4
-    if joined.n < min_n:
-        raise OutcomeError(
-            f"{table.path}: only {joined.n} analysable samples; need at least {min_n}"
-        )
-    return Problem(source, joined, fam, resp, Z, tuple(covariates), rows)
-
-
-def problem_from_arrays(X, y, family: str | Family = "linear", covariates=None) -> Problem:
-    """A problem over an in-memory array (the scikit-learn estimators' route); y aligned with X's rows."""
-    from ..store._outcome import OutcomeTable
-
-    source = as_source(X)
-    fam = get_family(family) if isinstance(family, str) else family
-    y = np.asarray(y)
-    n = source.n_samples
-    ids = np.array([str(i) for i in range(n)])
-    table = OutcomeTable(path="<array>", ids=ids, columns={"y": np.asarray(y, dtype=str)})  # type: ignore[arg-type]
-    joined = JoinedOutcome(
-        table, np.arange(n), ids, {"y": table.columns["y"]}, np.arange(n) + 1, n, n, 0
+    check_sample_size(joined.n, len(covariates), f"{table.path}: ")
+    return Problem(
+        source=source,
+        family=fam,
+        response=resp,
+        covariates=Z,
+        covariate_names=tuple(covariates),
+        rows=rows,
+        sample_ids=joined.sample_ids,
+        samples=joined.report(),
+        joined=joined,
     )
-    resp = Response(y=np.asarray(y, dtype=np.float64))
-    Z = None if covariates is None else np.asarray(covariates, dtype=np.float64).reshape(n, -1)
-    return Problem(source, joined, fam, resp, Z, (), None)
+
+
+def problem_from_arrays(X, y, family: str | Family = "linear", covariates=None, **kw) -> Problem:
+    """`Problem.from_arrays` with the family and covariates by position."""
+    return Problem.from_arrays(X, y, family=family, covariates=covariates, **kw)
+
+
+__all__ = [
+    "Problem",
+    "check_covariates",
+    "check_problem_fields",
+    "check_sample_size",
+    "load_problem",
+    "problem_from_arrays",
+    "shortlist_size",
+]

@@ -15,8 +15,11 @@ import numpy as np
 import sklearn
 from dask.base import tokenize
 
-from ..fit import fit_path, select_model
+from .._config import check_choice, check_int, check_number
+from ..fit import fit_path, make_penalty, select_model
 from ._problem import Problem
+
+CRITERIA = ("ebic", "bic", "cv")
 
 
 @dataclass(frozen=True)
@@ -42,6 +45,14 @@ class FitSettings:
     cv: int = 5
     n_lambda: int = 100
     seed: int = 0
+
+    def __post_init__(self) -> None:
+        make_penalty(self.penalty)  # its own error names the known penalties
+        check_choice("criterion", self.criterion, CRITERIA)
+        check_number("ebic_gamma", self.ebic_gamma, 0.0, 1.0, optional=True)
+        check_int("cv", self.cv, 2)
+        check_int("n_lambda", self.n_lambda, 1)
+        check_int("seed", self.seed, 0)
 
 
 @dataclass(frozen=True)
@@ -115,11 +126,8 @@ class FittedModel:
 
 
 def fit_response(problem: Problem) -> np.ndarray:
-    """The response as the fit wants it: (n,), or (n, 2) of (time, event) for the Cox loss."""
-    resp = problem.response
-    if problem.family.loss == "cox":
-        return np.column_stack([resp.y, resp.event])
-    return resp.y
+    """The response as the family's refit takes it (see `Family.refit_response`)."""
+    return problem.family.refit_response(problem.response)
 
 
 def fit_token(problem: Problem, union: np.ndarray, settings: FitSettings, n_candidates: int) -> str:

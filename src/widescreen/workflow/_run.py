@@ -63,7 +63,7 @@ def run(
     with open_session(
         out, "run", config.to_dict(), dataset_record(problem), restart=restart
     ) as session:
-        session.manifest["samples"] = problem.joined.report()
+        session.manifest["samples"] = problem.samples
         if problem.response.mapping:
             session.manifest["response_coding"] = problem.response.mapping
         session.manifest["memory_budget"] = memory_budget

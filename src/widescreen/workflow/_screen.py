@@ -8,10 +8,11 @@ from dataclasses import asdict, dataclass, field
 
 import numpy as np
 
-from ..engine._pass import FeatureFilter, PassResult, PassSpec, read_stats, run_pass
-from ..engine._runfolder import RunFolder
+from .._config import check_int, check_keep
+from ..engine import FeatureFilter, PassResult, RunFolder, read_stats
 from ..schema import RANKING
-from ._problem import Problem, load_problem, shortlist_size
+from ._passes import PassContext
+from ._problem import Problem, check_problem_fields, load_problem, shortlist_size
 from ._session import open_session
 from ._tables import ranking_text
 
@@ -49,6 +50,11 @@ class ScreenConfig:
     drop_rare: float | None = None
     sub_block: int = 1024
 
+    def __post_init__(self) -> None:
+        check_problem_fields(self)
+        check_keep("shortlist", self.shortlist)
+        check_int("list_top", self.list_top, 1, optional=True)
+
     def to_dict(self) -> dict:
         d = asdict(self)
         d["covariates"] = list(self.covariates)
@@ -85,39 +91,77 @@ class ScreenResult:
     run: RunFolder | None
     extra: dict = field(default_factory=dict)
 
+    @property
+    def statistics(self) -> dict[str, np.ndarray] | None:
+        """Every feature's statistics (shape (n_features,) each), when the pass ran without a run folder."""
+        return self.pass_result.stats
+
 
 def dataset_record(problem: Problem) -> dict:
     ds = problem.source.dataset
     return {"path": str(ds.path), "fingerprint": problem.source.token(), "shape": list(ds.shape)}
 
 
-def screen_spec(
+def screen_problem(
     problem: Problem,
-    config: ScreenConfig,
-    keep: int,
-    name: str = "screen",
     *,
+    shortlist: int | str = "auto",
+    list_top: int | None = None,
+    filters: FeatureFilter | None = None,
+    sub_block: int = 1024,
+    keep_values: bool = True,
+    run: RunFolder | None = None,
     scheduler=None,
-    **prepare,
-) -> PassSpec:
-    """The pass of a screen: the family's kernel and response state (after a Gram pass for HOLP)."""
-    fam = problem.family
-    if getattr(fam, "needs_gram", False):
-        from ._gram import gram_pass
+    progress=None,
+    memory_budget: int | str | None = None,
+) -> ScreenResult:
+    """Screen every feature of a problem in one pass: the array-level core of `screen`.
 
-        prepare["gram"] = gram_pass(
-            problem.source, problem.rows, scheduler=scheduler, sub_block=config.sub_block
-        )
-    state = fam.prepare(problem.response, problem.covariates, **prepare)
-    return PassSpec(
-        name=name,
-        kernel=fam.kernel,
-        state=state,
-        columns=fam.pass_columns(state),
-        keep=keep,
-        rows=problem.rows,
-        filters=config.filters,
-        sub_block=config.sub_block,
+    The estimators call this after validating their inputs (`Problem.from_arrays`); `screen` calls it
+    inside a run session.
+
+    Parameters
+    ----------
+    problem : Problem
+    shortlist : int or "auto"
+        Shortlist size; "auto" = floor(n / log n).
+    list_top : int, optional
+        Length of the pass's top list when longer than the shortlist (the ranking table's rows).
+    filters : FeatureFilter, optional
+    sub_block : int
+    keep_values : bool
+        Keep the shortlist's imputed, centred values (``ScreenResult.values``).
+    run : RunFolder, optional
+        Checkpoint the pass there; without one, every feature's statistics are returned in memory
+        (``ScreenResult.statistics``).
+    scheduler, progress, memory_budget : optional
+        As for `widescreen.engine.run_pass` (``progress``: callable(done, total)).
+
+    Returns
+    -------
+    ScreenResult
+    """
+    k = shortlist_size(shortlist, problem.n, problem.source.n_features)
+    listed = max(k, list_top or 0)
+    ctx = PassContext(
+        problem,
+        filters=filters or FeatureFilter(),
+        sub_block=sub_block,
+        run=run,
+        scheduler=scheduler,
+        progress=(lambda name: progress if name == "screen" else None) if progress else None,
+        memory_budget=memory_budget,
+    )
+    result = ctx.run_spec(ctx.spec("screen", keep=listed, keep_values=keep_values))
+    top = result.topk
+    return ScreenResult(
+        index=top.index[:k],
+        feature_ids=problem.feature_ids(top.index[:k]),
+        score=top.score[:k],
+        values=None if top.values is None else top.values[:, :k],
+        pass_result=result,
+        problem=problem,
+        run=run,
     )
 
 
@@ -148,40 +192,34 @@ def screen(
         covariates=config.covariates,
         event=config.event,
     )
-    keep = shortlist_size(config.shortlist, problem.n, problem.source.n_features)
-    listed = max(keep, config.list_top or 0)
     with open_session(
         out, "screen", config.to_dict(), dataset_record(problem), restart=restart
     ) as session:
-        session.manifest["samples"] = problem.joined.report()
+        session.manifest["samples"] = problem.samples
         if problem.response.mapping:
             session.manifest["response_coding"] = problem.response.mapping
+        keep = shortlist_size(config.shortlist, problem.n, problem.source.n_features)
         session.manifest["shortlist_size"] = keep
-        spec = screen_spec(problem, config, listed, scheduler=scheduler)
         session.manifest["memory_budget"] = memory_budget
-        result = run_pass(
-            problem.source,
-            spec,
-            session.run,
+        found = screen_problem(
+            problem,
+            shortlist=config.shortlist,
+            list_top=config.list_top,
+            filters=config.filters,
+            sub_block=config.sub_block,
+            run=session.run,
             scheduler=scheduler,
             progress=progress,
             memory_budget=memory_budget,
         )
+        result = found.pass_result
         session.record_pass("screen", result.summary())
         top = result.topk
         shortlisted = np.arange(top.index.size) < keep
         text = ranking_text(problem, session.run, result, top.index, top.score, shortlisted)
         session.run.write_table(RANKING.file, text)
         session.finish(seconds_total=round(time.perf_counter() - t0, 3))
-        return ScreenResult(
-            index=top.index[:keep],
-            feature_ids=problem.feature_ids(top.index[:keep]),
-            score=top.score[:keep],
-            values=None if top.values is None else top.values[:, :keep],
-            pass_result=result,
-            problem=problem,
-            run=session.run,
-        )
+        return found
 
 
-__all__ = ["ScreenConfig", "ScreenResult", "read_stats", "screen"]
+__all__ = ["ScreenConfig", "ScreenResult", "read_stats", "screen", "screen_problem"]

@@ -21,7 +21,7 @@ from dataclasses import dataclass, field
 from pathlib import Path
 
 from .._version import __version__
-from ..engine._runfolder import RunFolder, RunFolderError, RunLock, diff_config
+from ..engine import RunFolder, RunFolderError, RunLock, diff_config
 
 
 def versions() -> dict[str, str]:

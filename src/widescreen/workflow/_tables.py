@@ -108,7 +108,7 @@ def model_record(result) -> ModelRecord:
         index=result.index[order],
         coefficient=result.coef[order],
         entered=result.entered[order],
-        intercept=None if problem.family.loss == "cox" else float(result.intercept),
+        intercept=float(result.intercept) if problem.family.intercept else None,
         covariates=tuple(problem.covariate_names),
         covariate_coef=np.asarray(result.covariate_coef, dtype=np.float64),
         stop_reason=result.stop_reason,
@@ -124,10 +124,12 @@ def model_columns(result) -> dict[str, object]:
     """Columns of ``model.tsv``: intercept and covariate rows first, then the selected features."""
     problem = result.problem
     order = model_order(result)
-    # The Cox partial likelihood has no intercept: its row would only be a shift that cancels.
-    cox = problem.family.loss == "cox"
-    head = ([] if cox else ["(intercept)"]) + [f"covariate:{c}" for c in problem.covariate_names]
-    terms = ([] if cox else ["intercept"]) + ["covariate"] * len(problem.covariate_names)
+    # A model without an intercept (the Cox partial likelihood) gets no row for it.
+    no_intercept = not problem.family.intercept
+    head = ([] if no_intercept else ["(intercept)"]) + [
+        f"covariate:{c}" for c in problem.covariate_names
+    ]
+    terms = ([] if no_intercept else ["intercept"]) + ["covariate"] * len(problem.covariate_names)
     h = len(head)
     na = [None] * h
     nan = [float("nan")] * h
@@ -138,7 +140,7 @@ def model_columns(result) -> dict[str, object]:
         "feature": head + [str(f) for f in result.feature_ids[order]],
         "term": terms + ["feature"] * index.size,
         "coefficient": [
-            *([] if cox else [result.intercept]),
+            *([] if no_intercept else [result.intercept]),
             *np.asarray(result.covariate_coef).tolist(),
             *result.coef[order].tolist(),
         ],

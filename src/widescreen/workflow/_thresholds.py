@@ -18,6 +18,8 @@ from dataclasses import dataclass
 
 import numpy as np
 
+from .._config import ConfigError, check_choice, check_int, check_number
+
 THRESHOLDS = ("none", "permutation", "bonferroni", "bh")
 
 
@@ -42,17 +44,17 @@ class ThresholdRule:
     n_permutations: int = 100
 
     def __post_init__(self) -> None:
-        if self.kind not in THRESHOLDS:
-            raise ValueError(f"The 'threshold' must be one of {THRESHOLDS}; got {self.kind!r}.")
-        if not (isinstance(self.alpha, int | float) and 0.0 < float(self.alpha) < 1.0):
-            raise ValueError(f"The 'alpha' must be a number in (0, 1); got {self.alpha!r}.")
+        check_choice("threshold", self.kind, THRESHOLDS)
+        check_number("alpha", self.alpha, 0.0, 1.0, open_low=True, open_high=True)
+        check_int("n_permutations", self.n_permutations, 1)
         k = self.n_permutations
-        if isinstance(k, bool) or not isinstance(k, int | np.integer) or k < 1:
-            raise ValueError(f"The number of permutations must be a positive integer; got {k!r}.")
         if self.kind == "permutation" and math.floor(self.alpha * (k + 1)) < 1:
-            raise ValueError(
-                f"{k} permutations cannot reach level alpha = {self.alpha}: "
-                f"need at least {math.ceil(1 / self.alpha) - 1}."
+            need = math.ceil(1 / self.alpha) - 1
+            raise ConfigError(
+                "n_permutations",
+                f"at least {need} to reach level alpha = {self.alpha}",
+                k,
+                f"{k} permutations cannot reach level alpha = {self.alpha}: need at least {need}.",
             )
 
     @property
