@@ -23,7 +23,6 @@ NOT_CHECKED = {
     # y must be non-negative integer counts (as on the command line); the checks draw real values.
     "poisson": "integer counts",
     # HOLP solves with X X' (n x n), which needs more features than samples; the checks use n > p.
-    # (The iterative workflow does not yet run HOLP's Gram pass before its first screen.)
     "holp": "needs p >= n",
 }
 
@@ -47,6 +46,8 @@ def test_families_left_out_of_check_estimator_refuse_its_data_clearly(rng):
         IterativeScreeningModel(family="cox").fit(X, y)
     with pytest.raises(ValueError, match=r"y\[0\] = .* is not a non-negative integer count"):
         IterativeScreeningModel(family="poisson").fit(X, y)
+    with pytest.raises(ValueError, match=r"singular.*use ridge"):
+        IterativeScreeningModel(family="holp").fit(X, y)
 
 
 @pytest.fixture

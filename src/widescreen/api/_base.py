@@ -33,12 +33,9 @@ def fit_inputs(estimator, X, y, covariates) -> tuple[Design, Problem, np.ndarray
         raise ValueError(
             f"need at least {MIN_SAMPLES} samples to screen; got n_samples = {design.n}"
         )
-    response, classes = read_target(family, y)
+    target = read_target(family, y)
     Z, names = read_covariates(estimator.covariates if covariates is None else covariates, design)
-    need = MIN_SAMPLES + (0 if Z is None else Z.shape[1])
-    if design.n < need:
-        raise ValueError(f"need at least {need} samples to screen; got n_samples = {design.n}")
-    return design, make_problem(design, family, response, Z, names), classes
+    return design, make_problem(design, family, target, Z, names), target.classes
 
 
 def predict_covariates(estimator, design: Design, covariates, q: int) -> np.ndarray | None:

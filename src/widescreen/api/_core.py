@@ -5,7 +5,7 @@ from __future__ import annotations
 import numpy as np
 
 from ..engine import PassResult
-from ..families import Family, Response
+from ..families import Family
 from ..workflow import (
     IterateConfig,
     IterativeResult,
@@ -15,26 +15,29 @@ from ..workflow import (
     shortlist_size,
 )
 from ._inputs import Design
+from ._target import Target
 
 
 def make_problem(
     design: Design,
     family: Family,
-    response: Response,
+    target: Target,
     covariates: np.ndarray | None,
     covariate_names: tuple[str, ...],
 ) -> Problem:
-    """A workflow problem over X's samples (store rows when X is a view of a store)."""
-    n = design.n
-    return Problem(
-        source=design.source,
+    """The workflow's problem over X's samples; the family validates the response here.
+
+    A store view passes its sample ids, so the problem reads the view's rows of the store; y and the
+    covariates are already in X's order.
+    """
+    return Problem.from_arrays(
+        design.source,
+        target.y,
         family=family,
-        response=response,
+        event=target.event,
         covariates=covariates,
-        covariate_names=covariate_names,
-        rows=design.rows,
-        sample_ids=design.ids if design.ids is not None else np.arange(n).astype(str),
-        samples={"n_analysed": n, "n_store": design.source.n_samples},
+        covariate_names=covariate_names or None,
+        sample_ids=design.ids if design.rows is not None else None,
     )
 
 

@@ -145,7 +145,7 @@ def read_covariates(covariates, design: Design) -> tuple[np.ndarray | None, tupl
     A pandas table indexed by sample id may hold more samples than X (each fold of a cross-validation
     looks up its own); every sample of X must be in it.
 
-    A constant covariate is refused (it duplicates the intercept), naming the column.
+    At fit, the workflow's problem refuses a constant covariate (it duplicates the intercept).
     """
     if covariates is None:
         return None, ()
@@ -154,7 +154,7 @@ def read_covariates(covariates, design: Design) -> tuple[np.ndarray | None, tupl
         names = (
             tuple(str(c) for c in covariates.columns)
             if hasattr(covariates, "columns")
-            else (str(covariates.name),)
+            else (str(covariates.name if covariates.name is not None else "z0"),)
         )
     else:
         names = ()
@@ -164,10 +164,7 @@ def read_covariates(covariates, design: Design) -> tuple[np.ndarray | None, tupl
     Z = Z.reshape(Z.shape[0], -1)
     if Z.shape[0] != design.n:
         raise ValueError(f"covariates have {Z.shape[0]} rows but X has {design.n} samples")
-    names = names or tuple(f"covariate{j}" for j in range(Z.shape[1]))
-    const = np.flatnonzero(np.ptp(Z, axis=0) == 0) if Z.shape[0] else np.empty(0, dtype=int)
-    if const.size:
-        raise ValueError(f"covariate {names[int(const[0])]!r} is constant over the samples of X")
+    names = names or tuple(f"z{j}" for j in range(Z.shape[1]))
     return Z, names
 
 

@@ -97,8 +97,9 @@ class IterativeScreeningModel(SelectorMixin, RegressorMixin, BaseEstimator):
     Notes
     -----
     scikit-learn's ``check_estimator`` passes for every family except ``cox`` (its y is (time,
-    event), which the generic checks cannot draw) and ``poisson`` (y must be integer counts; the
-    checks draw real-valued targets); the test suite states this per family.
+    event), which the generic checks cannot draw), ``poisson`` (y must be integer counts; the checks
+    draw real-valued targets) and ``holp`` (X X' must be invertible, which needs more features than
+    samples; the checks draw fewer); the test suite states this per family.
 
     Examples
     --------
@@ -257,8 +258,8 @@ class IterativeScreeningModel(SelectorMixin, RegressorMixin, BaseEstimator):
         if self.loss_ == "cox":
             if sample_weight is not None:
                 raise ValueError("the concordance index takes no sample weights")
-            surv = survival_target(y)
-            return concordance_index(surv.y, surv.event, eta)
+            time, event = survival_target(y)
+            return concordance_index(time, event, eta)
         y = np.asarray(y, dtype=np.float64).ravel()
         return float(r2_score(y, make_loss(self.loss_).mean(eta), sample_weight=sample_weight))
 

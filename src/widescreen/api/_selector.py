@@ -55,8 +55,8 @@ class ScreeningSelector(SelectorMixin, BaseEstimator):
     Notes
     -----
     scikit-learn's ``check_estimator`` passes for every family except ``cox`` (its y is (time,
-    event), which the generic checks cannot draw) and ``poisson`` (y must be integer counts; the
-    checks draw real-valued targets); the test suite states this per family.
+    event), which the generic checks cannot draw) and ``holp`` (X X' must be invertible, which
+    needs more features than samples; the checks draw fewer); the test suite states this per family.
 
     Examples
     --------

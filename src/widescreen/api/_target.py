@@ -11,11 +11,13 @@
 
 from __future__ import annotations
 
+from dataclasses import dataclass
+
 import numpy as np
 from sklearn.utils.multiclass import check_classification_targets, type_of_target
 from sklearn.utils.validation import check_array, column_or_1d
 
-from ..families import Family, Response
+from ..families import Family
 
 
 def no_target(estimator) -> ValueError:
@@ -25,33 +27,46 @@ def no_target(estimator) -> ValueError:
     )
 
 
-def read_target(family: Family, y) -> tuple[Response, np.ndarray | None]:
-    """The family's response from y (already aligned with X's samples), and the class labels."""
-    if family.loss == "cox":
-        return survival_target(y), None
+@dataclass(frozen=True)
+class Target:
+    """y taken apart for a family: the values and event indicator it validates, and the labels.
+
+    Attributes
+    ----------
+    y : ndarray of shape (n,)
+        The response as the family codes it (survival: the time; binary: the labels as given).
+    event : ndarray of shape (n,) or None
+        Survival only.
+    classes : ndarray of shape (2,) or None
+        Binary families: the two labels, sorted (the second is coded 1, as the family codes it).
+    """
+
+    y: np.ndarray
+    event: np.ndarray | None = None
+    classes: np.ndarray | None = None
+
+
+def read_target(family: Family, y) -> Target:
+    """y (aligned with X's samples) in the shape ``family`` takes; the family validates the values.
+
+    Only what scikit-learn's conventions add is checked here (its wording for NaN, a 2-d column y,
+    a continuous y given to a classifier, more than two classes); the family's own rules (counts,
+    positive times, event indicators) are applied by `widescreen.workflow.Problem.from_arrays`.
+    """
+    if family.takes_event:
+        time, event = survival_target(y)
+        return Target(time, event)
     if family.loss == "binomial":
         return binary_target(y)
-    y = column_or_1d(
-        check_array(y, ensure_2d=False, dtype=np.float64, input_name="y", ensure_min_samples=0),
-        warn=True,
-    )
-    if family.loss == "poisson":
-        bad = (y < 0) | (y != np.round(y))
-        if bad.any():
-            i = int(np.flatnonzero(bad)[0])
-            raise ValueError(
-                f"y[{i}] = {float(y[i])!r} is not a non-negative integer count (family 'poisson')"
-            )
-        if y.size and y.max() == 0:
-            raise ValueError("y is zero for every sample (family 'poisson')")
-    return Response(y=y), None
+    y = check_array(y, ensure_2d=False, dtype=np.float64, input_name="y", ensure_min_samples=0)
+    return Target(column_or_1d(y, warn=True))
 
 
-def binary_target(y) -> tuple[Response, np.ndarray]:
-    """0/1 codes of two labels (sorted order) and the labels."""
+def binary_target(y) -> Target:
+    """Two labels (numbers or text) and the sorted labels."""
     y = column_or_1d(np.asarray(y), warn=True)
     check_classification_targets(y)
-    classes, code = np.unique(y, return_inverse=True)
+    classes = np.unique(y)
     if classes.size == 1:
         raise ValueError(f"y has a single class ({classes[0]!r}); a binary outcome needs two")
     y_type = type_of_target(y, input_name="y")
@@ -60,11 +75,10 @@ def binary_target(y) -> tuple[Response, np.ndarray]:
         raise ValueError(
             f"Only binary classification is supported. The type of the target is {y_type}."
         )
-    mapping = {str(classes[0]): 0, str(classes[1]): 1}
-    return Response(y=code.astype(np.float64), mapping=mapping), classes
+    return Target(y, None, classes)
 
 
-def survival_target(y) -> Response:
+def survival_target(y) -> tuple[np.ndarray, np.ndarray]:
     """(time, event) from a structured array, a two-column array or a two-column DataFrame."""
     if y is None:
         raise ValueError("family 'cox' needs y = (time, event)")
@@ -80,42 +94,25 @@ def survival_target(y) -> Response:
             t_col = cols[1 - kinds.index("b")]
         else:
             t_col, e_col = cols
-        time, event = y[t_col].to_numpy(), y[e_col].to_numpy()
-    else:
-        arr = np.asarray(y)
-        if arr.dtype.names:
-            names = arr.dtype.names
-            flags = [n for n in names if arr.dtype[n].kind == "b"]
-            nums = [n for n in names if arr.dtype[n].kind in "fiu"]
-            if len(names) != 2 or len(flags) != 1 or len(nums) != 1:
-                raise ValueError(
-                    "family 'cox' needs a structured y with a boolean event field and a float "
-                    f"time field; got fields {list(names)} of kinds "
-                    f"{[arr.dtype[n].kind for n in names]}"
-                )
-            time, event = arr[nums[0]].ravel(), arr[flags[0]].ravel()
-        else:
-            if arr.ndim != 2 or arr.shape[1] != 2:
-                raise ValueError(
-                    "family 'cox' needs y as a structured array (boolean event, float time) or "
-                    f"two columns (time, event); got shape {arr.shape}"
-                )
-            time, event = arr[:, 0], arr[:, 1]
-    time = check_array(time, ensure_2d=False, dtype=np.float64, input_name="time")
-    event = check_array(event, ensure_2d=False, dtype=np.float64, input_name="event")
-    bad = time <= 0
-    if bad.any():
-        i = int(np.flatnonzero(bad)[0])
-        raise ValueError(f"time[{i}] = {float(time[i])!r} is not a positive time (family 'cox')")
-    bad = ~np.isin(event, (0.0, 1.0))
-    if bad.any():
-        i = int(np.flatnonzero(bad)[0])
+        return y[t_col].to_numpy(), y[e_col].to_numpy()
+    arr = np.asarray(y)
+    if arr.dtype.names:
+        names = arr.dtype.names
+        flags = [n for n in names if arr.dtype[n].kind == "b"]
+        nums = [n for n in names if arr.dtype[n].kind in "fiu"]
+        if len(names) != 2 or len(flags) != 1 or len(nums) != 1:
+            raise ValueError(
+                "family 'cox' needs a structured y with a boolean event field and a float "
+                f"time field; got fields {list(names)} of kinds "
+                f"{[arr.dtype[n].kind for n in names]}"
+            )
+        return arr[nums[0]].ravel(), arr[flags[0]].ravel()
+    if arr.ndim != 2 or arr.shape[1] != 2:
         raise ValueError(
-            f"event[{i}] = {float(event[i])!r} is not an event indicator (1 event, 0 censored)"
+            "family 'cox' needs y as a structured array (boolean event, float time) or "
+            f"two columns (time, event); got shape {arr.shape}"
         )
-    if event.sum() == 0:
-        raise ValueError("y has no events (family 'cox')")
-    return Response(y=time, event=event)
+    return arr[:, 0], arr[:, 1]
 
 
 def target_length(y) -> int:
@@ -153,4 +150,4 @@ def concordance_index(time: np.ndarray, event: np.ndarray, risk: np.ndarray) -> 
     return concordant / usable
 
 
-__all__ = ["binary_target", "concordance_index", "read_target", "survival_target"]
+__all__ = ["Target", "binary_target", "concordance_index", "read_target", "survival_target"]
