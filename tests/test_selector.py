@@ -215,6 +215,10 @@ def test_cox_takes_a_structured_y_or_two_columns(rng):
     bad = np.empty(n, dtype=[("a", float), ("b", float)])
     with pytest.raises(ValueError, match="boolean event field and a float time field"):
         ScreeningSelector(family="cox").fit(X, bad)
+    negative = np.column_stack([time, event])
+    negative[4, 0] = -1.0
+    with pytest.raises(ValueError, match=r"y\[4\]: '-1.0' is not a positive time"):
+        ScreeningSelector(family="cox").fit(X, negative)
 
 
 def test_holp_runs_in_the_selector(rng):
