@@ -520,7 +520,9 @@ def run_cautions(summary: RunSummary) -> list[str]:
         )
     for p in summary.record.passes.values():
         out += list(p.notes)
-    out += [str(n) for n in summary.record.extra.get("notes", [])]
+    # Extension point: notes and warnings any step records in the manifest reach the summary.
+    for key in ("warnings", "notes"):
+        out += [str(n) for n in summary.record.extra.get(key) or []]
     return out
 
 

@@ -201,7 +201,17 @@ def _model_table(summary) -> str:
         return ""
     cols = [
         c
-        for c in ("feature", "chrom", "pos", "coefficient", "entered", "p_value", "score")
+        for c in (
+            "feature",
+            "chrom",
+            "pos",
+            "coefficient",
+            "refit_coefficient",
+            "refit_se",
+            "entered",
+            "p_value",
+            "score",
+        )
         if c in mf and mf[c].notna().any()  # no empty chrom/pos columns without annotations
     ]
     parts = [html_table({c: mf[c].tolist() for c in cols})]

@@ -156,9 +156,9 @@ RANKING = TableSpec(
     ),
 )
 
-#: Extension point: columns a fit adds to model.tsv after ``coefficient`` (for example an unpenalised
-#: refit's coefficient and standard error), filled by the workflow through ``fit=``.
-FIT_SLOT = Slot("fit", "columns of the fit beyond the penalised coefficient")
+#: Extension point: further columns of the fit in model.tsv (after the refit's), filled by the
+#: workflow through ``fit=`` (see `widescreen.workflow._tables.MODEL_FIT_COLUMNS`).
+FIT_SLOT = Slot("fit", "further columns of the fit")
 
 MODEL = TableSpec(
     "model.tsv",
@@ -173,6 +173,18 @@ MODEL = TableSpec(
             "coefficient",
             "float64",
             "penalised coefficient per unit (of the feature as stored, missing values at its mean)",
+        ),
+        Column(
+            "refit_coefficient",
+            "float64",
+            "unpenalised maximum-likelihood refit on the selected features and covariates; NA "
+            "where the run made no refit",
+        ),
+        Column(
+            "refit_se",
+            "float64",
+            "model-based standard error of the refit coefficient; after selection not valid for "
+            "inference (the same data chose the features)",
         ),
         FIT_SLOT,
         Column(

@@ -23,8 +23,9 @@ from ..schema import (
 )
 from ._problem import Problem
 
-#: Extension point: `model.tsv` columns of the fit beyond ``coefficient`` (`widescreen.schema.FIT_SLOT`),
-#: as (Column, function of the IterativeResult giving one value per selected feature, in store order).
+#: Extension point: further `model.tsv` columns of the fit (`widescreen.schema.FIT_SLOT`), as
+#: (Column, function of the IterativeResult giving the whole column: intercept and covariate rows, then
+#: the selected features in store-index order, like ``result.coef``).
 MODEL_FIT_COLUMNS: tuple = ()
 
 
@@ -145,8 +146,24 @@ def model_columns(result) -> dict[str, object]:
             *result.coef[order].tolist(),
         ],
     }
+    fit = getattr(result, "refit", None)  # the unpenalised refit of the final model, if made
+    if fit is None:
+        cols["refit_coefficient"] = [float("nan")] * (h + index.size)
+        cols["refit_se"] = [float("nan")] * (h + index.size)
+    else:
+        cols["refit_coefficient"] = [
+            *([] if cox else [fit.intercept]),
+            *np.asarray(fit.unpenalized_coef).tolist(),
+            *np.asarray(fit.coef)[order].tolist(),
+        ]
+        cols["refit_se"] = [
+            *([] if cox else [fit.intercept_se]),
+            *np.asarray(fit.unpenalized_se).tolist(),
+            *np.asarray(fit.se)[order].tolist(),
+        ]
     for col, values in MODEL_FIT_COLUMNS:
-        cols[col.name] = nan + list(np.asarray(values(result))[order])
+        v = list(values(result))
+        cols[col.name] = v[:h] + list(np.asarray(v[h:])[order])
     cols["entered"] = na + result.entered[order].tolist()
     cols["score"] = nan + result.marginal["score"][order].tolist()
     for c in statistic_columns(problem.family.columns):
