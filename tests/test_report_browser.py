@@ -143,6 +143,6 @@ def test_the_report_renders_in_a_headless_browser(report, tmp_path):
     assert facts["cellMax"] < 1.5 * facts["cellMedian"]
     assert facts["iterations"] is not None
     assert facts["iterations"]["width"] <= facts["iterations"]["room"]
-    assert facts["tablesFit"]
+    assert facts["tablesFit"]  # with the empty and redundant columns left out, every table fits
     page = report.read_text()
     assert "rs$40$" in page  # the ids as they are, in the text

@@ -323,6 +323,15 @@ def _figures(summary) -> str:
     return "".join(parts) or "<p>No pictures for this run.</p>"
 
 
+def _redundant(frame) -> tuple[str, ...]:
+    """Columns a page table leaves out: empty ones (all NA), ``mean`` beside allele frequencies,
+    and ``term`` (the feature column already says intercept or covariate)."""
+    skip = [c for c in frame.columns if frame[c].isna().all()]
+    if "allele_freq" in frame and frame["allele_freq"].notna().any():
+        skip.append("mean")
+    return (*skip, "term")
+
+
 def _tables(summary) -> str:
     parts = ['<section id="tables"><h2>Tables</h2>']
     r = summary.ranking
@@ -333,13 +342,13 @@ def _tables(summary) -> str:
             "<h3>Ranking</h3>",
             f"<p>The top {shown} of {n} listed features, strongest first (ranking.tsv). "
             "Marginal p-values, one test per feature: not adjusted for multiple testing.</p>",
-            html_table(r, rows=summary.top, skip=("mean",)),
+            html_table(r, rows=summary.top, skip=_redundant(r)),
         ]
     if summary.model is not None:
         parts += [
             "<h3>Selected model</h3>",
             f'<p class="note">{escape(CAUTIONS[1])}</p>',
-            html_table(summary.model),
+            html_table(summary.model, skip=_redundant(summary.model)),
         ]
     if summary.iterations is not None:
         parts += [
