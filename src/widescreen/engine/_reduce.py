@@ -21,6 +21,7 @@ from typing import Any, TypeVar
 import numpy as np
 from dask.base import tokenize
 
+from ..schema import ReduceLayout
 from ._runfolder import atomic_write
 from ._scheduler import execute
 from ._source import BlockSource
@@ -159,8 +160,9 @@ def reduce_blocks(
         root = add_tree(graph, leaves, combine, task, split_every)
         out = execute(graph, leaves, root, scheduler=scheduler, progress=progress, total=n_blocks)
         return fin(out["final"])
-    folder = Path(checkpoint)
-    root_path = folder / "result.npy"
+    layout = ReduceLayout(Path(checkpoint))
+    folder = layout.root
+    root_path = layout.result
     meta = {
         "token": token,
         "source": source.token(),
@@ -177,7 +179,7 @@ def reduce_blocks(
     records: list[Any] = [None] * len(groups)
     todo = []
     for g in range(len(groups)):
-        rec = _load(folder / f"{g}.npy")
+        rec = _load(layout.group(g))
         if rec is None:
             todo.append(g)
         else:
@@ -191,7 +193,7 @@ def reduce_blocks(
             keys.append((f"{task}-chunk", i))
         leaves += keys
         head = (f"{task}-group", g)
-        graph[head] = (_save_group, combine, keys, str(folder / f"{g}.npy"))
+        graph[head] = (_save_group, combine, keys, str(layout.group(g)))
         heads.append(head)
     if heads:
         root_key = (f"{task}-groups", 0)
@@ -213,7 +215,7 @@ def reduce_blocks(
     result = tree_combine(records, combine, split_every) if len(records) > 1 else records[0]
     _save(root_path, result)
     for g in range(len(groups)):
-        (folder / f"{g}.npy").unlink(missing_ok=True)  # the root holds them all now
+        layout.group(g).unlink(missing_ok=True)  # the root holds them all now
     return fin(result)
 
 
@@ -240,7 +242,7 @@ def _load(path: Path) -> np.ndarray | None:
 
 def _same_meta(folder: Path, meta: dict) -> bool:
     try:
-        return json.loads((folder / "reduce.json").read_text()) == meta
+        return json.loads(ReduceLayout(folder).meta.read_text()) == meta
     except (OSError, ValueError):
         return False
 
@@ -251,7 +253,7 @@ def _reset(folder: Path, meta: dict) -> None:
     if folder.exists():
         shutil.rmtree(folder)
     folder.mkdir(parents=True)
-    atomic_write(folder / "reduce.json", json.dumps(meta))
+    atomic_write(ReduceLayout(folder).meta, json.dumps(meta))
 
 
 __all__ = ["add_tree", "reduce_blocks", "stream_combine", "sum_arrays", "tree_combine"]

@@ -2,8 +2,10 @@
 
 A pass's statistics are one float64 array of shape (n_features,) per column (read through
 `widescreen.schema.PassStats`, by range). Every
-summary here is an accumulator fed block by block (update), possibly over several passes over the
-arrays (end_pass), then finished; `scan` drives a set of them with one read per block and pass.
+summary here is a chunk / combine / finish triple, possibly over several passes over the arrays: per
+block `part` makes a small record, `combine` merges records, `end_pass` finishes the merged record
+of a pass. `scan` reads each block once per pass and reduces the records with the engine's tree
+reduction (`widescreen.engine.stream_combine`), so memory grows with log(blocks), not with p.
 
 Features that were filtered in the pass, and those with score exactly 0 and p-value 1 (constant, or
 explained by the covariates), were not tested and are left out of every summary.
@@ -33,18 +35,24 @@ class Chunk:
 
 
 class Accumulator:
-    """Base of the blockwise summaries: which columns it reads and whether it needs another pass."""
+    """Base of the blockwise summaries: columns read, passes wanted, and the chunk / combine / finish
+    of each pass."""
 
     columns: tuple[str, ...] = ()
 
     def wants_pass(self) -> bool:
         return False
 
-    def update(self, chunk: Chunk) -> None:  # pragma: no cover - interface
+    def part(self, chunk: Chunk):  # pragma: no cover - interface
+        """The record of one block."""
         raise NotImplementedError
 
-    def end_pass(self) -> None:
-        pass
+    def combine(self, records: list):  # pragma: no cover - interface
+        """Records merged into one, in block order."""
+        raise NotImplementedError
+
+    def end_pass(self, record) -> None:
+        """Finish a pass from the merged record of all blocks (None when there were no blocks)."""
 
 
 def scan(stats, accumulators: list[Accumulator], block: int = BLOCK) -> None:
@@ -58,6 +66,8 @@ def scan(stats, accumulators: list[Accumulator], block: int = BLOCK) -> None:
     block : int
         Features per block (rounded up to a multiple of the arrays' chunk length).
     """
+    from ..engine import stream_combine
+
     names = set(stats.columns)
     while True:
         active = [a for a in accumulators if a.wants_pass()]
@@ -65,12 +75,25 @@ def scan(stats, accumulators: list[Accumulator], block: int = BLOCK) -> None:
             return
         need = {c for a in active for c in a.columns} | {"filtered", "score", "p_value"}
         need &= names
-        for start, stop, cols in stats.blocks(sorted(need), step=block):
-            chunk = Chunk(start, stop, cols, tested_mask(cols, stop - start))
-            for a in active:
-                a.update(chunk)
-        for a in active:
-            a.end_pass()
+
+        def records(active=active, need=need):
+            for start, stop, cols in stats.blocks(sorted(need), step=block):
+                chunk = Chunk(start, stop, cols, tested_mask(cols, stop - start))
+                yield tuple(a.part(chunk) for a in active)
+
+        def combine(recs: list, active=active) -> tuple:
+            return tuple(a.combine([r[i] for r in recs]) for i, a in enumerate(active))
+
+        root = stream_combine(records(), combine)
+        for i, a in enumerate(active):
+            a.end_pass(None if root is None else root[i])
+
+
+def _sum(records: list) -> np.ndarray:
+    out = np.array(records[0], copy=True)
+    for r in records[1:]:
+        out += r
+    return out
 
 
 def tested_mask(cols: dict[str, np.ndarray], b: int) -> np.ndarray:
@@ -98,14 +121,17 @@ class Counts(Accumulator):
     def wants_pass(self) -> bool:
         return not self._done
 
-    def update(self, chunk: Chunk) -> None:
+    def part(self, chunk: Chunk) -> np.ndarray:
         b = chunk.stop - chunk.start
         filtered = chunk.cols["filtered"] == 1.0 if "filtered" in chunk.cols else np.zeros(b, bool)
-        self.features += b
-        self.filtered += int(filtered.sum())
-        self.untested += int((~chunk.tested & ~filtered).sum())
+        return np.array([b, filtered.sum(), (~chunk.tested & ~filtered).sum()], dtype=np.int64)
 
-    def end_pass(self) -> None:
+    def combine(self, records: list) -> np.ndarray:
+        return _sum(records)
+
+    def end_pass(self, record) -> None:
+        if record is not None:
+            self.features, self.filtered, self.untested = (int(v) for v in record)
         self._done = True
 
 
@@ -154,25 +180,42 @@ class RankSelector(Accumulator):
             raise ValueError(f"{self.column}: negative values cannot be ranked by their bits")
         return (v + 0.0).view(np.uint64)  # + 0.0 turns -0.0 into +0.0
 
-    def update(self, chunk: Chunk) -> None:
+    def part(self, chunk: Chunk):
         u = self._bits(chunk)
         if self._pass == 0:
-            self.count += u.size
-            self._hist += np.bincount((u >> np.uint64(48)).astype(np.intp), minlength=1 << 16)
-            return
+            hist = np.bincount((u >> np.uint64(48)).astype(np.intp), minlength=1 << 16)
+            return (u.size, hist.astype(np.int64))
+        out = []
         for t in self._targets:
             if t["value"] is not None:
+                out.append(None)
                 continue
             shift = np.uint64(64 - t["bits"])
             sel = u[(u >> shift) == np.uint64(t["prefix"])] if t["bits"] else u
             if t["gather"]:
-                t["bucket"].append(sel)
+                out.append(sel)
             else:
                 digit = ((sel >> np.uint64(48 - t["bits"])) & np.uint64(0xFFFF)).astype(np.intp)
-                t["hist"] += np.bincount(digit, minlength=1 << 16)
+                out.append(np.bincount(digit, minlength=1 << 16).astype(np.int64))
+        return out
 
-    def end_pass(self) -> None:
+    def combine(self, records: list):
         if self._pass == 0:
+            return (sum(r[0] for r in records), _sum([r[1] for r in records]))
+        merged = []
+        for i, t in enumerate(self._targets):
+            parts = [r[i] for r in records]
+            if t["value"] is not None:
+                merged.append(None)
+            elif t["gather"]:
+                merged.append(np.concatenate(parts) if parts else np.empty(0, np.uint64))
+            else:
+                merged.append(_sum(parts))
+        return merged
+
+    def end_pass(self, record) -> None:
+        if self._pass == 0:
+            self.count, self._hist = (0, self._hist) if record is None else record
             if self.count == 0:
                 self.values = (float("nan"), float("nan"))
                 self._targets = []
@@ -180,14 +223,13 @@ class RankSelector(Accumulator):
                 ranks = sorted({(self.count - 1) // 2, self.count // 2})
                 self._targets = [self._descend(k, 0, 0, self._hist) for k in ranks]
         else:
-            for t in self._targets:
+            for t, got in zip(self._targets, record, strict=True):
                 if t["value"] is not None:
                     continue
                 if t["gather"]:
-                    vals = np.concatenate(t["bucket"]) if t["bucket"] else np.empty(0, np.uint64)
-                    t["value"] = float(np.partition(vals, t["rank"])[t["rank"]].view(np.float64))
+                    t["value"] = float(np.partition(got, t["rank"])[t["rank"]].view(np.float64))
                 else:
-                    t.update(self._descend(t["rank"], t["prefix"], t["bits"], t["hist"]))
+                    t.update(self._descend(t["rank"], t["prefix"], t["bits"], got))
         self._pass += 1
         if self._targets and all(t["value"] is not None for t in self._targets):
             v = [t["value"] for t in self._targets]
@@ -201,11 +243,10 @@ class RankSelector(Accumulator):
         prefix = (prefix << 16) | digit
         bits += 16
         rank -= below
-        t = {"rank": rank, "prefix": prefix, "bits": bits, "value": None, "bucket": []}
+        t = {"rank": rank, "prefix": prefix, "bits": bits, "value": None}
         if bits == 64:  # every bit is known: that is the value
             t["value"] = float(np.array([prefix], dtype=np.uint64).view(np.float64)[0])
         t["gather"] = int(hist[digit]) <= self.gather_limit
-        t["hist"] = np.zeros(1 << 16, dtype=np.int64)
         return t
 
 
@@ -291,31 +332,45 @@ class PValueScan(Accumulator):
     def wants_pass(self) -> bool:
         return not self._done
 
-    def update(self, chunk: Chunk) -> None:
+    def part(self, chunk: Chunk) -> dict:
         p = chunk.cols["p_value"]
         ok = chunk.tested & np.isfinite(p)
         y = np.where(ok, neg_log10(np.where(ok, p, 1.0)), np.nan)
-        self.n_tested += int(ok.sum())
         above = ok & (y >= self.threshold)
-        self.n_above += int(above.sum())
-        low = y[ok & ~above]
-        self.counts += np.histogram(low, bins=self.edges)[0]
         rng = np.random.default_rng([self.seed, chunk.start])
         keep = thin_mask(y, self.threshold, self.fraction, rng)
         idx_all = np.arange(chunk.start, chunk.stop)
         lo, hi = np.searchsorted(self.highlight, [chunk.start, chunk.stop])
         if hi > lo:
             keep[self.highlight[lo:hi] - chunk.start] |= ok[self.highlight[lo:hi] - chunk.start]
-        part = {"index": idx_all[keep], "y": y[keep], "above": above[keep]}
+        points = {"index": idx_all[keep], "y": y[keep], "above": above[keep]}
         if self.annotations is not None:
+            # Chromosome codes are given in the order blocks are read (parts run in block order).
             chrom = as_unicode(self.annotations[0][chunk.start : chunk.stop])
             pos = np.asarray(self.annotations[1][chunk.start : chunk.stop], dtype=np.int64)
             codes = self.chroms.codes(chrom, pos)
-            part["chrom"] = codes[keep]
-            part["pos"] = pos[keep]
-        self._parts.append(part)
+            points["chrom"] = codes[keep]
+            points["pos"] = pos[keep]
+        return {
+            "n_tested": int(ok.sum()),
+            "n_above": int(above.sum()),
+            "counts": np.histogram(y[ok & ~above], bins=self.edges)[0].astype(np.int64),
+            "points": [points],
+        }
 
-    def end_pass(self) -> None:
+    def combine(self, records: list) -> dict:
+        return {
+            "n_tested": sum(r["n_tested"] for r in records),
+            "n_above": sum(r["n_above"] for r in records),
+            "counts": _sum([r["counts"] for r in records]),
+            "points": [p for r in records for p in r["points"]],
+        }
+
+    def end_pass(self, record) -> None:
+        if record is not None:
+            self.n_tested, self.n_above = record["n_tested"], record["n_above"]
+            self.counts = record["counts"]
+            self._parts = record["points"]
         self._done = True
 
     def points(self) -> dict[str, np.ndarray]:
@@ -351,17 +406,24 @@ class ScoreHistogram(Accumulator):
         s = chunk.cols["score"]
         return s[chunk.tested & np.isfinite(s)]
 
-    def update(self, chunk: Chunk) -> None:
+    def part(self, chunk: Chunk):
         s = self._values(chunk)
         if self._pass == 0:
-            if s.size:
-                self.lo, self.hi = min(self.lo, float(s.min())), max(self.hi, float(s.max()))
-        else:
-            self.counts += np.histogram(s, bins=self.edges)[0]
+            return (float(s.min()), float(s.max())) if s.size else (np.inf, -np.inf)
+        return np.histogram(s, bins=self.edges)[0].astype(np.int64)
 
-    def end_pass(self) -> None:
+    def combine(self, records: list):
         if self._pass == 0:
+            return (min(r[0] for r in records), max(r[1] for r in records))
+        return _sum(records)
+
+    def end_pass(self, record) -> None:
+        if self._pass == 0:
+            if record is not None:
+                self.lo, self.hi = record
             lo, hi = (0.0, 1.0) if not np.isfinite(self.lo) else (min(self.lo, 0.0), self.hi)
             hi = hi if hi > lo else lo + 1.0
             self.edges = np.linspace(lo, hi, self.bins + 1)
+        elif record is not None:
+            self.counts = record
         self._pass += 1

@@ -2,7 +2,8 @@
 
 The one place the engine, the workflow and the report learn the run folder from:
 
-- `RunLayout` / `PassLayout`: every path (manifest, passes, statistics chunks, markers, tables).
+- `RunLayout` / `PassLayout` / `ReduceLayout`: every path (manifest, passes, statistics chunks,
+  markers, pre-pass checkpoints, tables, report).
 - Typed records with ``to_dict`` / ``from_dict``: `PassMeta` (pass.json), `PassSummary`,
   `FitRecord` and `PathRecord`, `IterationRecord`, `ModelRecord`, `SessionRecord`, and
   `ManifestRecord` for the whole manifest.
@@ -13,7 +14,7 @@ The one place the engine, the workflow and the report learn the run folder from:
 Imports only numpy here; zarr and pandas load when statistics or typed tables are read.
 """
 
-from ._layout import PassLayout, RunFolderError, RunLayout
+from ._layout import PassLayout, ReduceLayout, RunFolderError, RunLayout
 from ._records import (
     FitRecord,
     IterationRecord,
@@ -78,6 +79,7 @@ __all__ = [
     "PassStats",
     "PassSummary",
     "PathRecord",
+    "ReduceLayout",
     "RunFolderError",
     "RunLayout",
     "SessionRecord",

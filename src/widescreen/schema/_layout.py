@@ -11,6 +11,8 @@ Layout::
       passes/NAME/stats/COL/c/BLOCK the chunk file of one block of one statistic
       passes/NAME/done/BLOCK.json   completion marker of one block (`BlockMarker`), after its statistics
       passes/NAME/done/BLOCK.kept.npz  stored values of the block's top-k columns, before the marker
+      passes/PASS-PRE/              checkpoints of a family's pre-pass (a tree reduction, `ReduceLayout`):
+                                    reduce.json (its inputs), G.npy per finished group, result.npy
       ranking.tsv, model.tsv, iterations.tsv, entries.tsv   the tables (`widescreen.schema.TABLES`)
       report.html, figures/NAME.png the report
 
@@ -67,6 +69,25 @@ class PassLayout:
 
 
 @dataclass(frozen=True)
+class ReduceLayout:
+    """The checkpoint folder of a tree reduction over blocks (for example HOLP's Gram pre-pass)."""
+
+    root: Path
+
+    @property
+    def meta(self) -> Path:
+        return self.root / "reduce.json"
+
+    def group(self, g: int) -> Path:
+        """The combined record of one finished group of blocks."""
+        return self.root / f"{g}.npy"
+
+    @property
+    def result(self) -> Path:
+        return self.root / "result.npy"
+
+
+@dataclass(frozen=True)
 class RunLayout:
     """The paths of a run folder."""
 
@@ -90,6 +111,9 @@ class RunLayout:
     def pass_(self, name: str) -> PassLayout:
         return PassLayout(self.passes / name)
 
+    def reduction(self, name: str) -> ReduceLayout:
+        return ReduceLayout(self.passes / name)
+
     def table(self, file: str) -> Path:
         return self.root / file
 
@@ -111,4 +135,4 @@ class RunLayout:
         return sorted(p.name for p in self.passes.iterdir() if PassLayout(p).has_stats())
 
 
-__all__ = ["PassLayout", "RunFolderError", "RunLayout"]
+__all__ = ["PassLayout", "ReduceLayout", "RunFolderError", "RunLayout"]

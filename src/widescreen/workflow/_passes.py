@@ -153,7 +153,7 @@ class PassContext:
             partial(_pre_pass_block, fn=pre.chunk, rows=rows, sub_block=self.sub_block),
             name=name,
             token=token,
-            checkpoint=None if self.run is None else self.run.pass_dir(name),
+            checkpoint=None if self.run is None else self.run.layout.reduction(name).root,
             scheduler=self.scheduler,
             progress=self._progress(name),
         )

@@ -152,12 +152,12 @@ def model_columns(result) -> dict[str, object]:
         cols["refit_se"] = [float("nan")] * (h + index.size)
     else:
         cols["refit_coefficient"] = [
-            *([] if cox else [fit.intercept]),
+            *([] if no_intercept else [fit.intercept]),
             *np.asarray(fit.unpenalized_coef).tolist(),
             *np.asarray(fit.coef)[order].tolist(),
         ]
         cols["refit_se"] = [
-            *([] if cox else [fit.intercept_se]),
+            *([] if no_intercept else [fit.intercept_se]),
             *np.asarray(fit.unpenalized_se).tolist(),
             *np.asarray(fit.se)[order].tolist(),
         ]
