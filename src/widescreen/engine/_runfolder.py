@@ -12,6 +12,7 @@ from __future__ import annotations
 import fcntl
 import json
 import os
+import shutil
 import socket
 import threading
 import time
@@ -23,6 +24,27 @@ import numpy as np
 from ..schema import RunFolderError, RunLayout
 
 
+#: Marks the temporary name of a file being written (``.NAME.tmp-PID-THREAD``).
+TMP_MARK = ".tmp-"
+#: Entries a run folder may hold besides temporary files: a folder holding only these (and
+#: temporaries) is recognisably a run folder, which ``--restart`` may empty.
+RUN_FOLDER_ENTRIES = frozenset(
+    {
+        "manifest.json",
+        ".lock",
+        ".reserve",
+        "passes",
+        "ranking.tsv",
+        "model.tsv",
+        "iterations.tsv",
+        "report.html",
+        "figures",
+    }
+)
+#: Bytes set aside while a session runs, released to save the final manifest on a full disk.
+RESERVE_BYTES = 1 << 20
+
+
 def atomic_write(path: Path, data: str | bytes, *, sync: bool = True) -> None:
     """Write to a temporary name in the same folder, flush it to disk, then rename over ``path``.
 
@@ -31,19 +53,44 @@ def atomic_write(path: Path, data: str | bytes, *, sync: bool = True) -> None:
     already makes the file whole or absent for any process; the flush guards against a machine crash).
     """
     path = Path(path)
-    path.parent.mkdir(parents=True, exist_ok=True)
-    tmp = path.with_name(f".{path.name}.tmp-{os.getpid()}-{threading.get_ident()}")
+    tmp = path.with_name(f".{path.name}{TMP_MARK}{os.getpid()}-{threading.get_ident()}")
     mode = "wb" if isinstance(data, bytes) else "w"
     try:
+        path.parent.mkdir(parents=True, exist_ok=True)
         with open(tmp, mode) as f:
             f.write(data)
             if sync:
                 f.flush()
                 os.fsync(f.fileno())
         os.replace(tmp, path)
+    except OSError as exc:
+        tmp.unlink(missing_ok=True)
+        if exc.filename is None:
+            # A full disk reports ENOSPC from write() with no file name: name the file being written.
+            raise OSError(exc.errno, exc.strerror or str(exc), str(path)) from exc
+        raise
     except BaseException:
         tmp.unlink(missing_ok=True)
         raise
+
+
+def is_partial_file(name: str) -> bool:
+    """Whether a file name is a temporary that a killed writer can leave (ours or zarr's)."""
+    return (name.startswith(".") and TMP_MARK in name) or name.endswith(".partial")
+
+
+def remove_partial_files(root: Path) -> int:
+    """Remove every temporary file a killed writer left under ``root``; return how many.
+
+    Only safe while holding the folder's lock (no other writer is alive).
+    """
+    n = 0
+    for dirpath, _dirs, files in os.walk(root):
+        for f in files:
+            if is_partial_file(f):
+                Path(dirpath, f).unlink(missing_ok=True)
+                n += 1
+    return n
 
 
 def _pid_alive(pid: int) -> bool:
@@ -173,9 +220,68 @@ class RunFolder:
         if not self.manifest_path.exists():
             return None
         try:
-            return json.loads(self.manifest_path.read_text())
-        except ValueError as exc:
-            raise RunFolderError(f"{self.manifest_path}: unreadable manifest: {exc}") from None
+            manifest = json.loads(self.manifest_path.read_text(encoding="utf-8"))
+        except (ValueError, UnicodeDecodeError) as exc:
+            raise RunFolderError(
+                f"{self.manifest_path}: unreadable manifest ({exc}); --restart starts the run over"
+            ) from None
+        if not isinstance(manifest, dict):
+            raise RunFolderError(
+                f"{self.manifest_path}: not a run manifest (a JSON {type(manifest).__name__}); "
+                "--restart starts the run over"
+            )
+        return manifest
+
+    def foreign_entries(self) -> list[str]:
+        """Names in the folder that a run does not write (temporary files aside), sorted."""
+        if not self.path.is_dir():
+            return []
+        return sorted(
+            p.name
+            for p in self.path.iterdir()
+            if p.name not in RUN_FOLDER_ENTRIES and not is_partial_file(p.name)
+        )
+
+    def holds_results(self) -> bool:
+        """Whether the folder holds anything besides the lock, the reserve and temporary files."""
+        keep = {".lock", ".reserve"}
+        return any(
+            p.name not in keep and not is_partial_file(p.name) for p in self.path.iterdir()
+        )
+
+    def clear(self) -> None:
+        """Remove everything but the lock (the caller holds it)."""
+        for child in self.path.iterdir():
+            if child.name == ".lock":
+                continue
+            if child.is_dir() and not child.is_symlink():
+                shutil.rmtree(child)
+            else:
+                child.unlink(missing_ok=True)
+
+    def reserve(self, size: int = RESERVE_BYTES) -> None:
+        """Set ``size`` bytes aside (``.reserve``), so a full disk still leaves room for the last
+        manifest save (`release_reserve` frees it first). Best effort: a file system without
+        preallocation gets a file of zeros."""
+        path = self.path / ".reserve"
+        try:
+            fd = os.open(path, os.O_WRONLY | os.O_CREAT, 0o644)
+            try:
+                if hasattr(os, "posix_fallocate"):
+                    os.posix_fallocate(fd, 0, size)
+                else:  # pragma: no cover - not on Linux
+                    os.pwrite(fd, bytes(size), 0)
+            finally:
+                os.close(fd)
+        except OSError:
+            path.unlink(missing_ok=True)  # no room even for that: the run fails on its own writes
+
+    def release_reserve(self) -> bool:
+        """Free the reserved bytes; whether there were any."""
+        path = self.path / ".reserve"
+        existed = path.exists()
+        path.unlink(missing_ok=True)
+        return existed
 
     def write_manifest(self, manifest: dict) -> None:
         atomic_write(

@@ -179,14 +179,35 @@ class Executor:
             pool = ThreadPoolExecutor(self.threads_per_worker)
             get, kwargs = dask.threaded.get, {"num_workers": self.threads_per_worker, "pool": pool}
         callbacks = [_BlockProgress(block_keys, progress, offset, total)] if progress else []
-        try:
-            with threadpool_limits(limits=1, user_api="blas"), dask.config.set(callbacks=set()):
-                with _Callbacks(callbacks):
+        # The one-thread BLAS limit is process-wide and must outlive every block task: when the pass
+        # stops early (a failed block, Ctrl-C, SIGTERM), blocks still running finish and write their
+        # statistics, and they must compute them exactly as an uninterrupted pass would (BLAS with
+        # more threads sums in another order). So the pool is shut down inside the limit.
+        with threadpool_limits(limits=1, user_api="blas"):
+            try:
+                with dask.config.set(callbacks=set()), _Callbacks(callbacks):
                     out = get(graph, keys, **kwargs)
-        finally:
-            if pool is not None:
-                pool.shutdown(wait=True, cancel_futures=True)
+            finally:
+                if pool is not None:
+                    _shutdown(pool)
         return {"final": out[0], "blocks": list(out[1:])}
+
+
+def _shutdown(pool: ThreadPoolExecutor) -> None:
+    """Cancel the blocks not started and wait for the running ones, even through a second Ctrl-C.
+
+    A second interrupt while waiting would otherwise leave blocks running (and writing) after the
+    BLAS limit is released; it is delivered once the pool is empty.
+    """
+    pending: BaseException | None = None
+    while True:
+        try:
+            pool.shutdown(wait=True, cancel_futures=True)
+            break
+        except KeyboardInterrupt as exc:  # a second Ctrl-C / SIGTERM: finish waiting first
+            pending = exc
+    if pending is not None:
+        raise pending
 
 
 def open_executor(scheduler: Any = None, *, memory_budget: int | None = None) -> Executor:

@@ -14,14 +14,55 @@ from __future__ import annotations
 
 import os
 import platform
-import shutil
 import socket
 import time
 from dataclasses import dataclass, field
 from pathlib import Path
 
 from .._version import __version__
-from ..engine import RunFolder, RunFolderError, RunLock, diff_config
+from ..engine._runfolder import (
+    RESERVE_BYTES,
+    RunFolder,
+    RunFolderError,
+    RunLock,
+    diff_config,
+    remove_partial_files,
+)
+
+
+def _check_restartable(run: RunFolder) -> None:
+    """``--restart`` empties only what is recognisably a run folder: one whose manifest names a
+    command, or that holds nothing a run does not write. Anything else is refused untouched."""
+    try:
+        manifest = run.read_manifest()
+    except RunFolderError:
+        manifest = None  # unreadable: judged by its other entries
+    if isinstance(manifest, dict) and "command" in manifest and "sessions" in manifest:
+        return
+    foreign = run.foreign_entries()
+    if foreign:
+        shown = ", ".join(foreign[:5]) + (", ..." if len(foreign) > 5 else "")
+        raise RunFolderError(
+            f"{run.path}: does not look like a run folder (it holds {shown}); --restart empties "
+            "only run folders: choose another folder"
+        )
+
+
+def _mark_not_running(path: Path) -> None:
+    """Last resort when the final manifest cannot be saved: rewrite the status in place.
+
+    "stopped" has the length of "running", so the file keeps its size (no new bytes are needed on a
+    full disk), and every other record stays.
+    """
+    try:
+        text = path.read_bytes()
+        old = b'"status": "running"'
+        if old in text:
+            new = b'"status": "stopped"'
+            with open(path, "r+b") as f:
+                f.write(text.replace(old, new))
+    except OSError:
+        pass
 
 
 def versions() -> dict[str, str]:
@@ -99,6 +140,7 @@ class RunSession:
         self.save()
 
     def close(self) -> None:
+        self.run.release_reserve()
         self.lock.release()
 
     def __enter__(self) -> RunSession:
@@ -110,12 +152,25 @@ class RunSession:
                 status = "interrupted" if exc_type is KeyboardInterrupt else f"failed: {exc}"
                 self.manifest["status"] = status
                 self._end_session(status)
-                try:
-                    self.save()
-                except OSError:
-                    pass  # the folder itself may be what failed; the error says so
+                self._save_last()
         finally:
             self.close()
+
+    def _save_last(self) -> None:
+        """Save the final status, using the reserved bytes when the disk is full; if even that fails,
+        remove the manifest's "running" status on disk rather than leave it claiming a live run."""
+        try:
+            self.save()
+            return
+        except OSError:
+            pass
+        if self.run.release_reserve():
+            try:
+                self.save()
+                return
+            except OSError:
+                pass
+        _mark_not_running(self.run.manifest_path)
 
 
 def open_session(
@@ -139,23 +194,29 @@ def open_session(
     run = RunFolder(out)
     if run.path.exists() and not run.path.is_dir():
         raise RunFolderError(f"{run.path}: exists and is not a folder")
+    if restart and run.path.is_dir():
+        _check_restartable(run)  # before the lock file is made, so a refusal leaves no trace
     try:
         lock = run.lock()
     except OSError as exc:
         raise RunFolderError(f"{run.path}: cannot create the run folder: {exc.strerror}") from None
     lock.acquire()
     try:
-        old = run.read_manifest()
-        if old is not None and restart:
-            for child in run.path.iterdir():
-                if child.name == lock.path.name:
-                    continue
-                shutil.rmtree(child) if child.is_dir() else child.unlink()
+        # We hold the lock: no writer is alive, so temporary files are leftovers of a killed one.
+        remove_partial_files(run.path)
+        if restart:
+            run.clear()
             old = None
-        elif old is None and any(p.name != lock.path.name for p in run.path.iterdir()):
-            raise RunFolderError(
-                f"{run.path}: holds files but no manifest.json; choose an empty folder or pass --restart"
+        else:
+            old = run.read_manifest()
+        if old is None and run.holds_results():
+            foreign = run.foreign_entries()
+            hint = (
+                "choose an empty folder"
+                if foreign
+                else "choose an empty folder or pass --restart to start over"
             )
+            raise RunFolderError(f"{run.path}: holds files but no manifest.json; {hint}")
         if old is not None:
             problems = []
             if old.get("command") != command:
@@ -192,6 +253,7 @@ def open_session(
             resumed = False
         session = RunSession(run=run, lock=lock, manifest=manifest, resumed=resumed)
         session.save()
+        run.reserve(max(RESERVE_BYTES, 4 * run.manifest_path.stat().st_size))
         return session
     except BaseException:
         lock.release()
