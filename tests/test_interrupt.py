@@ -6,6 +6,7 @@ from __future__ import annotations
 import threading
 import time
 
+import numpy as np
 import pytest
 from threadpoolctl import threadpool_info, threadpool_limits
 
@@ -44,3 +45,40 @@ def test_blas_limit_holds_until_running_blocks_finish(stop):
         after = _blas_threads()
     assert seen == [1]  # the running block finished under the one-thread limit
     assert after == 2  # and lifted once the pass has ended
+
+
+def test_interrupted_import_says_what_was_left(tmp_path, monkeypatch):
+    from typer.testing import CliRunner
+
+    import widescreen.store._ingest_npy as ingest_npy
+    from widescreen.cli import app
+
+    src = tmp_path / "x.npy"
+    np.save(src, np.zeros((4, 3), np.float32))
+
+    def stopped(*args, **kwargs):
+        raise KeyboardInterrupt
+
+    monkeypatch.setattr(ingest_npy, "import_npy", stopped)
+    res = CliRunner().invoke(app, ["import", str(src), str(tmp_path / "x.zarr")])
+    assert res.exit_code == 130
+    assert "partial store was removed" in res.output and "resume" not in res.output
+
+
+def test_import_killed_mid_way_is_named_and_overwrite_replaces_it(tmp_path):
+    from typer.testing import CliRunner
+
+    from widescreen.cli import app
+    from widescreen.store import DatasetWriter
+
+    store = tmp_path / "x.zarr"
+    # what a SIGKILL during an import leaves: a store never marked complete
+    w = DatasetWriter(store, ["a", "b"], "continuous", "float32", n_features=2)
+    w.append(np.zeros((2, 2), np.float32), ["f1", "f2"])
+    src = tmp_path / "x.npy"
+    np.save(src, np.ones((2, 3), np.float32))
+    res = CliRunner().invoke(app, ["import", str(src), str(store)])
+    assert res.exit_code == 1
+    assert "did not finish" in res.output and "--overwrite" in res.output
+    res = CliRunner().invoke(app, ["import", str(src), str(store), "--overwrite"])
+    assert res.exit_code == 0, res.output

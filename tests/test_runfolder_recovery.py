@@ -64,14 +64,14 @@ def test_restart_refuses_a_folder_that_is_not_a_run_folder(tmp_path):
         _open(out, restart=True)
     assert (out / "thesis.tex").read_text() == "precious"
     assert not (out / ".lock").exists()
-    with pytest.raises(RunFolderError, match="no manifest.json; choose an empty folder$"):
+    with pytest.raises(RunFolderError, match=r"no manifest\.json; choose an empty folder$"):
         _open(out)
 
 
 def test_run_folder_without_manifest_is_restartable(tmp_path):
     out = tmp_path / "run"
     (out / "passes" / "screen").mkdir(parents=True)
-    with pytest.raises(RunFolderError, match="no manifest.json; .*pass --restart"):
+    with pytest.raises(RunFolderError, match=r"no manifest\.json; .*pass --restart"):
         _open(out)
     with _open(out, restart=True):
         pass

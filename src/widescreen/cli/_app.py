@@ -57,8 +57,18 @@ def _expected_errors() -> tuple[type[BaseException], ...]:
     )
 
 
-def friendly(fn):
-    """Turn the errors a user can cause into one line on stderr and exit code 1."""
+#: What Ctrl-C / SIGTERM leaves, per kind of command.
+RESUMABLE = "interrupted; finished blocks are kept, rerun the same command to resume"
+NOT_RESUMABLE = "interrupted; the partial store was removed, run the same command again"
+
+
+def friendly(fn=None, *, interrupted: str = RESUMABLE):
+    """Turn the errors a user can cause into one line on stderr and exit code 1.
+
+    ``interrupted`` is the line printed on Ctrl-C or SIGTERM (exit code 130).
+    """
+    if fn is None:
+        return functools.partial(friendly, interrupted=interrupted)
 
     @functools.wraps(fn)
     def wrapper(*args, **kwargs):
@@ -71,10 +81,8 @@ def friendly(fn):
             typer.echo(f"error: {exc.format_message()}", err=True)
             raise typer.Exit(code=exc.exit_code) from None
         except KeyboardInterrupt:
-            typer.echo(
-                "\ninterrupted; finished blocks are kept, rerun the same command to resume",
-                err=True,
-            )
+            _quiet_after_interrupt()
+            typer.echo("\n" + interrupted, err=True)
             raise typer.Exit(code=130) from None
         except _expected_errors() as exc:
             typer.echo(f"error: {exc}", err=True)
@@ -205,7 +213,7 @@ def screen_cmd(
 
 
 @app.command("simulate")
-@friendly
+@friendly(interrupted=NOT_RESUMABLE)
 def simulate_cmd(
     store: Annotated[Path, typer.Argument(help="Path of the new store.")],
     design: Annotated[
@@ -285,7 +293,7 @@ def demo_cmd(
 
 
 @app.command("import")
-@friendly
+@friendly(interrupted=NOT_RESUMABLE)
 def import_cmd(
     src: Annotated[
         Path, typer.Argument(help="CSV/TSV (optionally .gz), .npy, or VCF (.vcf, .vcf.gz) file.")
@@ -388,9 +396,30 @@ def inspect_cmd(
     typer.echo(inspect_dataset(store, sample_blocks=sample_blocks).format())
 
 
-def _terminate(signum, frame) -> None:
-    # Batch schedulers end jobs at their time limit with SIGTERM: stop like Ctrl-C, so the session is
-    # recorded as interrupted and finished blocks are kept for the rerun.
+_IN_MAIN = False  # set by `main`: the process is the command (not a caller's test or notebook)
+_STOPPING = False  # a first Ctrl-C / SIGTERM arrived
+
+
+def _quiet_after_interrupt() -> None:
+    """As the process's entry point, silence what libraries print while objects are torn down after
+    Ctrl-C ("Task was destroyed but it is pending!", ignored exceptions); `main` then leaves without
+    the interpreter's finalisation."""
+    if not _IN_MAIN:
+        return
+    import logging
+
+    logging.disable(logging.CRITICAL)
+    sys.unraisablehook = lambda _unraisable: None
+
+
+def _on_signal(signum, frame) -> None:
+    """Ctrl-C and SIGTERM (what batch schedulers send at a time limit) stop like Ctrl-C: the session
+    is recorded as interrupted and finished blocks are kept. A second one while stopping ends the
+    process at once, which is as safe as SIGKILL (every file in the run folder is whole)."""
+    global _STOPPING
+    if _STOPPING:
+        os._exit(130)
+    _STOPPING = True
     raise KeyboardInterrupt
 
 
@@ -398,8 +427,25 @@ def main() -> None:
     """Entry point of the ``widescreen`` command."""
     import signal
 
-    signal.signal(signal.SIGTERM, _terminate)
-    app(prog_name="widescreen")
+    global _IN_MAIN
+    _IN_MAIN = True
+    signal.signal(signal.SIGTERM, _on_signal)
+    signal.signal(signal.SIGINT, _on_signal)
+    try:
+        app(prog_name="widescreen")
+    except SystemExit as exc:
+        if exc.code == 130:
+            # Interrupted, and the run folder is already consistent: leave without finalising the
+            # interpreter, whose teardown of half-stopped threads and event loops printed library
+            # noise and, in native code, could abort the process (SIGABRT).
+            sys.stdout.flush()
+            sys.stderr.flush()
+            os._exit(130)
+        raise
+    except KeyboardInterrupt:  # before a command started (while parsing or importing)
+        sys.stderr.write("\ninterrupted\n")
+        sys.stderr.flush()
+        os._exit(130)
 
 
 if __name__ == "__main__":  # pragma: no cover

@@ -245,9 +245,7 @@ class RunFolder:
     def holds_results(self) -> bool:
         """Whether the folder holds anything besides the lock, the reserve and temporary files."""
         keep = {".lock", ".reserve"}
-        return any(
-            p.name not in keep and not is_partial_file(p.name) for p in self.path.iterdir()
-        )
+        return any(p.name not in keep and not is_partial_file(p.name) for p in self.path.iterdir())
 
     def clear(self) -> None:
         """Remove everything but the lock (the caller holds it)."""

@@ -156,6 +156,11 @@ class DatasetWriter:
         self.path = Path(path)
         if self.path.exists():
             if not overwrite:
+                if _unfinished_store(self.path):
+                    raise StoreError(
+                        f"{self.path}: holds an import that did not finish (it was stopped); an "
+                        "import cannot resume: use --overwrite to replace it"
+                    )
                 raise StoreError(f"{self.path}: already exists (choose another path or overwrite)")
             shutil.rmtree(self.path)
         sample_ids = np.asarray(sample_ids, dtype=str)
@@ -284,6 +289,16 @@ class DatasetWriter:
     def __exit__(self, exc_type, exc, tb) -> None:
         if exc_type is not None:
             self.abort()
+
+
+def _unfinished_store(path: Path) -> bool:
+    """Whether ``path`` is a widescreen store whose import never marked it complete."""
+    try:
+        meta = json.loads((path / "zarr.json").read_text(encoding="utf-8"))
+        attrs = meta["attributes"][ATTRS_KEY]
+        return attrs.get("complete") is False
+    except (OSError, ValueError, KeyError, TypeError):
+        return False
 
 
 def as_unicode(values) -> np.ndarray:
