@@ -38,6 +38,12 @@ def _damage(path, how: str) -> None:
         path.write_bytes(data[: len(data) // 2])
     elif how == "corrupt":
         path.write_bytes(np.random.default_rng(0).bytes(len(data)))
+    elif how == "flipped":
+        # bit rot inside the chunk: 16 bytes inverted in the middle, size and last bytes kept
+        mid = len(data) // 2
+        path.write_bytes(
+            data[:mid] + bytes(b ^ 0xFF for b in data[mid : mid + 16]) + data[mid + 16 :]
+        )
     else:
         path.unlink()
 
@@ -46,16 +52,29 @@ def _damage(path, how: str) -> None:
     ("how", "says"),
     [("truncated", "corrupt chunk"), ("corrupt", "corrupt chunk"), ("missing", "missing chunk")],
 )
-def test_damaged_chunk_names_chunk_and_features(study, how, says):
+def test_damage_found_at_start_names_chunk_and_makes_no_run_folder(study, how, says):
     root, sim = study
     _damage(_chunk(sim, 3), how)
     out = root / "run"
     with pytest.raises(ChunkError) as err:
         screen(sim.dataset.path, sim.outcome_path, CONFIG, out)
     msg = str(err.value)
-    assert says in msg
+    assert msg.startswith(says)
     assert "chunk 0/3 of" in msg and str(sim.dataset.path / "X") in msg
     assert "(features 192..255)" in msg
+    # refused before the run began: the chunk census of the fingerprint reads no chunk's content
+    assert not out.exists()
+
+
+def test_bit_rot_inside_a_chunk_stops_the_pass(study):
+    root, sim = study
+    _damage(_chunk(sim, 3), "flipped")
+    out = root / "run"
+    with pytest.raises(ChunkError) as err:
+        screen(sim.dataset.path, sim.outcome_path, CONFIG, out)
+    msg = str(err.value)
+    assert msg.startswith("corrupt chunk 0/3 of " + str(sim.dataset.path / "X"))
+    assert "(features 192..255)" in msg and "checksum" in msg
     # nothing looks complete
     assert not (out / "ranking.tsv").exists()
     man = json.loads((out / "manifest.json").read_text())
@@ -67,6 +86,16 @@ def test_damaged_chunk_names_chunk_and_features(study, how, says):
     assert not (out / ".lock").exists()  # the failed run let go of the folder
 
 
+def test_swapped_chunks_are_refused(study):
+    root, sim = study
+    a, b = _chunk(sim, 2), _chunk(sim, 5)
+    da, db = a.read_bytes(), b.read_bytes()
+    a.write_bytes(db)
+    b.write_bytes(da)
+    with pytest.raises(ChunkError, match=r"chunk 0/2 of .* holds the data recorded for chunk 0/5"):
+        screen(sim.dataset.path, sim.outcome_path, CONFIG, root / "run")
+
+
 def test_repaired_store_resumes_to_the_intact_result(study):
     root, sim = study
     intact = root / "intact"
@@ -74,7 +103,7 @@ def test_repaired_store_resumes_to_the_intact_result(study):
     chunk = _chunk(sim, 3)
     good, st = chunk.read_bytes(), os.stat(chunk)
     # bit rot: other bytes, same size and modification time, so the store's fingerprint is unchanged
-    _damage(chunk, "corrupt")
+    _damage(chunk, "flipped")
     os.utime(chunk, ns=(st.st_atime_ns, st.st_mtime_ns))
     out = root / "run"
     with pytest.raises(ChunkError):
@@ -95,7 +124,7 @@ def test_repaired_store_resumes_to_the_intact_result(study):
 def test_damaged_chunk_on_a_local_cluster(study):
     pytest.importorskip("distributed")
     root, sim = study
-    _damage(_chunk(sim, 7), "truncated")
+    _damage(_chunk(sim, 7), "flipped")
     out = root / "run"
     with pytest.raises(ChunkError, match=r"chunk 0/7 of .*\(features 448\.\.511\)"):
         screen(sim.dataset.path, sim.outcome_path, CONFIG, out, scheduler="processes:2")
@@ -105,7 +134,7 @@ def test_damaged_chunk_on_a_local_cluster(study):
 
 def test_cli_prints_one_line_and_fails(study):
     root, sim = study
-    _damage(_chunk(sim, 3), "corrupt")
+    _damage(_chunk(sim, 3), "flipped")
     out = root / "run"
     args = ["screen", str(sim.dataset.path), "--outcome", str(sim.outcome_path)]
     args += ["--response", "y", "--out", str(out), "--quiet"]

@@ -274,9 +274,15 @@ def test_number_forms_match_python_float(tmp_path, rng):
     src.write_text(
         "id," + ",".join(f"c{j}" for j in range(len(tokens))) + "\nr," + ",".join(tokens) + "\n"
     )
-    ds = import_table(src, tmp_path / "s", dtype="float64")
-    # reference: Python's float() (correctly rounded decimal -> binary conversion)
-    np.testing.assert_array_equal(ds.X[0], [float(t) for t in tokens])
+    # infinite values are refused unless asked to be read as missing
+    with pytest.raises(
+        IngestError, match=r"column 4\d\d \(feature 'c\d+'\): 'inf' is not a finite"
+    ):
+        import_table(src, tmp_path / "s", dtype="float64")
+    ds = import_table(src, tmp_path / "s", dtype="float64", nonfinite="missing")
+    # reference: Python's float() (correctly rounded decimal -> binary conversion); inf -> missing
+    want = [float(t) for t in tokens]
+    np.testing.assert_array_equal(ds.X[0], [v if np.isfinite(v) else np.nan for v in want])
     assert np.signbit(ds.X[0, tokens.index("-0")])
 
 

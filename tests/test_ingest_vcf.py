@@ -50,7 +50,7 @@ LINES = [
     site("X", 400, "rsX", "T", "C", "GT", "0", "1", ".", "0/1"),  # haploid calls
     site("2", 500, "rsM", "A", "T,G", "GT", "1/2", "2|2", "0/1", "0/0"),  # multi-allelic
     site("2", 600, "rsD", "C", "G", "DP:GT:GQ", "5:0/1:9", "7:1|1:9", "8", "9:./.:0"),  # GT second
-    site("2", 700, "rsP", "A", "C", "GT", "0/1/1", "1/1/1/1", "0/0/0", "./1/1"),  # polyploid
+    site("2", 700, "rsP", "A", "C", "GT", "0/1/1", "0/0/1/1", "0/0/0", "./1/1"),  # polyploid
 ]
 SAMPLES = ["ann", "bob", "cat", "dan"]
 # Hand-computed: alt-allele counts per call, one row per feature.
@@ -63,7 +63,7 @@ EXPECTED_SPLIT = np.array(
         [1, 0, 1, 0],  # rsM, ALT T: 1/2 has one T, 2|2 none, 0/1 one
         [1, 2, 0, 0],  # rsM, ALT G
         [1, 2, M, M],  # "8": the field stops before GT -> missing
-        [2, 4, 0, M],
+        [2, 2, 0, M],
     ],
     np.int8,
 )
@@ -82,6 +82,21 @@ def test_genotype_rules(tmp_path, name, members):
     ann = ds.annotations()
     assert list(ann["chrom"]) == ["1", "1", "1", "X", "2", "2", "2", "2"]
     np.testing.assert_array_equal(ann["pos"], [100, 200, 300, 400, 500, 500, 600, 700])
+
+
+@pytest.mark.parametrize("call", ["1/1/1", "1|1|1|1", "0/1/1/1/1"])
+def test_calls_beyond_dosage_two_are_refused_with_line_and_sample(tmp_path, call):
+    lines = [
+        site("1", 100, "rs1", "A", "G", "GT", "0/1", "1/1"),
+        site("1", 200, "rs2", "A", "G", "GT", "0/0", call),
+    ]
+    src = write(tmp_path / "x.vcf", vcf_text(["a", "b"], lines))
+    with pytest.raises(
+        IngestError,
+        match=r"x\.vcf: line \d+, column 11 \(sample 'b'\): a call with [345] alternate",
+    ):
+        import_vcf(src, tmp_path / "s")
+    assert not (tmp_path / "s").exists()
 
 
 def test_multiallelic_nonref_and_skip(tmp_path):

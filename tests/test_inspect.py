@@ -20,8 +20,9 @@ def test_dosage_store(tmp_path, rng):
     assert r.missing_rate == pytest.approx(np.mean(X == -128), abs=1e-12)  # numpy count
     assert not r.missing_estimated and r.blocks_read == r.n_blocks == 7
     assert r.size_bytes == sum(f.stat().st_size for f in (tmp_path / "s").rglob("*") if f.is_file())
-    assert r.codec == "bytes -> blosc(lz4, clevel=5, bitshuffle)"
-    assert r.format_version == 1 and r.creator.startswith("widescreen ")
+    assert r.codec == "bytes -> blosc(lz4, clevel=5, bitshuffle) -> crc32c"
+    assert r.format_version == 2 and r.creator.startswith("widescreen ")
+    assert r.integrity.startswith("CRC-32C per chunk")
     assert not r.has_annotations
     text = r.format()
     assert "30 samples x 100 features" in text and "dosage, int8 (missing = -128)" in text

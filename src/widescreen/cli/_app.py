@@ -334,6 +334,14 @@ def import_cmd(
     overwrite: Annotated[
         bool, typer.Option("--overwrite", help="Replace an existing store.")
     ] = False,
+    inf_as_missing: Annotated[
+        bool,
+        typer.Option(
+            "--inf-as-missing",
+            help="CSV/TSV: read infinite values (inf, -Infinity) as missing instead of refusing "
+            "them.",
+        ),
+    ] = False,
     quiet: QuietOpt = False,
 ) -> None:
     """Convert a matrix file into a dataset store, streaming with bounded memory."""
@@ -374,6 +382,7 @@ def import_cmd(
             chunk_features=chunk_features,
             overwrite=overwrite,
             progress=bar,
+            nonfinite="missing" if inf_as_missing else "error",
         )
     typer.echo(f"wrote {store}: {ds.n_samples} samples x {ds.n_features} features ({ds.dtype})")
 

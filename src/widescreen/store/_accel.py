@@ -387,3 +387,26 @@ def cross(
         centre_into(raw[:, a:b], mean[a:b], tile)
         out[:, a:b] = lhs_t @ tile
     return out
+
+
+@_jit
+def _count_invalid_u8(flat):  # pragma: no cover - compiled
+    # As unsigned bytes the valid dosages are 0, 1, 2 and 128 (the int8 sentinel -128).
+    bad = 0
+    for i in range(flat.size):
+        v = flat[i]
+        bad += (v > 2) & (v != 128)
+    return bad
+
+
+def count_invalid_dosages(values: np.ndarray) -> int:
+    """How many int8 values are not 0, 1, 2 or the missing sentinel (a damaged dosage chunk).
+
+    Parameters
+    ----------
+    values : ndarray of int8, C-contiguous rows (a decoded chunk)
+    """
+    u8 = np.ascontiguousarray(values).reshape(-1).view(np.uint8)
+    if use_numba:
+        return int(_count_invalid_u8(u8))
+    return int(np.count_nonzero((u8 > 2) & (u8 != 128)))

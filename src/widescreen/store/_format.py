@@ -27,11 +27,17 @@ from pathlib import Path
 
 import numpy as np
 import zarr
-from zarr.codecs import BloscCodec
+from zarr.codecs import BloscCodec, Crc32cCodec, ZstdCodec
 
 from .._version import __version__
+from . import _checksum
 
-FORMAT_VERSION = 1
+#: Version written by this widescreen: 2 adds per-chunk CRC-32C checksums (see `_checksum`).
+FORMAT_VERSION = 2
+#: Versions this widescreen opens (1: written before checksums).
+READABLE_VERSIONS = (1, 2)
+#: Characters no id may hold: they would break the tab-separated tables and line-based outputs.
+UNSAFE_ID_CHARS = ("\t", "\n", "\r", "\x00")
 ATTRS_KEY = "widescreen"
 MISSING_INT8 = -128
 VALUE_KINDS = ("dosage", "continuous")
@@ -47,6 +53,10 @@ class StoreError(ValueError):
     """A dataset store is missing, incomplete, of an unknown version or damaged."""
 
 
+class ChunkError(StoreError):
+    """A chunk file of X is missing, truncated, moved or cannot be decoded."""
+
+
 @dataclass(frozen=True)
 class FormatAttributes:
     """Group attributes of a dataset store, as stored under ``zarr.json`` -> ``widescreen``."""
@@ -60,6 +70,7 @@ class FormatAttributes:
     creator: str
     complete: bool
     source: str = ""
+    checksums: str = ""  # "crc32c" from format version 2
 
     def to_dict(self) -> dict:
         return asdict(self)
@@ -97,9 +108,49 @@ def default_chunks(n_samples: int, dtype: str, n_features: int | None = None) ->
     return rows, cols
 
 
+def unsafe_id(ids: np.ndarray) -> int | None:
+    """Position of the first id holding a tab, newline, carriage return or NUL, or None.
+
+    Vectorised over the ids' code points (a fixed-width unicode view), a slice of ids at a time.
+    """
+    ids = as_unicode(np.asarray(ids).astype(str) if np.asarray(ids).dtype.kind not in "UT" else ids)
+    if ids.size == 0:
+        return None
+    ids = ids.reshape(-1)
+    width = ids.dtype.itemsize // 4
+    step = max(1, 2**22 // width)
+    controls = np.array([ord(c) for c in UNSAFE_ID_CHARS if c != "\x00"], dtype=np.uint32)
+    for a in range(0, ids.size, step):
+        codes = ids[a : a + step].view(np.uint32).reshape(-1, width)
+        bad = np.isin(codes, controls).any(axis=1)
+        # A NUL inside an id (fixed-width strings pad with NULs, so only one followed by a character)
+        used = codes != 0
+        length = width - np.argmax(used[:, ::-1], axis=1)
+        bad |= used.any(axis=1) & (used.sum(axis=1) < length)
+        hit = np.flatnonzero(bad)
+        if hit.size:
+            return a + int(hit[0])
+    return None
+
+
+def describe_unsafe(value: str) -> str:
+    """Which unsafe character an id holds, for messages."""
+    names = {"\t": "a tab", "\n": "a newline", "\r": "a carriage return", "\x00": "a NUL byte"}
+    return next((names[c] for c in UNSAFE_ID_CHARS if c in value), "a control character")
+
+
 def _check_ids(ids: np.ndarray, what: str, where: str) -> None:
     if ids.size == 0:
         return
+    empty = np.flatnonzero(np.strings.str_len(as_unicode(ids)) == 0)
+    if empty.size:
+        raise StoreError(f"{where}: empty {what} id at position {empty[0] + 1}")
+    bad = unsafe_id(ids)
+    if bad is not None:
+        raise StoreError(
+            f"{where}: {what} id {str(ids[bad])!r} at position {bad + 1} holds "
+            f"{describe_unsafe(str(ids[bad]))}, which would break the output tables"
+        )
     uniq, _first, counts = np.unique(ids, return_index=True, return_counts=True)
     if np.any(counts > 1):
         dup = str(uniq[counts > 1][0])
@@ -107,9 +158,6 @@ def _check_ids(ids: np.ndarray, what: str, where: str) -> None:
         raise StoreError(
             f"{where}: duplicate {what} id {dup!r} at positions {pos[0] + 1} and {pos[1] + 1}"
         )
-    empty = np.flatnonzero(np.char.str_len(ids.astype(str)) == 0)
-    if empty.size:
-        raise StoreError(f"{where}: empty {what} id at position {empty[0] + 1}")
 
 
 class DatasetWriter:
@@ -155,13 +203,7 @@ class DatasetWriter:
             )
         self.path = Path(path)
         if self.path.exists():
-            if not overwrite:
-                if _unfinished_store(self.path):
-                    raise StoreError(
-                        f"{self.path}: holds an import that did not finish (it was stopped); an "
-                        "import cannot resume: use --overwrite to replace it"
-                    )
-                raise StoreError(f"{self.path}: already exists (choose another path or overwrite)")
+            check_new_store(self.path, overwrite)
             shutil.rmtree(self.path)
         sample_ids = np.asarray(sample_ids, dtype=str)
         _check_ids(sample_ids, "sample", str(self.path))
@@ -191,13 +233,17 @@ class DatasetWriter:
             shape=(self.n_samples, self._capacity),
             chunks=self.chunks,
             dtype=self.dtype,
-            compressors=default_codec(dtype),
+            # The CRC-32C of each chunk ends its file (checked by every Zarr v3 reader).
+            compressors=[default_codec(dtype), Crc32cCodec()],
             fill_value=fill,
             dimension_names=("sample", "feature"),
             # Every chunk is written even when all-missing, so an absent chunk file means damage.
             config={"write_empty_chunks": True},
         )
-        ids = self.group.create_array("samples/id", shape=(self.n_samples,), dtype=str)
+        self._crcs: dict[tuple[int, int], int] = {}
+        ids = self.group.create_array(
+            "samples/id", shape=(self.n_samples,), dtype=str, compressors=_CHECKED_STRINGS
+        )
         ids[:] = sample_ids
 
     def _write_attrs(self, *, complete: bool, n_features: int) -> None:
@@ -211,6 +257,7 @@ class DatasetWriter:
             creator=f"widescreen {__version__}",
             complete=complete,
             source=self.source,
+            checksums=_checksum.CODEC,
         )
         self.group.attrs[ATTRS_KEY] = attrs.to_dict()
 
@@ -256,10 +303,21 @@ class DatasetWriter:
             self._capacity = max(stop, 2 * self._capacity)
             self.X.resize((self.n_samples, self._capacity))
         self.X[:, start:stop] = data[:, :n_take]
+        self._record_crcs(start, stop)
         self._n_written = stop
         rest = data[:, n_take:]
         self._pending = [rest] if rest.shape[1] else []
         self._pending_cols = rest.shape[1]
+
+    def _record_crcs(self, start: int, stop: int) -> None:
+        """Note the CRC each chunk file just written ends with, for the table of positions."""
+        rows, cols = self.chunks
+        for c in range(start // cols, -(-stop // cols)):
+            for r in range(-(-self.n_samples // rows)):
+                crc = _checksum.tail(self.path / "X" / "c" / str(r) / str(c))
+                if crc is None:  # pragma: no cover - zarr always writes the codec's four bytes
+                    raise StoreError(f"{self.path}/X: chunk {r}/{c} was not written whole")
+                self._crcs[(r, c)] = crc
 
     def finalize(self) -> Dataset:
         """Write the remaining columns, the feature ids and annotations, and mark the store complete."""
@@ -273,9 +331,28 @@ class DatasetWriter:
         _check_ids(ids, "feature", str(self.path))
         _write_strings(self.group, "features/id", ids)
         if self._annotations:
-            _write_strings(self.group, "features/chrom", np.concatenate(self._chrom))
-            pos = self.group.create_array("features/pos", shape=(p,), dtype="int64")
+            chrom = np.concatenate(self._chrom)
+            bad = unsafe_id(chrom)
+            if bad is not None:
+                raise StoreError(
+                    f"{self.path}: chromosome {str(chrom[bad])!r} of feature {str(ids[bad])!r} "
+                    f"holds {describe_unsafe(str(chrom[bad]))}"
+                )
+            _write_strings(self.group, "features/chrom", chrom)
+            pos = self.group.create_array(
+                "features/pos", shape=(p,), dtype="int64", compressors=_CHECKED_NUMBERS
+            )
             pos[:] = np.concatenate(self._pos)
+        rows, cols = self.chunks
+        grid = (-(-self.n_samples // rows), -(-p // cols))
+        table = np.zeros(grid, dtype=np.uint32)
+        for (r, c), crc in self._crcs.items():
+            if c < grid[1]:
+                table[r, c] = crc
+        arr = self.group.create_array(
+            _checksum.TABLE, shape=grid, dtype="uint32", chunks=grid, compressors=[Crc32cCodec()]
+        )
+        arr[:] = table
         self._write_attrs(complete=True, n_features=p)
         return open_dataset(self.path)
 
@@ -289,6 +366,19 @@ class DatasetWriter:
     def __exit__(self, exc_type, exc, tb) -> None:
         if exc_type is not None:
             self.abort()
+
+
+def check_new_store(path: str | os.PathLike, overwrite: bool, error=StoreError) -> None:
+    """Refuse to write a store over an existing path unless ``overwrite``, naming what is there."""
+    path = Path(path)
+    if overwrite or not path.exists():
+        return
+    if _unfinished_store(path):
+        raise error(
+            f"{path}: holds an import that did not finish (it was stopped); an import cannot "
+            "resume: use --overwrite to replace it"
+        )
+    raise error(f"{path}: already exists (choose another path or overwrite)")
 
 
 def _unfinished_store(path: Path) -> bool:
@@ -312,12 +402,30 @@ def as_unicode(values) -> np.ndarray:
     return a.astype(f"U{width}")
 
 
+#: Codecs after the serialiser of the id and annotation arrays: compressed, then checksummed.
+_CHECKED_STRINGS = [ZstdCodec(level=0), Crc32cCodec()]
+_CHECKED_NUMBERS = [ZstdCodec(level=0), Crc32cCodec()]
+
+
 def _write_strings(group: zarr.Group, name: str, values: np.ndarray) -> None:
     # Chunked so that ten million ids do not become one huge object.
     arr = group.create_array(
-        name, shape=values.shape, dtype=str, chunks=(min(max(values.size, 1), 1_048_576),)
+        name,
+        shape=values.shape,
+        dtype=str,
+        chunks=(min(max(values.size, 1), 1_048_576),),
+        compressors=_CHECKED_STRINGS,
     )
     arr[:] = values
+
+
+#: Arrays of a store besides X: (node, required).
+ID_NODES = (
+    ("samples/id", True),
+    ("features/id", True),
+    ("features/chrom", False),
+    ("features/pos", False),
+)
 
 
 @dataclass(frozen=True)
@@ -359,11 +467,50 @@ class Dataset:
     def group(self) -> zarr.Group:
         return zarr.open_group(self.path, mode="r")
 
+    @property
+    def checksummed(self) -> bool:
+        """Whether X's chunks carry CRC-32C checksums (format version 2)."""
+        return _checksum.has_checksum(self.X)
+
+    @property
+    def notes(self) -> tuple[str, ...]:
+        """What a user should know about this store's integrity checks."""
+        if self.checksummed:
+            return ()
+        return (
+            f"{self.path}: format version {self.attrs.format_version}, without chunk checksums: "
+            "bytes changed inside a chunk are caught only when they decode to impossible values; "
+            "import the data again to add checksums",
+        )
+
+    def checksum_table(self) -> np.ndarray | None:
+        """CRC-32C recorded at import for each chunk of X, shape (row chunks, column chunks)."""
+        if _checksum.TABLE not in self.group:
+            return None
+        return np.asarray(self._read(_checksum.TABLE, slice(None)), dtype=np.uint32)
+
+    def _read(self, node: str, sel) -> np.ndarray:
+        """Read part of a 1- or 2-dimensional node, naming the node if it is damaged."""
+        try:
+            arr = self.group[node]
+            if isinstance(sel, np.ndarray):
+                return arr.get_coordinate_selection(sel)
+            return arr[sel]
+        except Exception as exc:  # zarr raises several types for damaged chunks
+            raise StoreError(
+                f"{self.path}/{node}: cannot be read ({exc}); the store is damaged"
+            ) from None
+
+    def _ids(self, node: str, sel, what: str, offset) -> np.ndarray:
+        ids = as_unicode(self._read(node, sel))
+        _check_read_ids(ids, f"{self.path}/{node}", what, offset)
+        return ids
+
     def sample_ids(self) -> np.ndarray:
-        return as_unicode(self.group["samples/id"][:])
+        return self._ids("samples/id", slice(None), "sample", 0)
 
     def feature_ids(self, start: int = 0, stop: int | None = None) -> np.ndarray:
-        return as_unicode(self.group["features/id"][start:stop])
+        return self._ids("features/id", slice(start, stop), "feature", start)
 
     def feature_ids_at(self, index) -> np.ndarray:
         """Ids of the given features, reading only their entries (memory independent of p)."""
@@ -371,7 +518,7 @@ class Dataset:
         if index.size == 0:
             return np.empty(0, dtype="U1")
         order = np.argsort(index, kind="stable")
-        vals = as_unicode(self.group["features/id"].get_coordinate_selection(index[order]))
+        vals = self._ids("features/id", index[order], "feature", index[order])
         out = np.empty_like(vals)
         out[order] = vals
         return out
@@ -384,11 +531,21 @@ class Dataset:
         index = np.asarray(index, dtype=np.int64)
         order = np.argsort(index, kind="stable")
         out = {}
-        for name, conv in (("chrom", as_unicode), ("pos", lambda a: np.asarray(a, dtype=np.int64))):
+        for name in ("chrom", "pos"):
             if index.size == 0:
                 out[name] = np.empty(0, dtype="U1" if name == "chrom" else np.int64)
                 continue
-            vals = conv(g[f"features/{name}"].get_coordinate_selection(index[order]))
+            raw = self._read(f"features/{name}", index[order])
+            if name == "chrom":
+                vals = as_unicode(raw)
+                bad = unsafe_id(vals)
+                if bad is not None:
+                    raise StoreError(
+                        f"{self.path}/features/chrom: the chromosome of feature "
+                        f"{int(index[order][bad])} holds {describe_unsafe(str(vals[bad]))}"
+                    )
+            else:
+                vals = np.asarray(raw, dtype=np.int64)
             back = np.empty_like(vals)
             back[order] = vals
             out[name] = back
@@ -400,30 +557,136 @@ class Dataset:
         if "features/chrom" not in g or "features/pos" not in g:
             return None
         return {
-            "chrom": as_unicode(g["features/chrom"][:]),
-            "pos": np.asarray(g["features/pos"][:], dtype=np.int64),
+            "chrom": as_unicode(self._read("features/chrom", slice(None))),
+            "pos": np.asarray(self._read("features/pos", slice(None)), dtype=np.int64),
         }
 
-    def fingerprint(self) -> str:
-        """A hash of the store's identity: attributes, array metadata and the chunk files' sizes and times.
+    def _nodes(self) -> list[tuple[str, zarr.Array]]:
+        g = self.group
+        names = ["X", *(n for n, _ in ID_NODES), _checksum.TABLE]
+        return [(n, g[n]) for n in names if n in g]
 
-        Cheap (no chunk is read) yet changes whenever X is rewritten.
+    def check_chunks(self) -> list[tuple[str, Path]]:
+        """Every chunk file of every array, checked to exist: (node, path) pairs.
+
+        Raises
+        ------
+        StoreError
+            A chunk file is missing (named with its node; a `ChunkError` for X).
         """
+        out = []
+        for name, arr in self._nodes():
+            root = self.path / name
+            for f in _checksum.chunk_files(root, tuple(arr.shape), tuple(arr.chunks)):
+                if not f.is_file():
+                    if name == "X":
+                        raise ChunkError(
+                            f"missing {self._where(f)}: the store is damaged; import it again"
+                        )
+                    rel = "/".join(f.relative_to(root / "c").parts)
+                    raise StoreError(
+                        f"missing chunk {rel} of {root}: the store is damaged; import it again"
+                    )
+                out.append((name, f))
+        return out
+
+    def _where(self, f: Path) -> str:
+        """A chunk of X as messages name it: position, file, features."""
+        r, c = int(f.parent.name), int(f.name)
+        cols = int(self.X.chunks[1])
+        start, stop = c * cols, min((c + 1) * cols, self.n_features)
+        return f"chunk {r}/{c} of {self.path / 'X'} (features {start}..{stop - 1})"
+
+    def fingerprint(self) -> str:
+        """A hash of the store's identity, reading no chunk.
+
+        With checksums (format version 2): attributes, array metadata, the table of X's chunk
+        checksums, and per chunk file of every array its size and last four bytes (its CRC-32C), so
+        content rewritten with the same size and modification time changes it, and a chunk whose
+        CRC is not the one recorded for its position (swapped, replaced) is refused here. Without:
+        attributes, metadata and the chunk files' sizes and modification times, as version 1 did.
+
+        Raises
+        ------
+        StoreError
+            A chunk file is missing, or X's chunks do not match the recorded checksums.
+        """
+        files = self.check_chunks()
         h = hashlib.sha256()
         h.update(json.dumps(self.attrs.to_dict(), sort_keys=True).encode())
         h.update(json.dumps(self.X.metadata.to_dict(), sort_keys=True, default=str).encode())
-        for root in ("X", "samples", "features"):
-            base = self.path / root
-            for dirpath, _, files in sorted(os.walk(base)):
-                for f in sorted(files):
-                    st = os.stat(os.path.join(dirpath, f))
-                    rel = os.path.relpath(os.path.join(dirpath, f), self.path)
-                    h.update(f"{rel}:{st.st_size}:{st.st_mtime_ns}".encode())
+        if not self.checksummed:
+            for root in ("X", "samples", "features"):
+                base = self.path / root
+                for dirpath, _, names in sorted(os.walk(base)):
+                    for f in sorted(names):
+                        st = os.stat(os.path.join(dirpath, f))
+                        rel = os.path.relpath(os.path.join(dirpath, f), self.path)
+                        h.update(f"{rel}:{st.st_size}:{st.st_mtime_ns}".encode())
+            return h.hexdigest()[:32]
+        table = self.checksum_table()
+        if table is None:
+            raise StoreError(
+                f"{self.path}: missing array {_checksum.TABLE!r} (the chunk checksums)"
+            )
+        for name, f in files:
+            crc = _checksum.tail(f)
+            rel = os.path.relpath(f, self.path)
+            if name == "X":
+                _check_position(self._where(f), f, crc, table)
+            h.update(f"{rel}:{f.stat().st_size}:{crc}".encode())
+        h.update(table.tobytes())
         return h.hexdigest()[:32]
 
 
+def _check_position(where: str, f: Path, crc: int | None, table: np.ndarray) -> None:
+    r, c = int(f.parent.name), int(f.name)
+    if r >= table.shape[0] or c >= table.shape[1]:
+        raise ChunkError(f"corrupt {where}: the checksum table has no entry for it")
+    if crc == int(table[r, c]):
+        return
+    others = _checksum.table_positions(table, crc) if crc is not None else []
+    if others:
+        at = ", ".join(f"{a}/{b}" for a, b in others[:3])
+        raise ChunkError(
+            f"corrupt {where}: it holds the data recorded for chunk {at} (chunks were moved or "
+            "swapped); the store is damaged: import it again"
+        )
+    raise ChunkError(
+        f"corrupt {where}: it ends with another checksum than the one recorded at import (changed "
+        "or truncated); the store is damaged: import it again"
+    )
+
+
+def _check_read_ids(ids: np.ndarray, node: str, what: str, offset) -> None:
+    """Ids as read back: none empty (what a missing chunk of another writer gives) or unsafe."""
+    if ids.size == 0:
+        return
+
+    def position(i: int) -> int:
+        return int(offset[i] if isinstance(offset, np.ndarray) else offset + i)
+
+    empty = np.flatnonzero(np.strings.str_len(ids) == 0)
+    if empty.size:
+        raise StoreError(
+            f"{node}: empty {what} id at position {position(int(empty[0])) + 1} (a missing or "
+            "damaged chunk?); the store is damaged"
+        )
+    bad = unsafe_id(ids)
+    if bad is not None:
+        raise StoreError(
+            f"{node}: {what} id {str(ids[bad])!r} at position {position(bad) + 1} holds "
+            f"{describe_unsafe(str(ids[bad]))}, which would break the output tables"
+        )
+
+
 def open_dataset(path: str | os.PathLike) -> Dataset:
-    """Open a complete dataset store for reading; a clear `StoreError` for anything else."""
+    """Open a complete dataset store for reading; a clear `StoreError` for anything else.
+
+    Checks the attributes against X (value kind, dtype, shape), that every id and annotation array
+    exists with the right length, and the sample ids (unique, none empty, no tab or newline); a store
+    written by another program has its feature ids checked too.
+    """
     path = Path(path)
     if not path.exists():
         raise StoreError(f"{path}: no such store")
@@ -431,15 +694,21 @@ def open_dataset(path: str | os.PathLike) -> Dataset:
         raise StoreError(f"{path}: not a Zarr v3 group (no zarr.json)")
     try:
         group = zarr.open_group(path, mode="r")
+        raw = group.attrs.get(ATTRS_KEY)
     except Exception as exc:  # zarr raises several types for a damaged group
         raise StoreError(f"{path}: cannot open as a Zarr group: {exc}") from exc
-    raw = group.attrs.get(ATTRS_KEY)
     if raw is None:
         raise StoreError(f"{path}: not a widescreen dataset (no '{ATTRS_KEY}' attributes)")
-    attrs = FormatAttributes.from_dict(dict(raw))
-    if attrs.format_version != FORMAT_VERSION:
+    if not isinstance(raw, dict):
+        raise StoreError(f"{path}/zarr.json: the '{ATTRS_KEY}' attributes are not a mapping")
+    try:
+        attrs = FormatAttributes.from_dict(dict(raw))
+    except TypeError as exc:
+        raise StoreError(f"{path}/zarr.json: incomplete '{ATTRS_KEY}' attributes ({exc})") from None
+    if attrs.format_version not in READABLE_VERSIONS:
         raise StoreError(
-            f"{path}: format version {attrs.format_version}; this widescreen reads {FORMAT_VERSION}"
+            f"{path}: format version {attrs.format_version}; this widescreen reads versions "
+            f"{', '.join(map(str, READABLE_VERSIONS))}"
         )
     if not attrs.complete:
         raise StoreError(f"{path}: incomplete store (its import did not finish); import it again")
@@ -447,9 +716,54 @@ def open_dataset(path: str | os.PathLike) -> Dataset:
         if name not in group:
             raise StoreError(f"{path}: missing array {name!r}")
     X = group["X"]
+    _check_kind(path, attrs, X)
     if tuple(X.shape) != (attrs.n_samples, attrs.n_features):
         raise StoreError(
             f"{path}: X has shape {tuple(X.shape)} but the attributes say "
             f"({attrs.n_samples}, {attrs.n_features})"
         )
-    return Dataset(path=path, attrs=attrs, X=X)
+    for name, required in ID_NODES:
+        if name not in group:
+            if required:  # pragma: no cover - checked above
+                raise StoreError(f"{path}: missing array {name!r}")
+            continue
+        arr = group[name]
+        want = attrs.n_samples if name.startswith("samples") else attrs.n_features
+        if tuple(arr.shape) != (want,):
+            raise StoreError(
+                f"{path}/{name}: has shape {tuple(arr.shape)}; X's attributes need ({want},)"
+            )
+    if ("features/chrom" in group) != ("features/pos" in group):
+        raise StoreError(f"{path}: features/chrom and features/pos must come together")
+    ds = Dataset(path=path, attrs=attrs, X=X)
+    sids = ds.sample_ids()
+    _check_ids(sids, "sample", f"{path}/samples/id")
+    if not attrs.creator.startswith("widescreen"):
+        # Written elsewhere: its ids never went through our import checks.
+        _check_ids(ds.feature_ids(), "feature", f"{path}/features/id")
+    return ds
+
+
+def _check_kind(path: Path, attrs: FormatAttributes, X) -> None:
+    """The attributes' value kind and dtype must agree with each other and with X."""
+    if attrs.value_kind not in VALUE_KINDS:
+        raise StoreError(
+            f"{path}/zarr.json: value_kind {attrs.value_kind!r} is not one of {VALUE_KINDS}"
+        )
+    if attrs.dtype not in DTYPES[attrs.value_kind]:
+        raise StoreError(
+            f"{path}/zarr.json: a {attrs.value_kind} store holds {' or '.join(DTYPES[attrs.value_kind])}, "
+            f"but its attributes say dtype {attrs.dtype!r} (value_kind or dtype was edited?)"
+        )
+    stored = np.dtype(X.dtype)
+    if stored != np.dtype(attrs.dtype):
+        raise StoreError(
+            f"{path}/X: stored as {stored.name}, but the attributes say {attrs.dtype}; "
+            "the store was changed by another program"
+        )
+    sentinel = MISSING_INT8 if stored == np.int8 else None
+    if attrs.missing_sentinel != sentinel:
+        raise StoreError(
+            f"{path}/zarr.json: missing_sentinel {attrs.missing_sentinel!r} does not fit a "
+            f"{stored.name} store (expected {sentinel!r})"
+        )

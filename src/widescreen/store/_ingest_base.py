@@ -11,7 +11,13 @@ from collections.abc import Callable
 
 import numpy as np
 
-from ._format import MAX_SAMPLES_PER_CHUNK, StoreError, default_chunks
+from ._format import (
+    MAX_SAMPLES_PER_CHUNK,
+    StoreError,
+    default_chunks,
+    describe_unsafe,
+    unsafe_id,
+)
 
 Progress = Callable[[int, int], None] | None
 
@@ -20,8 +26,31 @@ class IngestError(StoreError):
     """An input file cannot be imported: what is wrong and where (file, line, column)."""
 
 
+def decode_utf8(data: bytes, where: str, sep: bytes | None = None) -> str:
+    """Decode UTF-8 text, or raise `IngestError` naming ``where`` and the offending byte.
+
+    With ``sep`` (the field separator), the message names the 1-based field of the bad byte too.
+    """
+    try:
+        return data.decode("utf-8")
+    except UnicodeDecodeError as exc:
+        byte = data[exc.start]
+        field = f", column {data[: exc.start].count(sep) + 1}" if sep else ""
+        raise IngestError(
+            f"{where}{field}: not UTF-8 text (byte 0x{byte:02x} at character {exc.start + 1} of "
+            "the line); save the file as UTF-8"
+        ) from None
+
+
 def check_unique(ids: np.ndarray, where_fn: Callable[[int], str], src: str, what: str) -> None:
-    """Raise `IngestError` naming the first duplicated id and both of its positions."""
+    """Raise `IngestError` naming the first id that would break the outputs (a tab, newline,
+    carriage return or NUL in it) or the first duplicated id and both of its positions."""
+    bad = unsafe_id(ids)
+    if bad is not None:
+        raise IngestError(
+            f"{src}: {where_fn(bad)}: {what} id {str(ids[bad])!r} holds "
+            f"{describe_unsafe(str(ids[bad]))}, which would break the output tables"
+        )
     if ids.size < 2:
         return
     order = np.argsort(ids, kind="stable")

@@ -113,8 +113,38 @@ def byte_strings(buf: np.ndarray, start: np.ndarray, length: np.ndarray, width: 
     return m.view(f"S{width}").ravel()
 
 
+class BadText(ValueError):
+    """A cell is not UTF-8 text: ``cell`` is its index among the cells given, ``byte`` the value."""
+
+    def __init__(self, cell: int, byte: int, at: int) -> None:
+        super().__init__(f"not UTF-8 text (byte 0x{byte:02x} at character {at + 1} of the cell)")
+        self.cell, self.byte, self.at = cell, byte, at
+
+
+def _first_bad_utf8(buf: np.ndarray, start: np.ndarray, stop: np.ndarray) -> BadText:
+    """The first of these cells that is not UTF-8 (only called once decoding them has failed)."""
+    hi = np.flatnonzero(
+        np.add.reduceat((buf >= 128).astype(np.int64), np.r_[start, buf.size][:-1])[: start.size]
+        if start.size
+        else np.zeros(0)
+    )
+    for i in hi:  # only cells with non-ASCII bytes, up to the first that fails
+        raw = buf[start[i] : stop[i]].tobytes()
+        try:
+            raw.decode("utf-8")
+        except UnicodeDecodeError as exc:
+            return BadText(int(i), raw[exc.start], exc.start)
+    return BadText(0, 0, 0)  # pragma: no cover - decoding failed, so some cell is bad
+
+
 def decode_cells(buf: np.ndarray, start: np.ndarray, stop: np.ndarray) -> np.ndarray:
-    """Id cells as a unicode array, one surrounding pair of double quotes removed."""
+    """Id cells as a unicode array, one surrounding pair of double quotes removed.
+
+    Raises
+    ------
+    BadText
+        A cell is not UTF-8, with its index (the caller knows its line and column).
+    """
     start, stop = start.copy(), stop.copy()
     q = np.flatnonzero(stop - start >= 2)
     q = q[(buf[start[q]] == _QUOTE) & (buf[stop[q] - 1] == _QUOTE)]
@@ -127,16 +157,21 @@ def decode_cells(buf: np.ndarray, start: np.ndarray, stop: np.ndarray) -> np.nda
     for s0 in range(0, length.size, _SLICE // 4):
         sl = slice(s0, s0 + _SLICE // 4)
         w = max(int(length[sl].max()), 1)
-        if w * length[sl].size > _MAX_MATRIX:  # some very long ids: decode them one by one
-            cells = [
-                buf[a:b].tobytes().decode("utf-8", "replace")
-                for a, b in zip(start[sl], stop[sl], strict=True)
-            ]
-            out.append(np.asarray(cells, dtype=str))
-            continue
-        s = byte_strings(buf, start[sl], length[sl], w)
-        ascii_only = not np.any(s.view(np.uint8) >= 128)
-        out.append(s.astype(f"U{w}") if ascii_only else np.strings.decode(s, "utf-8"))
+        try:
+            if w * length[sl].size > _MAX_MATRIX:  # some very long ids: decode them one by one
+                cells = [
+                    buf[a:b].tobytes().decode("utf-8")
+                    for a, b in zip(start[sl], stop[sl], strict=True)
+                ]
+                out.append(np.asarray(cells, dtype=str))
+                continue
+            s = byte_strings(buf, start[sl], length[sl], w)
+            ascii_only = not np.any(s.view(np.uint8) >= 128)
+            out.append(s.astype(f"U{w}") if ascii_only else np.strings.decode(s, "utf-8"))
+        except UnicodeDecodeError:
+            bad = _first_bad_utf8(buf, start[sl], stop[sl])
+            bad.cell += s0
+            raise bad from None
     return np.concatenate(out) if len(out) > 1 else out[0]
 
 
@@ -147,6 +182,16 @@ def parse_numbers(buf: np.ndarray, start: np.ndarray, stop: np.ndarray) -> tuple
     cell (exponents, ``inf``, missing tokens, bad text) goes through numpy's string cast.
     """
     out = np.empty(start.size, np.float64)
+    nul = np.flatnonzero(buf == 0)
+    if nul.size and start.size:
+        # A NUL byte inside a cell would vanish in the fixed-width casts below (NUL is their padding).
+        cell = np.searchsorted(start, nul, side="right") - 1
+        inside = (cell >= 0) & (nul < stop[np.maximum(cell, 0)])
+        if inside.any():
+            first = int(cell[inside].min())
+            upto, bad = parse_numbers(buf, start[:first], stop[:first]) if first else (out[:0], -1)
+            out[:first] = upto
+            return out, bad if bad >= 0 else first
     for s0 in range(0, start.size, _SLICE):
         sl = slice(s0, s0 + _SLICE)
         out[sl], other = _plain_decimals(buf, start[sl], stop[sl] - start[sl])

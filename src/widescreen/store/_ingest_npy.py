@@ -9,7 +9,8 @@ is dropped, so a column-wise sweep over a C-ordered file would show the whole fi
 Conversions (``value_kind`` inferred from the dtype unless given):
 
 * int8 -> dosage: values must be 0, 1, 2 or the missing sentinel -128.
-* float16/32/64 -> continuous, float64 kept as float64 and the rest stored as float32; NaN is missing.
+* float16/32/64 -> continuous, float64 kept as float64 and the rest stored as float32; NaN is missing;
+  an infinite value, or one too large for the store's dtype, is an error naming its row and column.
 * other integer or bool arrays need an explicit ``value_kind``; as dosage they must hold 0, 1, 2 (or
   -128), as continuous they become float32.
 * a float array imported as dosage must hold 0, 1, 2 or NaN (-> -128); an int8 array imported as
@@ -38,8 +39,17 @@ def read_ids(ids, expected: int, what: str, default_prefix: str) -> np.ndarray:
     where = "the given list"
     if isinstance(ids, (str, os.PathLike)):
         where = str(ids)
-        with open(ids, encoding="utf-8") as fh:
-            lines = fh.read().split("\n")
+        with open(ids, "rb") as fh:
+            data = fh.read()
+        try:
+            text = data.decode("utf-8")
+        except UnicodeDecodeError as exc:
+            line = data[: exc.start].count(b"\n") + 1
+            col = exc.start - (data.rfind(b"\n", 0, exc.start) + 1) + 1
+            raise IngestError(
+                f"{where}: line {line}, column {col}: not UTF-8 text (byte 0x{data[exc.start]:02x})"
+            ) from None
+        lines = text.split("\n")
         if lines and lines[-1] == "":
             lines.pop()  # a trailing newline ends the last line, it does not start another
         ids = [x.rstrip("\r") for x in lines]
@@ -53,10 +63,12 @@ def read_ids(ids, expected: int, what: str, default_prefix: str) -> np.ndarray:
     return arr
 
 
-def _plan(src_dtype: np.dtype, value_kind: str | None, dtype: str | None) -> tuple[str, str]:
+def _plan(
+    src_dtype: np.dtype, value_kind: str | None, dtype: str | None, src: str = "the .npy"
+) -> tuple[str, str]:
     kind = src_dtype.kind
     if kind not in "biuf":
-        raise IngestError(f"cannot import a .npy of dtype {src_dtype}: need integers or floats")
+        raise IngestError(f"{src}: cannot import dtype {src_dtype}: need integers or floats")
     if value_kind is None:
         if src_dtype == np.int8:
             value_kind = "dosage"
@@ -64,7 +76,8 @@ def _plan(src_dtype: np.dtype, value_kind: str | None, dtype: str | None) -> tup
             value_kind = "continuous"
         else:
             raise IngestError(
-                f"a .npy of dtype {src_dtype} needs value_kind='dosage' or 'continuous'"
+                f"{src}: dtype {src_dtype} needs value_kind='dosage' or 'continuous' "
+                "(--dosage on the command line)"
             )
     if value_kind == "dosage":
         out = dtype or "int8"
@@ -78,6 +91,22 @@ def _plan(src_dtype: np.dtype, value_kind: str | None, dtype: str | None) -> tup
 def _convert(block: np.ndarray, value_kind: str, out_dtype: str, src: str, j0: int, sid, fid):
     """Block of source values -> store values, or an IngestError naming the first bad cell."""
     if value_kind == "continuous":
+        if block.dtype.kind == "f":
+            # Infinite values, and finite ones the store's dtype cannot hold, are refused here:
+            # a kernel would drop such a feature from every pass without a word.
+            big = np.abs(block) > np.finfo(out_dtype).max
+            if big.any():
+                i, j = np.argwhere(big)[0]
+                v = block[i, j]
+                why = (
+                    "is not finite"
+                    if np.isinf(v)
+                    else f"does not fit in {out_dtype} (largest {np.finfo(out_dtype).max:.4g})"
+                )
+                raise IngestError(
+                    f"{src}: row {i + 1} (sample {str(sid[i])!r}), column {j0 + j + 1} "
+                    f"(feature {str(fid[j0 + j])!r}): value {v} {why}"
+                )
         out = block.astype(out_dtype)
         if block.dtype == np.int8:
             out[block == MISSING_INT8] = np.nan
@@ -152,7 +181,7 @@ def import_npy(
     src_dtype, offset = mm.dtype, int(mm.offset)
     fortran = bool(mm.flags.f_contiguous and not mm.flags.c_contiguous)
     del mm  # drop the map: values are read with positioned reads below
-    value_kind, out_dtype = _plan(src_dtype, value_kind, dtype)
+    value_kind, out_dtype = _plan(src_dtype, value_kind, dtype, src)
     sid = read_ids(sample_ids, n, "sample", "s")
     fid = read_ids(feature_ids, p, "feature", "f")
 

@@ -5,8 +5,10 @@ text) and the others are feature ids; each row starts with its sample id. With `
 the table is the other way round: header cells after the first are sample ids, each row is a feature.
 
 Missing values: an empty cell, ``NA``, ``NaN``, ``nan`` or ``.`` is missing (NaN in a float store,
--128 in a dosage store). Other cells must be numbers as Python's ``float`` reads them (so ``1e-3``,
-``inf`` and ``-0.5`` are numbers); a dosage cell must equal 0, 1 or 2 (``2`` and ``2.0`` both do).
+-128 in a dosage store). Other cells must be numbers as Python's ``float`` reads them (so ``1e-3`` and
+``-0.5`` are numbers), finite (``inf`` is refused with its location, or read as missing with
+``nonfinite="missing"``) and within the range of the store's dtype (``1e300`` does not fit float32); a
+NUL byte in a cell is an error. A dosage cell must equal 0, 1 or 2 (``2`` and ``2.0`` both do).
 Blank lines are skipped. Cells are not unquoted, except that a pair of double quotes around an id is
 removed; a cell may not contain the delimiter. Windows line ends are accepted.
 
@@ -40,7 +42,7 @@ from pathlib import Path
 
 import numpy as np
 
-from ._format import Dataset, DatasetWriter
+from ._format import Dataset, DatasetWriter, check_new_store
 from ._ingest_base import (
     IngestError,
     Progress,
@@ -49,7 +51,14 @@ from ._ingest_base import (
     chunk_shape,
     read_columns,
 )
-from ._ingest_fields import Fields, decode_cells, iter_fields, parse_dosages, parse_numbers
+from ._ingest_fields import (
+    BadText,
+    Fields,
+    decode_cells,
+    iter_fields,
+    parse_dosages,
+    parse_numbers,
+)
 
 __all__ = ["DELIMITERS", "MISSING_TOKENS", "IngestError", "import_table"]
 
@@ -85,9 +94,19 @@ def _take(f: Fields, sel) -> Fields:
 class _Table:
     """Validate the header and rows of a table and hand rows of values to a sink, batch by batch."""
 
-    def __init__(self, name: str, dosage: bool, features_as_rows: bool) -> None:
+    def __init__(
+        self,
+        name: str,
+        dosage: bool,
+        features_as_rows: bool,
+        dtype: str = "float64",
+        nonfinite: str = "error",
+    ) -> None:
         self.name = name
         self.dosage = dosage
+        self.largest = float(np.finfo(dtype).max) if not dosage else np.inf
+        self.dtype = dtype
+        self.nonfinite = nonfinite
         self.row_what, self.col_what = (
             ("feature", "sample") if features_as_rows else ("sample", "feature")
         )
@@ -107,7 +126,11 @@ class _Table:
             nh = int(np.searchsorted(f.line, 1))  # fields of line 1 (index 0) come first
             h = _take(f, slice(0, nh))
             cells = h.col >= 1
-            self.header_parts.append(decode_cells(h.buf, h.start[cells], h.stop[cells]))
+            try:
+                self.header_parts.append(decode_cells(h.buf, h.start[cells], h.stop[cells]))
+            except BadText as exc:
+                col = int(h.col[cells][exc.cell]) + 1
+                raise IngestError(f"{self.name}: line 1, column {col}: {exc}") from None
             if nh and h.eol[-1]:
                 self._finish_header(on_header)
             f = _take(f, slice(nh, None))
@@ -152,7 +175,11 @@ class _Table:
                 )
             raise IngestError(f"{self.name}: {msg}")
         is_id = (f.col == 0) & ~blank
-        ids = decode_cells(f.buf, f.start[is_id], f.stop[is_id])
+        try:
+            ids = decode_cells(f.buf, f.start[is_id], f.stop[is_id])
+        except BadText as exc:
+            line = int(f.line[is_id][exc.cell]) + 1
+            raise IngestError(f"{self.name}: line {line}, column 1: {exc}") from None
         id_lines = f.line[is_id]
         empty = np.flatnonzero(np.char.str_len(ids) == 0)
         if empty.size:
@@ -162,18 +189,47 @@ class _Table:
         cells = np.flatnonzero(f.col >= 1)
         parse = parse_dosages if self.dosage else parse_numbers
         values, bad = parse(f.buf, f.start[cells], f.stop[cells])
+        problem = ""
+        if bad >= 0:
+            what = "a dosage (0, 1, 2 or missing)" if self.dosage else "a number"
+            problem = f"{f.text(int(cells[bad]))!r} is not {what}"
+        elif not self.dosage:
+            bad, problem = self._out_of_range(values, f, cells)
         if bad >= 0:
             i = int(cells[bad])
             j = np.flatnonzero(id_lines == f.line[i])
             row_id = str(ids[j[0]]) if j.size else self.last_id
-            what = "a dosage (0, 1, 2 or missing)" if self.dosage else "a number"
-            raise IngestError(
-                f"{self.where(int(f.line[i]), int(f.col[i]), row_id)}: {f.text(i)!r} is not {what}"
-            )
+            raise IngestError(f"{self.where(int(f.line[i]), int(f.col[i]), row_id)}: {problem}")
         if ids.size:
             self.last_id = str(ids[-1])
         self.n_rows += ids.size
         on_rows(values, ids, id_lines)
+
+    def _out_of_range(self, values: np.ndarray, f: Fields, cells: np.ndarray) -> tuple[int, str]:
+        """The first value that is infinite or too large for the store's dtype, and why.
+
+        With ``nonfinite="missing"`` infinite values become missing (NaN) instead.
+        """
+        big = np.abs(values) > self.largest  # also true for inf; NaN (missing) compares false
+        if not big.any():
+            return -1, ""
+        inf = np.isinf(values)
+        if self.nonfinite == "missing" and inf.any():
+            values[inf] = np.nan
+            big &= ~inf
+            if not big.any():
+                return -1, ""
+        k = int(np.flatnonzero(big)[0])
+        text = f.text(int(cells[k]))
+        if inf[k]:
+            return k, (
+                f"{text!r} is not a finite number (pass --inf-as-missing to read infinite values "
+                "as missing)"
+            )
+        return k, (
+            f"{text!r} does not fit in {self.dtype} (largest {self.largest:.4g}); import with "
+            "--dtype float64"
+        )
 
 
 class _SampleRows:
@@ -315,6 +371,7 @@ def import_table(
     chunk_features: int | None = None,
     overwrite: bool = False,
     progress: Progress = None,
+    nonfinite: str = "error",
 ) -> Dataset:
     """Import a CSV / TSV table (plain or gzip) into a dataset store with bounded memory.
 
@@ -339,6 +396,9 @@ def import_table(
     progress : callable(done, total), optional
         Called after every batch; ``done`` and ``total`` count input bytes (compressed bytes for a
         gzip file), the write-out of a samples-as-rows table counting as a second read.
+    nonfinite : {"error", "missing"}
+        What an infinite value (``inf``, ``-Infinity``) is: an error naming its line and column
+        (default), or missing. Values too large for ``dtype`` are always an error.
 
     Returns
     -------
@@ -362,14 +422,15 @@ def import_table(
     delim = _delimiter_for(name, delimiter)
     if not Path(name).is_file():
         raise IngestError(f"{name}: no such file")
-    if Path(store).exists() and not overwrite:
-        raise IngestError(f"{store}: already exists (choose another path or overwrite)")
+    check_new_store(store, overwrite, IngestError)
     source = Source(name)
     sink_cls = _FeatureRows if features_as_rows else _SampleRows
     sink = sink_cls(
         store, name, value_kind, dtype, chunk_features, overwrite, progress, source.size
     )
-    table = _Table(name, value_kind == "dosage", features_as_rows)
+    if nonfinite not in ("error", "missing"):
+        raise IngestError(f"nonfinite must be 'error' or 'missing'; got {nonfinite!r}")
+    table = _Table(name, value_kind == "dosage", features_as_rows, dtype, nonfinite)
     try:
         any_batch = False
         for fields in iter_fields(source, delim):

@@ -4,7 +4,9 @@ Rules
 -----
 * Sample ids are the columns after FORMAT on the ``#CHROM`` header line; ``##`` meta lines are skipped.
 * The dosage of a call is the number of alternate alleles in its GT: phased (``|``) and unphased (``/``)
-  alike, any ploidy (a haploid ``1`` is 1, a haploid ``0`` is 0). A call with any ``.`` allele (``.``,
+  alike, any ploidy (a haploid ``1`` is 1, a haploid ``0`` is 0, ``0/1/1`` is 2). A call with more
+  than two alternate alleles (``1/1/1``; with ``split``, more than two copies of one ALT) is refused
+  with its line and sample: a dosage store holds 0, 1 and 2 only. A call with any ``.`` allele (``.``,
   ``./.``, ``0/.``), or whose sample field stops before the GT key, is missing (-128).
 * GT is located per line from the FORMAT column, so it need not be the first key. A line whose FORMAT
   has no GT is an error.
@@ -39,8 +41,8 @@ import re
 
 import numpy as np
 
-from ._format import MISSING_INT8, Dataset, DatasetWriter
-from ._ingest_base import IngestError, Progress, Source, check_unique, chunk_shape
+from ._format import MISSING_INT8, Dataset, DatasetWriter, check_new_store
+from ._ingest_base import IngestError, Progress, Source, check_unique, chunk_shape, decode_utf8
 
 #: Bytes of VCF text parsed per batch.
 BATCH_BYTES = 4 * 2**20
@@ -84,7 +86,7 @@ def _read_header(source: Source, name: str) -> tuple[np.ndarray, bytes, int]:
                 f"{name}: line {line_no}: expected '##' meta lines and then the '#CHROM' header; "
                 f"got {line[:40].decode('utf-8', 'replace')!r}"
             )
-        cols = line.decode("utf-8", "replace").split("\t")
+        cols = decode_utf8(line, f"{name}: line {line_no}", b"\t").split("\t")
         if tuple(cols[:9]) != FIXED[: len(cols[:9])] or len(cols) < 10:
             raise IngestError(
                 f"{name}: line {line_no}: the header must read {' '.join(FIXED)} followed by "
@@ -225,6 +227,10 @@ class _Parser:
         if not chrom or not ref or not alt:
             raise self.fail(line, "empty CHROM, REF or ALT")
         alts = [] if alt == b"." else alt.split(b",")
+        where = f"{self.name}: line {line}"
+        for col, field in enumerate((chrom, vid, ref, alt)):
+            if not field.isascii():
+                decode_utf8(field, f"{where}, column {(1, 3, 4, 5)[col]}")
         return chrom.decode(), int(pos), vid.decode(), ref.decode(), alts, self._gt(fmt, line)
 
     def _alleles(self, a, T, nl, meta, line_no) -> np.ndarray:
@@ -284,6 +290,18 @@ class _Parser:
             out[: len(codes), f] = codes
         return out
 
+    def _check_dosage_range(self, dosage: np.ndarray, missing: np.ndarray, line_no) -> None:
+        """Refuse calls counting more than two alternate alleles (polyploid calls)."""
+        over = np.argwhere((dosage > 2) & ~missing)
+        if over.size:
+            i, s = (int(v) for v in over[0])
+            raise self.fail(
+                int(line_no[i]),
+                f"a call with {int(dosage[i, s])} alternate alleles; a dosage store holds 0, 1 "
+                "or 2 (polyploid calls cannot be stored)",
+                s,
+            )
+
     def _rows(self, alleles: np.ndarray, meta, line_no):
         n, m = self.n, len(meta)
         n_alt = np.array([len(x[4]) for x in meta])
@@ -305,6 +323,7 @@ class _Parser:
             counts = np.where(multi, 0, 1)
         else:
             counts = np.ones(m, np.int64)
+        self._check_dosage_range(nonref, missing, line_no)
         nonref[missing] = MISSING_INT8
         rows = np.repeat(nonref, counts, axis=0) if np.any(counts != 1) else nonref
         ids, chrom = [], []
@@ -319,6 +338,7 @@ class _Parser:
                 alt = alt.decode()
                 if split:
                     d = (al[:, i] == k + 1).sum(axis=0, dtype=np.int8)
+                    self._check_dosage_range(d[None], missing[i][None], line_no[i : i + 1])
                     rows[offsets[i] + k] = np.where(missing[i], np.int8(MISSING_INT8), d)
                     ids.append(f"{named}:{alt}" if named else f"{ch}:{pos}:{ref}:{alt}")
                 else:
@@ -388,8 +408,7 @@ def import_vcf(
         raise IngestError(f"multiallelic must be one of {MULTIALLELIC}; got {multiallelic!r}")
     if not os.path.isfile(name):
         raise IngestError(f"{name}: no such file")
-    if os.path.exists(store) and not overwrite:
-        raise IngestError(f"{store}: already exists (choose another path or overwrite)")
+    check_new_store(store, overwrite, IngestError)
     source = Source(name)
     try:
         samples, head, n_header = _read_header(source, name)

@@ -61,6 +61,7 @@ class InspectReport:
     creator: str
     source: str
     has_annotations: bool
+    integrity: str = ""
 
     @property
     def shape(self) -> tuple[int, int]:
@@ -96,6 +97,7 @@ class InspectReport:
             ("annotations", "chrom, pos" if self.has_annotations else "none"),
             ("format", f"version {self.format_version}, written by {self.creator}"),
             ("source", self.source or "(not recorded)"),
+            ("integrity", self.integrity),
         ]
         width = max(len(k) for k, _ in rows)
         return "\n".join(f"{k.ljust(width)}  {v}" for k, v in rows)
@@ -188,4 +190,9 @@ def inspect_dataset(path: str | os.PathLike, *, sample_blocks: int | None = None
         creator=ds.attrs.creator,
         source=ds.attrs.source,
         has_annotations=ds.annotations() is not None,
+        integrity=(
+            "CRC-32C per chunk, chunk positions recorded"
+            if ds.checksummed
+            else "no chunk checksums (format version 1): import again to add them"
+        ),
     )

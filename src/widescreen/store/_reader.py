@@ -16,15 +16,11 @@ from pathlib import Path
 import numcodecs.blosc as blosc
 import numpy as np
 
-from . import _accel
-from ._format import MISSING_INT8, Dataset, StoreError
+from . import _accel, _checksum
+from ._format import MISSING_INT8, ChunkError, Dataset
 
 # Decoding runs inside Dask worker threads; Blosc's own thread pool would oversubscribe the cores.
 blosc.use_threads = False
-
-
-class ChunkError(StoreError):
-    """A chunk file of X is missing, truncated or cannot be decoded."""
 
 
 @dataclass(frozen=True)
@@ -38,6 +34,9 @@ class ChunkLayout:
     n_cols: int
     dtype: np.dtype
     fast: bool  # True when chunks are plain Blosc frames readable without zarr
+    checksummed: bool = False  # each chunk file ends with the CRC-32C of the frame before it
+    dosage: bool = False  # values must be 0, 1, 2 or the missing sentinel
+    checksums: np.ndarray | None = field(default=None, repr=False)  # recorded CRC per chunk
 
     @classmethod
     def of(cls, ds: Dataset) -> ChunkLayout:
@@ -45,6 +44,9 @@ class ChunkLayout:
         codecs = [
             c["name"] if isinstance(c, dict) else getattr(c, "name", "") for c in meta["codecs"]
         ]
+        checksummed = bool(codecs) and codecs[-1] == _checksum.CODEC
+        if checksummed:
+            codecs = codecs[:-1]
         key = meta.get("chunk_key_encoding", {})
         key_name = key.get("name") if isinstance(key, dict) else getattr(key, "name", "")
         sep = (
@@ -62,7 +64,15 @@ class ChunkLayout:
             n_cols=ds.n_features,
             dtype=ds.dtype,
             fast=fast,
+            checksummed=checksummed,
+            dosage=ds.attrs.value_kind == "dosage",
+            checksums=ds.checksum_table() if checksummed else None,
         )
+
+    def where(self, r: int, c: int) -> str:
+        start = c * self.chunk_cols
+        stop = min(start + self.chunk_cols, self.n_cols)
+        return f"chunk {r}/{c} of {self.root} (features {start}..{stop - 1})"
 
 
 _local = threading.local()
@@ -125,18 +135,44 @@ def read_block(ds: Dataset, col_chunk: int, layout: ChunkLayout | None = None) -
     stop = min(start + layout.chunk_cols, layout.n_cols)
     n_row_chunks = -(-layout.n_rows // layout.chunk_rows)
     if not layout.fast:
-        return np.asarray(ds.X[:, start:stop])
+        try:
+            block = np.asarray(ds.X[:, start:stop])
+        except Exception as exc:  # zarr's own reader: a checksum mismatch, a bad frame, ...
+            raise ChunkError(
+                f"corrupt chunk column {col_chunk} of {layout.root} (features {start}..{stop - 1}): "
+                f"{exc}"
+            ) from None
+        if layout.dosage:
+            _check_dosages(block, layout, 0, col_chunk, 0)
+        return block
     # zarr stores edge chunks at the full chunk shape, so every chunk decodes to the same size.
     buf = _scratch((n_row_chunks * layout.chunk_rows, layout.chunk_cols), layout.dtype, "block")
     for r in range(n_row_chunks):
         path = layout.root / "c" / str(r) / str(col_chunk)
         rows = slice(r * layout.chunk_rows, (r + 1) * layout.chunk_rows)
-        _decode_chunk(path, buf[rows], start, stop)
+        _decode_chunk(path, buf[rows], layout, r, col_chunk)
+        if layout.dosage:
+            _check_dosages(buf[rows], layout, r, col_chunk, r * layout.chunk_rows)
     return buf[: layout.n_rows, : stop - start]
 
 
-def _decode_chunk(path: Path, out: np.ndarray, start: int, stop: int) -> None:
-    where = f"chunk {path.parent.name}/{path.name} of {path.parent.parent.parent} (features {start}..{stop - 1})"
+def _check_dosages(values: np.ndarray, layout: ChunkLayout, r: int, c: int, row0: int) -> None:
+    """Refuse a decoded dosage chunk holding anything but 0, 1, 2 and the missing sentinel.
+
+    Such values cannot come from an import: the chunk is damaged (or was written by another program).
+    """
+    bad = _accel.count_invalid_dosages(values)
+    if not bad:
+        return
+    i, j = np.argwhere(~np.isin(values, (0, 1, 2, MISSING_INT8)))[0]
+    raise ChunkError(
+        f"damaged {layout.where(r, c)}: {bad} value(s) that are not dosages (0, 1, 2 or missing), "
+        f"first {int(values[i, j])} at sample {row0 + int(i)}, feature {c * layout.chunk_cols + int(j)}"
+    )
+
+
+def _decode_chunk(path: Path, out: np.ndarray, layout: ChunkLayout, r: int, c: int) -> None:
+    where = layout.where(r, c)
     try:
         # Read into a reused buffer: a fresh bytes object per chunk costs an allocation and page faults.
         with open(path, "rb", buffering=0) as fh:
@@ -147,6 +183,8 @@ def _decode_chunk(path: Path, out: np.ndarray, start: int, stop: int) -> None:
         raise ChunkError(f"missing {where}: the store is damaged; import it again") from None
     try:
         # Blosc header: bytes 4-8 hold the decoded size, 12-16 the frame size (little endian).
+        if layout.checksummed:
+            got = _verify_checksum(raw, got, layout, r, c)
         if got < 16:
             raise ValueError(f"{got} bytes is shorter than a Blosc header")
         nbytes = int.from_bytes(raw[4:8], "little")
@@ -156,8 +194,35 @@ def _decode_chunk(path: Path, out: np.ndarray, start: int, stop: int) -> None:
         if nbytes != out.nbytes:
             raise ValueError(f"decodes to {nbytes} bytes, expected {out.nbytes}")
         blosc.decompress(raw[:got], out)
+    except ChunkError:
+        raise
     except Exception as exc:
         raise ChunkError(f"corrupt {where}: {exc}") from None
+
+
+def _verify_checksum(raw: memoryview, got: int, layout: ChunkLayout, r: int, c: int) -> int:
+    """Check a chunk file's CRC-32C (its last four bytes) and its position; return the frame size."""
+    if got < 20:
+        raise ValueError(f"{got} bytes is shorter than a Blosc header and a checksum")
+    cbytes = int.from_bytes(raw[12:16], "little")
+    if cbytes + 4 != got:
+        raise ValueError(f"truncated: {got} bytes on disk, the header says {cbytes} + 4")
+    stored = int.from_bytes(raw[got - 4 : got], "little")
+    if _checksum.crc32c(raw[: got - 4]) != stored:
+        raise ChunkError(
+            f"corrupt {layout.where(r, c)}: its bytes do not match its CRC-32C checksum (changed "
+            "on disk: bit rot or a partial write); the store is damaged: import it again"
+        )
+    table = layout.checksums
+    if table is not None and r < table.shape[0] and c < table.shape[1] and table[r, c] != stored:
+        others = _checksum.table_positions(table, stored)
+        what = (
+            f"holds the data of chunk {others[0][0]}/{others[0][1]} (chunks were moved or swapped)"
+            if others
+            else "is not the chunk written at import (its checksum differs from the recorded one)"
+        )
+        raise ChunkError(f"damaged {layout.where(r, c)}: it {what}; import the store again")
+    return got - 4
 
 
 @dataclass(frozen=True, eq=False)
