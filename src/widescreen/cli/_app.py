@@ -194,7 +194,8 @@ def screen_cmd(
     typer.echo(
         f"screened {s.n_features} features on {rep['n_analysed']} samples "
         f"({rep['n_dropped_missing']} dropped for missing values, {rep['n_unknown_ids']} unknown ids); "
-        f"{s.n_filtered} filtered, {s.n_constant} constant; shortlist of {result.index.size} "
+        f"{s.n_filtered} filtered, {s.n_constant} constant, {s.n_degenerate} degenerate, "
+        f"{s.n_nonfinite} not finite; shortlist of {result.index.size} "
         f"in {out / 'ranking.tsv'}"
         + (
             f" [resumed {s.blocks_reused} of {s.blocks_reused + s.blocks_computed} blocks]"

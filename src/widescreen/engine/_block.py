@@ -48,7 +48,8 @@ def process_block(source: BlockSource, spec: PassSpec, i: int, out_dir: str | No
     -------
     dict
         ``block``, ``start``, ``stop``, ``topk`` (a `TopK` with the kept values), ``n_filtered``,
-        ``n_constant``, ``seconds``, and ``stats`` (dict of arrays of shape (width,)) without a run
+        ``n_constant``, ``n_degenerate`` (explained by the adjustment set, or the kernel's fit
+        failed), ``n_nonfinite`` (a score that is not a finite number), ``seconds``, and ``stats`` (dict of arrays of shape (width,)) without a run
         folder.
     """
     t0 = time.perf_counter()
@@ -63,7 +64,7 @@ def process_block(source: BlockSource, spec: PassSpec, i: int, out_dir: str | No
     dosage = source.value_kind == "dosage"
     cols: dict[str, list[np.ndarray]] = {c: [] for c in spec.all_columns}
     best = TopK.empty(spec.keep, spec.n_nulls)
-    n_constant = 0
+    n_constant = n_degenerate = n_nonfinite = 0
     for a in range(0, stop - start, spec.sub_block):
         b = min(a + spec.sub_block, stop - start)
         block = prepare_block(raw[:, a:b], start + a, spec.rows)
@@ -71,7 +72,11 @@ def process_block(source: BlockSource, spec: PassSpec, i: int, out_dir: str | No
         filtered = _filter_mask(spec, block.missing_rate, block.mean, dosage)
         score = np.where(filtered | block.constant, 0.0, out["score"])
         out["score"] = score
-        eligible = ~(filtered | block.constant | out.get("degenerate", False)) & np.isfinite(score)
+        degenerate = np.asarray(out.get("degenerate", False)) & ~(filtered | block.constant)
+        nonfinite = ~np.isfinite(score) & ~(filtered | block.constant | degenerate)
+        eligible = ~(filtered | block.constant | degenerate | nonfinite)
+        n_degenerate += int(np.count_nonzero(degenerate))
+        n_nonfinite += int(np.count_nonzero(nonfinite))
         if spec.exclude.size:
             eligible &= ~np.isin(np.arange(start + a, start + b), spec.exclude)
         n_constant += int(block.constant.sum())
@@ -97,6 +102,8 @@ def process_block(source: BlockSource, spec: PassSpec, i: int, out_dir: str | No
         "topk": best,
         "n_filtered": int(stats["filtered"].sum()),
         "n_constant": n_constant,
+        "n_degenerate": n_degenerate,
+        "n_nonfinite": n_nonfinite,
         "sub_block": int(min(spec.sub_block, stop - start)),
         "seconds": time.perf_counter() - t0,
     }
@@ -169,6 +176,8 @@ def write_marker(out_dir: str | Path, record: dict) -> None:
         "null_max": [float(s) for s in top.null_max],
         "n_filtered": record["n_filtered"],
         "n_constant": record["n_constant"],
+        "n_degenerate": record.get("n_degenerate", 0),
+        "n_nonfinite": record.get("n_nonfinite", 0),
         "sub_block": record.get("sub_block"),
         "seconds": record["seconds"],
     }

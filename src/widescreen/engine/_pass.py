@@ -50,6 +50,8 @@ def _merge_records(records: list[dict], *, k: int, n_nulls: int) -> dict:
         "topk": top,
         "n_filtered": sum(r["n_filtered"] for r in records),
         "n_constant": sum(r["n_constant"] for r in records),
+        "n_degenerate": sum(r.get("n_degenerate", 0) for r in records),
+        "n_nonfinite": sum(r.get("n_nonfinite", 0) for r in records),
         "blocks": sum(r.get("blocks", 1) for r in records),
         "busy": sum(r.get("busy", r.get("seconds", 0.0)) for r in records),
     }
@@ -329,6 +331,8 @@ def _finish(
         n_features=source.n_features,
         n_filtered=merged["n_filtered"],
         n_constant=merged["n_constant"],
+        n_degenerate=merged["n_degenerate"],
+        n_nonfinite=merged["n_nonfinite"],
         blocks_reused=len(reused),
         blocks_computed=computed.n_computed,
         seconds=time.perf_counter() - t0,

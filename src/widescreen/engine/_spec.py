@@ -125,6 +125,10 @@ class PassResult:
         All features' statistics when the pass ran without a run folder.
     n_filtered, n_constant : int
         Features excluded by the filters, and constant ones.
+    n_degenerate, n_nonfinite : int
+        Features left out of the ranking because the kernel could not score them (explained by
+        the adjustment set, or a failed fit), and features whose score was not a finite number.
+        Every feature is either ranked or counted in one of these four.
     blocks_reused, blocks_computed : int
         Blocks taken from completion markers, and blocks run in this call.
     seconds : float
@@ -158,12 +162,27 @@ class PassResult:
     seconds_blocks: float = 0.0
     seconds_fetch: float = 0.0
     notes: tuple[str, ...] = ()
+    n_degenerate: int = 0
+    n_nonfinite: int = 0
+
+    @property
+    def left_out(self) -> dict[str, int]:
+        """Features left out of the ranking, by reason."""
+        return {
+            "filtered": self.n_filtered,
+            "constant": self.n_constant,
+            "degenerate": self.n_degenerate,
+            "not finite": self.n_nonfinite,
+        }
 
     def summary(self) -> dict:
         out = {
             "n_features": self.n_features,
             "n_filtered": self.n_filtered,
             "n_constant": self.n_constant,
+            "n_degenerate": self.n_degenerate,
+            "n_nonfinite": self.n_nonfinite,
+            "left_out": self.left_out,
             "blocks_reused": self.blocks_reused,
             "blocks_computed": self.blocks_computed,
             "seconds": round(self.seconds, 3),

@@ -8,6 +8,7 @@ counted; ids the store does not know, and store samples the table lacks, are rep
 from __future__ import annotations
 
 import csv
+import hashlib
 import os
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -147,6 +148,17 @@ class JoinedOutcome:
 
     def numeric(self, name: str) -> np.ndarray:
         return parse_numeric(self.table, name, self.values[name], self.lines)
+
+    def digest(self) -> dict[str, str]:
+        """Hashes of what a pass reads from the table: the analysed samples (in store order) and each
+        needed column's text for them. Reordering rows or editing other columns changes nothing."""
+
+        def h(values: np.ndarray) -> str:
+            return hashlib.sha256("\x1f".join(map(str, values)).encode()).hexdigest()[:16]
+
+        out = {"samples": h(self.sample_ids)}
+        out.update({f"column {name!r}": h(v) for name, v in sorted(self.values.items())})
+        return out
 
     def report(self) -> dict:
         return {

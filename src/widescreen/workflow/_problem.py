@@ -262,6 +262,7 @@ def load_problem(
     if covariates:
         Z = np.column_stack([joined.numeric(c) for c in covariates])
         check_covariates(Z, tuple(covariates), f"{table.path}: ")
+    _check_response_varies(table.path, response, np.asarray(resp.y, dtype=np.float64), Z)
     rows = joined.rows
     if rows.size == source.n_samples and np.array_equal(rows, np.arange(rows.size)):
         rows = None
@@ -277,6 +278,26 @@ def load_problem(
         samples=joined.report(),
         joined=joined,
     )
+
+
+def _check_response_varies(path, name: str, y: np.ndarray, Z: np.ndarray | None) -> None:
+    """Refuse a response with nothing to explain, naming the file and column, before any run folder
+    is made: constant, or fully explained by the intercept and the covariates."""
+    y = y[np.isfinite(y)]
+    if y.size and np.ptp(y) == 0:
+        raise OutcomeError(
+            f"{path}: column {name!r} is constant over the {y.size} analysed samples (every value "
+            f"is {y[0]:g}); there is nothing to screen against"
+        )
+    if Z is None or y.size != Z.shape[0]:
+        return
+    A = np.column_stack([np.ones(y.size), Z])
+    resid = y - A @ np.linalg.lstsq(A, y, rcond=None)[0]
+    if np.linalg.norm(resid) <= 1e-10 * max(np.linalg.norm(y - y.mean()), 1e-300):
+        raise OutcomeError(
+            f"{path}: column {name!r} is fully explained by the covariates; there is nothing left "
+            "to screen against"
+        )
 
 
 def problem_from_arrays(X, y, family: str | Family = "linear", covariates=None, **kw) -> Problem:

@@ -99,7 +99,12 @@ class ScreenResult:
 
 def dataset_record(problem: Problem) -> dict:
     ds = problem.source.dataset
-    return {"path": str(ds.path), "fingerprint": problem.source.token(), "shape": list(ds.shape)}
+    return {
+        "path": str(ds.path),
+        "fingerprint": problem.source.token(),
+        "shape": list(ds.shape),
+        "outcome": {"path": str(problem.joined.table.path), **problem.joined.digest()},
+    }
 
 
 def screen_problem(

@@ -48,6 +48,28 @@ def _check_restartable(run: RunFolder) -> None:
         )
 
 
+def _outcome_changes(old: dict | None, new: dict | None) -> list[str]:
+    """What changed in the outcome table's analysed samples and columns (runs recorded before this
+    was kept have no record: nothing to compare)."""
+    if not old or not new:
+        return []
+    out = []
+    for key in sorted(set(old) | set(new)):
+        if key == "path" or old.get(key) == new.get(key):
+            continue
+        if key == "samples":
+            out.append("outcome table: the analysed samples changed")
+        elif key not in old or key not in new:
+            out.append(
+                f"outcome table: {key[len('column ') :]} {'added' if key in new else 'dropped'}"
+            )
+        else:
+            out.append(f"outcome table: the values of {key} changed")
+    if out and old.get("path") != new.get("path"):
+        out.insert(0, f"outcome table: {old.get('path')} -> {new.get('path')}")
+    return out
+
+
 def _mark_not_running(path: Path) -> None:
     """Last resort when the final manifest cannot be saved: rewrite the status in place.
 
@@ -227,6 +249,9 @@ def open_session(
                     f"dataset: {old.get('dataset', {}).get('path')} changed or is another store "
                     f"(fingerprint {old.get('dataset', {}).get('fingerprint')} -> {dataset['fingerprint']})"
                 )
+            problems += _outcome_changes(
+                old.get("dataset", {}).get("outcome"), dataset.get("outcome")
+            )
             if problems:
                 raise RunFolderError(
                     f"{run.path}: was made by another command, configuration or dataset; differences: "
