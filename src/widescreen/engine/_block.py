@@ -235,8 +235,8 @@ def read_marker(
     """The record of a finished block, or None when its marker or statistics cannot be trusted.
 
     A marker is trusted when it parses, names the block's feature range, and every statistic's chunk
-    file of the block exists and is not empty (an empty file is what a crash of the machine can leave
-    behind); otherwise the block is computed again.
+    file of the block exists and holds at least the block's values (an empty or truncated file is what
+    a crash of the machine can leave behind); otherwise the block is computed again.
     """
     path = PassLayout(Path(out_dir)).marker(block)
     try:
@@ -252,10 +252,12 @@ def read_marker(
         )
     except (OSError, ValueError, KeyError, TypeError):
         return None
+    need = (int(bounds[1]) - int(bounds[0])) * 8  # float64 values of the block's features
     for c in columns:
         try:
-            if os.stat(stats_chunk(out_dir, c, block)).st_size == 0:
-                return None
+            size = os.stat(stats_chunk(out_dir, c, block)).st_size
         except OSError:
+            return None
+        if size < need or size % 8:  # empty or truncated: what a machine crash can leave
             return None
     return {**m, "topk": top}

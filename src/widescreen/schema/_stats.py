@@ -136,9 +136,19 @@ class PassStats:
     def read(self, columns=None, start: int = 0, stop: int | None = None) -> dict[str, np.ndarray]:
         """Statistics of features ``start:stop`` (store order): dict of float64 arrays."""
         return {
-            c: np.asarray(self._group[c][start:stop], dtype=np.float64)
+            c: self._damaged(c, lambda c=c: self._group[c][start:stop])
             for c in self._check(columns)
         }
+
+    def _damaged(self, column: str, read) -> np.ndarray:
+        # A truncated chunk file (a machine crash) makes zarr fail to reshape it: name the array.
+        try:
+            return np.asarray(read(), dtype=np.float64)
+        except Exception as exc:
+            raise RunFolderError(
+                f"{self.layout.stats / column}: cannot be read ({exc}); rerun the command to "
+                "compute the damaged blocks again"
+            ) from None
 
     def read_at(self, index, columns=None) -> dict[str, np.ndarray]:
         """Statistics of the given features only (memory independent of p), in the given order."""
@@ -147,7 +157,7 @@ class PassStats:
         out = {}
         for c in self._check(columns):
             vals = (
-                np.asarray(self._group[c].get_coordinate_selection(index[order]), np.float64)
+                self._damaged(c, lambda c=c: self._group[c].get_coordinate_selection(index[order]))
                 if index.size
                 else np.empty(0)
             )

@@ -9,6 +9,7 @@ from __future__ import annotations
 
 import csv
 import hashlib
+import io
 import os
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -50,8 +51,26 @@ def read_outcome_table(path: str | os.PathLike) -> OutcomeTable:
     if not path.is_file():
         raise OutcomeError(f"{path}: no such outcome table")
     delimiter = "," if path.suffix.lower() == ".csv" else "\t"
-    with open(path, newline="") as f:
-        rows = list(csv.reader(f, delimiter=delimiter))
+    data = path.read_bytes()
+    try:
+        text = data.decode("utf-8-sig")
+    except UnicodeDecodeError as exc:
+        line = data[: exc.start].count(b"\n") + 1
+        col = data[data.rfind(b"\n", 0, exc.start) + 1 : exc.start].count(delimiter.encode()) + 1
+        raise OutcomeError(
+            f"{path}: line {line}, column {col}: not UTF-8 text (byte 0x{data[exc.start]:02x}); "
+            "save the table as UTF-8"
+        ) from None
+    nul = text.find("\x00")
+    if nul >= 0:  # a NUL byte would vanish in the numeric conversion ("1\0" read as 1)
+        line = text.count("\n", 0, nul) + 1
+        col = text[text.rfind("\n", 0, nul) + 1 : nul].count(delimiter) + 1
+        raise OutcomeError(f"{path}: line {line}, column {col}: a NUL byte in the cell")
+    reader = csv.reader(io.StringIO(text, newline=""), delimiter=delimiter)
+    try:
+        rows = list(reader)
+    except csv.Error as exc:  # a NUL byte, an unterminated quote
+        raise OutcomeError(f"{path}: line {reader.line_num}: {exc}") from None
     rows = [r for r in rows if r and any(c.strip() for c in r)]
     if not rows:
         raise OutcomeError(f"{path}: empty file")
@@ -106,6 +125,13 @@ def parse_numeric(
                 raise OutcomeError(
                     f"{table.path}: column {name!r}, line {line}: {str(raw[i])!r} is not a number"
                 ) from None
+    bad = np.flatnonzero(np.isinf(out))
+    if bad.size:
+        i = int(bad[0])
+        line = lines[i] if lines is not None else i + 2
+        raise OutcomeError(
+            f"{table.path}: column {name!r}, line {line}: {str(raw[i])!r} is not a finite number"
+        )
     return out
 
 
