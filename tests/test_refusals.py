@@ -46,8 +46,10 @@ def test_every_feature_left_out_is_counted_with_its_reason(study):
     assert man["passes"]["screen"]["left_out"] == s.left_out
     cli = CliRunner().invoke(
         app,
-        ["screen", str(ds.path), "--outcome", str(outcome), "--response", "y"]
-        + ["--covariates", "age", "--out", str(root / "cli"), "--quiet", "--no-report"],
+        [
+            *("screen", str(ds.path), "--outcome", str(outcome), "--response", "y"),
+            *("--covariates", "age", "--out", str(root / "cli"), "--quiet", "--no-report"),
+        ],
     )
     assert cli.exit_code == 0, cli.output
     assert "1 constant, 1 degenerate, 0 not finite" in cli.output
