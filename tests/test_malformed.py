@@ -731,7 +731,11 @@ CASES = [
         _outcome("sample\ty\ns1\t1\ns2\t2\xe9\n".encode("latin-1")),
         r"y\.tsv: line 3, column 2: not UTF-8 text \(byte 0xe9\)",
     ),
-    Case("outcome-nul", _outcome(b"sample\ty\ns1\t1\x00\n"), r"y\.tsv: line 2, column 2: a NUL byte in the cell"),
+    Case(
+        "outcome-nul",
+        _outcome(b"sample\ty\ns1\t1\x00\n"),
+        r"y\.tsv: line 2, column 2: a NUL byte in the cell",
+    ),
     Case(
         "outcome-constant-covariate",
         _outcome_rows({"y": _ys(0, "1"), "age": ["40"] * N}, "--covariates", "age"),

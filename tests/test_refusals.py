@@ -78,7 +78,9 @@ def test_changed_outcome_table_is_refused_listing_the_change(study, rng):
     screen(ds.path, outcome, cfg, out)
     ids = [f"s{i}" for i in range(N)]
     # the same analysed values, rows in another order and another unused column: still resumes
-    write_outcome(outcome, ids, {"y": y, "age": age, "other": np.zeros(N)}, order=rng.permutation(N))
+    write_outcome(
+        outcome, ids, {"y": y, "age": age, "other": np.zeros(N)}, order=rng.permutation(N)
+    )
     screen(ds.path, outcome, cfg, out)
     # one response value changed
     y2 = y.copy()
