@@ -162,3 +162,29 @@ def test_full_disk_error_names_the_file(tmp_path, monkeypatch):
     monkeypatch.undo()
     assert str(target) in str(err.value) and "No space left" in str(err.value)
     assert not list(tmp_path.iterdir())  # no temporary left
+
+
+def test_truncated_statistics_chunk_is_named_and_recomputed(tmp_path, rng):
+    import numpy as np
+
+    from widescreen.engine import RunFolder, read_stats
+    from widescreen.workflow import ScreenConfig, screen
+
+    from .conftest import write_outcome, write_store
+
+    X = rng.integers(0, 3, (40, 64)).astype(np.int8)
+    ids = [f"s{i}" for i in range(40)]
+    ds = write_store(tmp_path / "x.zarr", X, chunk_features=16, sample_ids=ids)
+    outcome = write_outcome(tmp_path / "y.tsv", ids, {"y": X[:, 3] + rng.standard_normal(40)})
+    out = tmp_path / "run"
+    screen(ds.path, outcome, ScreenConfig(response="y"), out)
+    want = read_stats(RunFolder(out), "screen")
+    chunk = out / "passes" / "screen" / "stats" / "correlation" / "c" / "2"
+    chunk.write_bytes(chunk.read_bytes()[:40])  # what a machine crash can leave
+    with pytest.raises(RunFolderError, match=r"stats/correlation: cannot be read .*rerun"):
+        read_stats(RunFolder(out), "screen")
+    res = screen(ds.path, outcome, ScreenConfig(response="y"), out)
+    assert (res.pass_result.blocks_reused, res.pass_result.blocks_computed) == (3, 1)
+    got = read_stats(RunFolder(out), "screen")
+    for c in want:
+        assert got[c].tobytes() == want[c].tobytes(), c
