@@ -57,7 +57,7 @@ def study(tmp_path_factory):
     return root, sim, refs
 
 
-def _args(command: str, sim, out: Path) -> list[str]:
+def _args(command: str, sim, out: Path, report: bool = False) -> list[str]:
     return [
         command,
         str(sim.dataset.path),
@@ -70,7 +70,7 @@ def _args(command: str, sim, out: Path) -> list[str]:
         "--out",
         str(out),
         "--quiet",
-        "--no-report",
+        "--report" if report else "--no-report",
     ]
 
 
@@ -84,15 +84,19 @@ def _reached(out: Path, point: tuple) -> bool:
     if kind == "pass":
         _, name, at = point
         return _markers(out, name) >= at
+    if kind == "file":  # a file of the run folder exists (ranking.tsv: the report is next)
+        return (out / point[1]).exists()
     if kind == "end":  # every pass done: refit, tables
         return (out / "passes" / point[1] / "done").is_dir() and _markers(out, point[1]) >= N_BLOCKS
     return False
 
 
-def _interrupt(command: str, sim, out: Path, sig: int, point: tuple) -> subprocess.CompletedProcess:
+def _interrupt(
+    command: str, sim, out: Path, sig: int, point: tuple, report: bool = False
+) -> subprocess.CompletedProcess:
     """Start ``command`` in a subprocess and send ``sig`` once ``point`` is reached."""
     proc = subprocess.Popen(
-        [*CLI, *_args(command, sim, out)],
+        [*CLI, *_args(command, sim, out, report)],
         stdout=subprocess.PIPE,
         stderr=subprocess.PIPE,
         text=True,
@@ -157,6 +161,22 @@ def _trials() -> list[tuple[str, int, tuple]]:
         else:
             out.append(("run", sig, ("end", "iter1")))
     return out
+
+
+def test_interrupt_during_the_report_ends_cleanly(study):
+    """Ctrl-C while the report draws (matplotlib loading, figures): one line, exit 130, no abort."""
+    root, sim, refs = study
+    out = root / "report-SIGINT"
+    done = _interrupt("screen", sim, out, signal.SIGINT, ("file", "ranking.tsv"), report=True)
+    assert done.returncode in (0, 130), done.stderr  # 0: the report finished first
+    if done.returncode == 130:
+        lines = [x for x in done.stderr.splitlines() if x.strip()]
+        assert len(lines) == 1 and lines[0].startswith("interrupted"), done.stderr
+    assert not list(out.glob(".*.tmp-*")) and not list((out / "figures").glob(".*.tmp-*"))
+    res = runner.invoke(app, _args("screen", sim, out, report=True))
+    assert res.exit_code == 0, res.output
+    assert_same_outputs(out, refs["screen"])
+    assert (out / "report.html").exists()
 
 
 @pytest.mark.parametrize(
