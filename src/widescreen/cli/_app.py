@@ -83,6 +83,8 @@ def friendly(fn=None, *, interrupted: str = RESUMABLE):
         except KeyboardInterrupt:
             _quiet_after_interrupt()
             typer.echo("\n" + interrupted, err=True)
+            global _REPORTED
+            _REPORTED = True
             raise typer.Exit(code=130) from None
         except _expected_errors() as exc:
             typer.echo(f"error: {exc}", err=True)
@@ -408,6 +410,7 @@ def inspect_cmd(
 
 _IN_MAIN = False  # set by `main`: the process is the command (not a caller's test or notebook)
 _STOPPING = False  # a first Ctrl-C / SIGTERM arrived
+_REPORTED = False  # the interrupt's line was printed
 
 
 def _quiet_after_interrupt() -> None:
@@ -448,6 +451,8 @@ def main() -> None:
             # Interrupted, and the run folder is already consistent: leave without finalising the
             # interpreter, whose teardown of half-stopped threads and event loops printed library
             # noise and, in native code, could abort the process (SIGABRT).
+            if not _REPORTED:  # stopped while the command line was parsed (click exits 130)
+                sys.stderr.write("interrupted\n")
             sys.stdout.flush()
             sys.stderr.flush()
             os._exit(130)
