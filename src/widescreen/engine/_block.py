@@ -49,8 +49,8 @@ def process_block(source: BlockSource, spec: PassSpec, i: int, out_dir: str | No
     dict
         ``block``, ``start``, ``stop``, ``topk`` (a `TopK` with the kept values), ``n_filtered``,
         ``n_constant``, ``n_degenerate`` (explained by the adjustment set, or the kernel's fit
-        failed), ``n_nonfinite`` (a score that is not a finite number), ``seconds``, and ``stats`` (dict of arrays of shape (width,)) without a run
-        folder.
+        failed), ``n_nonfinite`` (a score that is not a finite number), ``seconds``, and ``stats``
+        (dict of arrays of shape (width,)) without a run folder.
     """
     t0 = time.perf_counter()
     if out_dir is not None and not PassLayout(Path(out_dir)).stats.is_dir():

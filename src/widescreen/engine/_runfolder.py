@@ -21,25 +21,15 @@ from pathlib import Path
 
 import numpy as np
 
-from ..schema import RunFolderError, RunLayout
-
+from ..schema import TABLES, RunFolderError, RunLayout
 
 #: Marks the temporary name of a file being written (``.NAME.tmp-PID-THREAD``).
 TMP_MARK = ".tmp-"
 #: Entries a run folder may hold besides temporary files: a folder holding only these (and
-#: temporaries) is recognisably a run folder, which ``--restart`` may empty.
+#: temporaries) is recognisably a run folder, which ``--restart`` may empty. The tables come from
+#: the schema, so a new table joins by itself.
 RUN_FOLDER_ENTRIES = frozenset(
-    {
-        "manifest.json",
-        ".lock",
-        ".reserve",
-        "passes",
-        "ranking.tsv",
-        "model.tsv",
-        "iterations.tsv",
-        "report.html",
-        "figures",
-    }
+    {"manifest.json", ".lock", ".reserve", "passes", "report.html", "figures", *TABLES}
 )
 #: Bytes set aside while a session runs, released to save the final manifest on a full disk.
 RESERVE_BYTES = 1 << 20
