@@ -162,6 +162,8 @@ def run_cmd(
         f"{result.budget}; stopped: {result.stop_reason}; selected {result.index.size} "
         f"feature(s){': ' + shown + more if shown else ''}; model in {out / 'model.tsv'}"
     )
+    for warning in result.warnings:
+        typer.echo(f"warning: {warning}", err=True)
     if report:
         from ..report import build_report
 

@@ -6,12 +6,13 @@ Pure numpy / scipy / scikit-learn; no I/O. The usual call is::
     best = select_model(path, "ebic", n_candidates=p)
 
 ``best.coef``, ``best.intercept``, ``best.unpenalized_coef`` and ``best.support`` describe the chosen
-model; ``best.lambdas``, ``best.coefs`` and ``best.criterion_values`` the whole path.
+model (penalised estimates), ``best.refit_coef`` and ``best.refit_se`` its unpenalised refit; ``best.lambdas``, ``best.coefs`` and ``best.criterion_values`` the whole path.
 """
 
 from ._criteria import bic, default_ebic_gamma, ebic, log_binomial
 from ._estimator import PenalizedRegression
 from ._losses import BinomialLoss, CoxLoss, GaussianLoss, Loss, PoissonLoss, make_loss
+from ._mle import Refit, refit
 from ._path import fit_path
 from ._penalties import (
     MCP,
@@ -33,7 +34,7 @@ from ._penalties import (
     soft_threshold,
 )
 from ._results import FitResult, PathResult, SolverOptions
-from ._select import cross_validate, select_model
+from ._select import cross_validate, cross_validate_supports, refit_support, select_model
 
 __all__ = [
     "MCP",
@@ -51,9 +52,11 @@ __all__ = [
     "PenalizedRegression",
     "Penalty",
     "PoissonLoss",
+    "Refit",
     "SolverOptions",
     "bic",
     "cross_validate",
+    "cross_validate_supports",
     "default_ebic_gamma",
     "ebic",
     "elastic_net_penalty",
@@ -65,6 +68,8 @@ __all__ = [
     "mcp_derivative",
     "mcp_penalty",
     "mcp_threshold",
+    "refit",
+    "refit_support",
     "scad_derivative",
     "scad_penalty",
     "scad_threshold",

@@ -20,6 +20,7 @@ import numpy as np
 from sklearn import config_context
 from threadpoolctl import threadpool_limits
 
+from ._concave import concave_path
 from ._criteria import bic
 from ._dantzig import dantzig_selector
 from ._losses import Loss, make_loss
@@ -298,6 +299,11 @@ def _path(problem, pen, n_lambda, lambda_min_ratio, lambdas, opts) -> PathResult
         for i, level in enumerate(lam):
             B[i] = dantzig_selector(wp0, level, eligible)
         G = wp0.unpenalized(B.T).T
+    elif pen.concave and opts.concave_solver == "cd":
+        with _blas_limit(opts):
+            B, G, conv = concave_path(problem, pen, lam, eta0, opts)
+        L = B.shape[0]
+        lam = lam[:L]
     else:
         b, eta, wp = np.zeros(d), eta0, wp0
         with _blas_limit(opts):

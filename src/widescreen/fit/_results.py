@@ -7,6 +7,7 @@ from dataclasses import asdict, dataclass, field
 import numpy as np
 
 from ._losses import Loss
+from ._mle import Refit
 from ._penalties import Penalty
 from ._problem import Problem
 
@@ -22,10 +23,15 @@ class SolverOptions:
     max_iter : int
         Coordinate descent sweeps per solve.
     outer_max_iter : int
-        Iterations per lambda of the outer loop: local linear approximation steps (SCAD, MCP) and
-        IRLS steps (GLM / Cox losses) are interleaved in this one loop.
+        IRLS iterations per lambda (GLM / Cox losses); with ``concave_solver="lla"`` local linear
+        approximation steps are interleaved in the same loop.
+    concave_solver : {"cd", "lla"}
+        How SCAD and MCP are solved: ``"cd"`` (default) by coordinate descent with the penalty's own
+        thresholding along the path (Breheny & Huang 2011, see `_concave`); ``"lla"`` by the local linear
+        approximation started from the lasso path (Zou & Li 2008), kept for comparison: it inherits the
+        lasso's order of entry.
     lla_max_iter : int
-        Local linear approximation steps per lambda (SCAD, MCP). Zou & Li (2008) show one step from a
+        With ``concave_solver="lla"``: local linear approximation steps per lambda (SCAD, MCP). Zou & Li (2008) show one step from a
         good initial estimate is enough for the oracle property, and Fan, Xue & Zou (2014, Ann. Statist.
         42:819) two from the lasso; here each lambda starts from the previous lambda's solution, so the
         steps accumulate along the path. Past this count the weights are frozen (a GLM still iterates
@@ -38,6 +44,9 @@ class SolverOptions:
     max_deviance_ratio : float
         For non-Gaussian losses the path stops once this share of the null deviance is explained
         (glmnet's rule, common practice): beyond it the fit is saturated and may diverge.
+    kkt_tol : float
+        A SCAD / MCP path point is flagged converged when the optimality (KKT) conditions hold to
+        ``kkt_tol * lambda_max`` on the scale of ``x_j^T s / n`` (standardised columns, score ``s``).
     blas_threads : int or None
         BLAS threads in the per-lambda loop (SCAD, MCP, GLM and Cox paths; the Gram matrix of a
         Gaussian fit is computed before it with the process setting). That loop is many small products,
@@ -48,14 +57,16 @@ class SolverOptions:
     tol: float = 1e-7
     max_iter: int = 10_000
     outer_max_iter: int = 100
+    concave_solver: str = "cd"
     lla_max_iter: int = 10
     outer_tol: float = 1e-6
     irls_tol: float = 1e-8
     max_deviance_ratio: float = 0.999
+    kkt_tol: float = 1e-4
     blas_threads: int | None = 1
 
     def __post_init__(self):
-        for name in ("tol", "outer_tol", "irls_tol"):
+        for name in ("tol", "outer_tol", "irls_tol", "kkt_tol"):
             value = getattr(self, name)
             if not (np.isfinite(value) and value > 0):
                 raise ValueError(
@@ -72,6 +83,10 @@ class SolverOptions:
         ):
             raise ValueError(
                 f"The solver option 'blas_threads' must be a positive int or None; got {self.blas_threads!r}."
+            )
+        if self.concave_solver not in ("cd", "lla"):
+            raise ValueError(
+                f"The solver option 'concave_solver' must be 'cd' or 'lla'; got {self.concave_solver!r}."
             )
         if not 0.0 < self.max_deviance_ratio <= 1.0:
             raise ValueError(
@@ -210,6 +225,16 @@ class FitResult:
     cv_std_error : ndarray of shape (L,) or None
         Standard error of the cross-validation mean over folds.
     path : PathResult
+    tuning : {"refit", "path"}
+        Whether the criterion scored each support's unpenalised refit or the penalised estimates.
+    refit : Refit, optional
+        The unpenalised maximum likelihood fit on the selected features (and the intercept and
+        covariates).
+    refit_coef : ndarray of shape (d,), optional
+        Its coefficients on the original scale (0 off the support).
+    refit_se : ndarray of shape (d,), optional
+        Their standard errors (NaN off the support). After selection these are not valid for
+        inference: they ignore that the support was chosen from the same data.
     """
 
     coef: np.ndarray
@@ -226,6 +251,10 @@ class FitResult:
     n_candidates: int | None
     cv_std_error: np.ndarray | None
     path: PathResult = field(repr=False)
+    tuning: str = "path"
+    refit: Refit | None = field(default=None, repr=False)
+    refit_coef: np.ndarray | None = None
+    refit_se: np.ndarray | None = None
 
     def linear_predictor(self, X, unpenalized=None, offset=None) -> np.ndarray:
         """Linear predictor of shape (m,) for new samples ``X`` of shape (m, d)."""

@@ -1,14 +1,27 @@
-"""Choosing one model from a path: BIC, extended BIC or K-fold cross-validation."""
+"""Choosing one model from a path: BIC, extended BIC or K-fold cross-validation.
+
+By default (``tuning="refit"``) a criterion scores each support the path visits by its unpenalised
+maximum likelihood refit (`_mle.refit`): the EBIC of Chen & Chen (2008, Biometrika 95:759) is defined for
+a model's maximum likelihood, ``-2 log L(beta_hat_S) + |S| log n + 2 gamma log C(p, |S|)``, and the
+penalised estimate's likelihood is lower (its large coefficients are shrunk below ``a lambda`` at larger
+lambdas), which tilts the choice towards larger models or towards the empty one. The chosen model is
+therefore the criterion's best over the visited supports; the path supplies the candidate supports
+(as in the relaxed lasso of Meinshausen 2007, CSDA 52:374, with no shrinkage left). For ``"cv"`` each
+visited support's refit is cross-validated (refitted on the training folds, scored on the held-out one).
+``tuning="path"`` gives the former behaviour: the criterion at the penalised estimates of each lambda.
+"""
 
 from __future__ import annotations
 
 import numpy as np
 
-from ._criteria import bic, default_ebic_gamma, ebic
+from ._criteria import bic, default_ebic_gamma, ebic, log_binomial
+from ._mle import Refit, refit, refit_columns
 from ._path import path_on_problem
 from ._results import FitResult, PathResult
 
 _CRITERIA = ("bic", "ebic", "cv")
+_TUNINGS = ("refit", "path")
 
 
 def cross_validate(
@@ -60,6 +73,114 @@ def cross_validate(
     return mean, np.where(np.isfinite(mean), se, np.inf)
 
 
+def refit_support(path: PathResult, support: np.ndarray) -> Refit:
+    """Unpenalised refit of ``path``'s data on the features ``support`` (original scale)."""
+    pr = path.problem
+    return refit(pr.X[:, support], pr.y, pr.loss, pr.Z if pr.Z.shape[1] else None, pr.offset)
+
+
+def _supports(path: PathResult) -> tuple[list[np.ndarray], np.ndarray]:
+    """The distinct supports of the path and, per lambda, the position of its support in that list."""
+    seen: dict[bytes, int] = {}
+    supports: list[np.ndarray] = []
+    which = np.empty(path.lambdas.shape[0], dtype=np.int64)
+    for i, b in enumerate(path.coefs_standardized):
+        s = np.flatnonzero(b)
+        key = s.tobytes()
+        if key not in seen:
+            seen[key] = len(supports)
+            supports.append(s)
+        which[i] = seen[key]
+    return supports, which
+
+
+def _floor(path: PathResult, union: np.ndarray) -> float:
+    """A lower bound of ``-2 log L`` at the refit of any subset of ``union``.
+
+    The refit of the union itself when it has one (a subset's maximum likelihood cannot exceed its
+    superset's); otherwise the loss's own bound (binomial and Cox: log-likelihood <= 0; Poisson: the
+    saturated model's log-likelihood), or -inf for the Gaussian loss.
+    """
+    pr = path.problem
+    q = pr.C.shape[1]
+    if union.size + q < pr.n - 1:
+        fit = refit_support(path, union)
+        if fit.exists:
+            return -2.0 * fit.log_likelihood
+    name = pr.loss.name
+    if name in ("binomial", "cox"):
+        return 0.0
+    if name == "poisson":
+        y = pr.y
+        return -2.0 * float(np.sum(np.where(y > 0, y * np.log(np.where(y > 0, y, 1.0)), 0.0) - y))
+    return -np.inf
+
+
+def _refit_criterion(path: PathResult, supports, penalty_of_size) -> np.ndarray:
+    """Criterion at the refit of each distinct support; NaN where it provably cannot win.
+
+    Supports are scored from the smallest up; a support whose bound (`_floor` plus its size penalty)
+    already exceeds the best value found is skipped, so only supports that could be chosen are refitted.
+    """
+    values = np.full(len(supports), np.nan)
+    union = np.unique(np.concatenate(supports)) if supports else np.empty(0, dtype=np.int64)
+    floor = None
+    best = np.inf
+    pr = path.problem
+    for i in sorted(range(len(supports)), key=lambda i: supports[i].size):
+        s = supports[i]
+        if s.size + pr.C.shape[1] >= pr.n - 1:
+            values[i] = np.inf  # no unpenalised refit: as many coefficients as samples
+            continue
+        if np.isfinite(best) and s.size > 0:
+            if floor is None:
+                floor = _floor(path, union)
+            if floor + penalty_of_size(s.size) > best:
+                continue
+        fit = refit_support(path, s)
+        values[i] = -2.0 * fit.log_likelihood + penalty_of_size(s.size) if fit.exists else np.inf
+        best = min(best, values[i])
+    return values
+
+
+def cross_validate_supports(
+    path: PathResult, supports: list[np.ndarray], n_folds: int = 5, seed: int = 0
+) -> tuple[np.ndarray, np.ndarray]:
+    """K-fold cross-validated deviance of the unpenalised refit of each support.
+
+    Folds as in `cross_validate`; each support is refitted on the training folds and scored by the
+    loss's held-out deviance. Returns the mean (summed over folds, divided by n) and the standard error
+    of the per-fold means, each of shape (len(supports),); inf where a fold's refit does not exist.
+    """
+    pr = path.problem
+    n = pr.n
+    if not (isinstance(n_folds, int | np.integer) and 2 <= n_folds <= n):
+        raise ValueError(
+            f"The number of folds 'cv' must be an int in [2, n = {n}]; got {n_folds!r}."
+        )
+    folds = np.array_split(np.random.default_rng(seed).permutation(n), n_folds)
+    sizes = np.array([f.size for f in folds], dtype=np.float64)
+    lead = [np.ones((n, 1))] if pr.loss.has_intercept else []
+    per = np.full((n_folds, len(supports)), np.inf)
+    for j, s in enumerate(supports):
+        D = np.hstack([*lead, pr.Z, pr.X[:, s]])
+        for k, held in enumerate(folds):
+            test = np.zeros(n, dtype=bool)
+            test[held] = True
+            train = ~test
+            if D.shape[1] >= train.sum() - 1:
+                continue
+            coef, _, _, exists, _ = refit_columns(D[train], pr.y[train], pr.loss, pr.offset[train])
+            if exists:
+                eta = pr.offset + D @ coef
+                per[k, j] = pr.loss.heldout_deviance(pr.y, eta, test) / sizes[k]
+    mean = (per * sizes[:, None]).sum(axis=0) / n
+    with np.errstate(invalid="ignore"):
+        se = per.std(axis=0, ddof=1) / np.sqrt(n_folds)
+    mean[~np.all(np.isfinite(per), axis=0)] = np.inf
+    return mean, np.where(np.isfinite(mean), se, np.inf)
+
+
 def select_model(
     path: PathResult,
     criterion: str = "ebic",
@@ -68,8 +189,9 @@ def select_model(
     gamma: float | None = None,
     cv: int = 5,
     seed: int = 0,
+    tuning: str = "refit",
 ) -> FitResult:
-    """Pick the lambda of ``path`` that minimises an information criterion or the CV deviance.
+    """Pick the model of ``path`` that minimises an information criterion or the CV deviance.
 
     Parameters
     ----------
@@ -83,11 +205,19 @@ def select_model(
         number of features screened, not the shortlist length (pass ``X.shape[1]`` when there was no
         screening).
     gamma : float, optional
-        EBIC gamma in [0, 1]; default `default_ebic_gamma(n, p)`.
+        EBIC gamma in [0, 1]. Default 1 with ``tuning="refit"``, the conservative end of Chen & Chen's
+        range: an unpenalised refit's likelihood carries the optimism of the selection (its features
+        were picked for fitting these data), which gamma = 1 pays for; `default_ebic_gamma(n, p)` (the
+        consistency bound) with ``tuning="path"``, whose shrunken estimates pay for it themselves.
     cv : int
         Number of folds for ``"cv"``.
     seed : int
         Seed of the fold assignment.
+    tuning : {"refit", "path"}
+        ``"refit"`` (default): ``L`` is the likelihood of the unpenalised refit of each support the
+        path visits (CV: the refit cross-validated), so the choice is the criterion's best over those
+        supports; among the lambdas sharing the chosen support, the smallest is reported (its
+        penalised coefficients are the least shrunk). ``"path"``: ``L`` at the penalised estimates.
 
     Returns
     -------
@@ -95,6 +225,8 @@ def select_model(
     """
     if criterion not in _CRITERIA:
         raise ValueError(f"The 'criterion' must be one of {_CRITERIA}; got {criterion!r}.")
+    if tuning not in _TUNINGS:
+        raise ValueError(f"The 'tuning' must be one of {_TUNINGS}; got {tuning!r}.")
     n, d = path.n_samples, path.n_features
     se = None
     used_gamma = None
@@ -110,22 +242,52 @@ def select_model(
             raise ValueError(
                 f"'n_candidates' ({p}) cannot be below the number of fitted features ({d})."
             )
-        used_gamma = default_ebic_gamma(n, p) if gamma is None else float(gamma)
-        values = ebic(path.log_likelihood, path.df, n, p, used_gamma)
-    elif criterion == "bic":
-        values = bic(path.log_likelihood, path.df, n)
+        if gamma is not None:
+            used_gamma = float(gamma)
+        else:
+            used_gamma = 1.0 if tuning == "refit" else default_ebic_gamma(n, p)
+    supports, which = _supports(path)
+    if tuning == "path":
+        if criterion == "ebic":
+            values = ebic(path.log_likelihood, path.df, n, p, used_gamma)
+        elif criterion == "bic":
+            values = bic(path.log_likelihood, path.df, n)
+        else:
+            values, se = cross_validate(path, cv, seed)
     else:
-        values, se = cross_validate(path, cv, seed)
-    if not np.any(np.isfinite(values)):
+        if criterion == "cv":
+            per_support, se_support = cross_validate_supports(path, supports, cv, seed)
+            se = se_support[which]
+        else:
+            g = used_gamma if criterion == "ebic" else 0.0
+            pp = p if criterion == "ebic" else d
+
+            def penalty_of_size(k: int) -> float:
+                return k * np.log(n) + 2.0 * g * float(log_binomial(pp, k))
+
+            per_support = _refit_criterion(path, supports, penalty_of_size)
+        values = per_support[which]
+    finite = np.isfinite(values)
+    if not np.any(finite):
         raise ValueError(f"The {criterion} criterion is not finite at any lambda of the path.")
     # First minimum: ties go to the larger lambda (the sparser model).
-    best = int(np.argmin(np.where(np.isfinite(values), values, np.inf)))
+    best = int(np.argmin(np.where(finite, values, np.inf)))
+    if tuning == "refit":
+        # The same support at the next lambdas: report the last of the run (least shrunk).
+        while best + 1 < which.shape[0] and which[best + 1] == which[best]:
+            best += 1
     coef = path.coefs[best]
+    support = np.flatnonzero(coef)
+    fit = refit_support(path, support)
+    refit_coef = np.zeros(d)
+    refit_se = np.full(d, np.nan)
+    refit_coef[support] = fit.coef
+    refit_se[support] = fit.se
     return FitResult(
         coef=coef,
         intercept=float(path.intercepts[best]),
         unpenalized_coef=path.unpenalized_coefs[best],
-        support=np.flatnonzero(coef),
+        support=support,
         lambda_=float(path.lambdas[best]),
         index=best,
         criterion=criterion,
@@ -136,4 +298,8 @@ def select_model(
         n_candidates=p,
         cv_std_error=se,
         path=path,
+        tuning=tuning,
+        refit=fit,
+        refit_coef=refit_coef,
+        refit_se=refit_se,
     )

@@ -25,7 +25,15 @@ from ..engine import FeatureFilter, PassResult, RunFolder, read_columns
 from ..store import prepare_block
 from ._candidates import Candidates, ConditioningError, StepContext, screen_step, stats_at
 from ._problem import Problem, check_problem_fields, shortlist_size
-from ._refit import FitSettings, FittedModel, fit_token, fit_union
+from ._refit import (
+    FitSettings,
+    FittedModel,
+    Refit,
+    budget_warning,
+    final_refit,
+    fit_token,
+    fit_union,
+)
 from ._session import RunSession
 from ._split import split_halves
 from ._thresholds import ThresholdRule
@@ -152,6 +160,11 @@ class IterativeResult:
         The first step's pass(es).
     problem : Problem
     run : RunFolder or None
+    refit : Refit, optional
+        The unpenalised refit of the selected features as stored, with the covariates: coefficients
+        and standard errors (not valid for inference after selection).
+    warnings : list of str
+        Advice about the run (for example a model that fills the size budget).
     """
 
     index: np.ndarray
@@ -171,6 +184,8 @@ class IterativeResult:
     problem: Problem
     run: RunFolder | None = None
     extra: dict = field(default_factory=dict)
+    refit: Refit | None = None
+    warnings: list[str] = field(default_factory=list)
 
 
 class _Pool:
@@ -243,11 +258,15 @@ def iterate(
         if stop is not None:
             loop.stop = stop
             break
+    result = _result(ctx, loop, d)
+    warn = budget_warning(config.fit, result.index.size, d)
+    result.warnings = [warn] if warn else []
     if session is not None:
         session.manifest["iterations"] = loop.records
         session.manifest["stop_reason"] = loop.stop
+        session.manifest["warnings"] = result.warnings
         session.save()
-    return _result(ctx, loop, d)
+    return result
 
 
 @dataclass
@@ -394,6 +413,7 @@ def _result(ctx: StepContext, loop: _Loop, d: int) -> IterativeResult:
         screen=loop.screen_passes,
         problem=problem,
         run=ctx.run,
+        refit=final_refit(problem, pool.values + pool.mean),
     )
 
 

@@ -1,7 +1,10 @@
 """The penalised refit of one iteration: fit on the union of the selected set and the new candidates.
 
 The fit sees the union's imputed, centred values (kept by the passes), the covariates unpenalised and the
-family's loss; the penalty level is tuned along the path by the chosen criterion. A fitted model is
+family's loss; the penalty level is tuned by the chosen criterion over the supports the path visits, each
+scored at its unpenalised refit (`widescreen.fit.select_model`). The final model is also refitted without
+penalty on the features as stored (`final_refit`), for the coefficients and standard errors that
+``model.tsv`` reports beside the penalised ones. A fitted model is
 recorded in the manifest as plain numbers (floats round-trip exactly through JSON), so a resumed run
 reuses it bit for bit instead of refitting.
 """
@@ -16,7 +19,7 @@ import sklearn
 from dask.base import tokenize
 
 from .._config import check_choice, check_int, check_number
-from ..fit import fit_path, make_penalty, select_model
+from ..fit import Refit, fit_path, make_penalty, refit, select_model
 from ._problem import Problem
 
 CRITERIA = ("ebic", "bic", "cv")
@@ -215,9 +218,45 @@ def fit_union(
     )
 
 
+def final_refit(problem: Problem, values: np.ndarray) -> Refit:
+    """Unpenalised refit of the selected features ``values`` (n, k; imputed, as stored) with covariates.
+
+    Its standard errors are the model-based ones of that fit; after selection they are not valid for
+    inference (they ignore that the features were chosen from the same data).
+    """
+    y = fit_response(problem)
+    with np.errstate(all="ignore"):
+        return refit(values, y, problem.family.loss, problem.covariates)
+
+
+#: Penalties whose refits tend to keep every candidate offered (lasso-type bias towards large models).
+_LASSO_TYPE = ("lasso", "enet", "adaptive_lasso", "dantzig")
+
+
+def budget_warning(settings: FitSettings, size: int, budget: int) -> str | None:
+    """The warning for a final model that fills the size budget, or None."""
+    if budget <= 0 or size < budget:
+        return None
+    msg = f"the {settings.penalty} refit tuned by {settings.criterion} selected {size} of {budget} features, filling the size budget"
+    if settings.penalty in _LASSO_TYPE or settings.criterion in ("bic", "cv"):
+        return (
+            msg + ": lasso-type refits and BIC / CV tuning are biased towards large models; "
+            "SCAD or MCP tuned by EBIC recommended"
+        )
+    return msg + ": the model may be larger than the budget allows; consider a larger --keep"
+
+
 def _plain(a) -> list:
     """Floats for JSON (which has no inf or NaN: those become None)."""
     return [float(v) if np.isfinite(v) else None for v in np.asarray(a, dtype=np.float64)]
 
 
-__all__ = ["FitSettings", "FittedModel", "fit_response", "fit_token", "fit_union"]
+__all__ = [
+    "FitSettings",
+    "FittedModel",
+    "budget_warning",
+    "final_refit",
+    "fit_response",
+    "fit_token",
+    "fit_union",
+]
