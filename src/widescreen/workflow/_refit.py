@@ -243,7 +243,7 @@ def budget_warning(settings: FitSettings, size: int, budget: int) -> str | None:
             msg + ": lasso-type refits and BIC / CV tuning are biased towards large models; "
             "SCAD or MCP tuned by EBIC recommended"
         )
-    return msg + ": the model may be larger than the budget allows; consider a larger --keep"
+    return msg + ": the model may be larger than the budget allows; consider a larger --shortlist"
 
 
 def _plain(a) -> list:
