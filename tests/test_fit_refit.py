@@ -104,7 +104,7 @@ def test_tuning_is_the_best_visited_support(seed, loss, penalty):
         else:
             llf = res.llf
         scores.append(float(ebic(llf, s.size, X.shape[0], 200, best.ebic_gamma)))
-    chosen = best.criterion_values[best.index]
+    chosen = best.criterion_value
     assert chosen <= min(scores) + 1e-6 * abs(min(scores))
 
 

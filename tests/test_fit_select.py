@@ -66,7 +66,7 @@ def test_scad_ebic_recovers_the_true_support(seed):
     k, n, p, g = best.support.size, len(y), 1000, best.ebic_gamma
     assert g == 1.0  # the refit tuning's default: the conservative end of Chen & Chen's range
     expected = -2 * ols.llf + k * np.log(n) + 2 * g * np.log(float(comb(p, k, exact=True)))
-    assert best.criterion_values[best.index] == pytest.approx(expected, rel=1e-10)
+    assert best.criterion_value == pytest.approx(expected, rel=1e-10)
     np.testing.assert_allclose(best.refit_coef[best.support], ols.params[1:], rtol=1e-8)
     np.testing.assert_allclose(best.refit_se[best.support], ols.bse[1:], rtol=1e-8)
     assert best.lambdas is path.lambdas and best.coefs.shape == (len(path.lambdas), X.shape[1])

@@ -209,10 +209,13 @@ class FitResult:
         Indices of the non-zero feature coefficients, increasing.
     lambda_ : float
         The chosen penalty level.
-    index : int
-        Its position on the path.
+    index : int or None
+        Its position on the path; None for a stationary point found by the forward search (see
+        `select_model`).
     criterion : str
         ``"bic"``, ``"ebic"`` or ``"cv"``.
+    criterion_value : float
+        The criterion of the chosen model.
     criterion_values : ndarray of shape (L,)
         The criterion at every lambda (for ``"cv"`` the mean held-out deviance); smaller is better.
     lambdas : ndarray of shape (L,)
@@ -242,8 +245,9 @@ class FitResult:
     unpenalized_coef: np.ndarray
     support: np.ndarray
     lambda_: float
-    index: int
+    index: int | None
     criterion: str
+    criterion_value: float
     criterion_values: np.ndarray
     lambdas: np.ndarray
     coefs: np.ndarray

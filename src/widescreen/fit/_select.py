@@ -9,6 +9,11 @@ therefore the criterion's best over the visited supports; the path supplies the 
 (as in the relaxed lasso of Meinshausen 2007, CSDA 52:374, with no shrinkage left). For ``"cv"`` each
 visited support's refit is cross-validated (refitted on the training folds, scored on the held-out one).
 ``tuning="path"`` gives the former behaviour: the criterion at the penalised estimates of each lambda.
+
+For SCAD and MCP tuned by BIC / EBIC the candidates also include the supports of a forward search
+(`_forward`) whose refits are stationary points of the same penalised objective: a warm-started path
+follows one branch of a non-convex problem and can miss the sparse model when features stand in for
+one another.
 """
 
 from __future__ import annotations
@@ -16,12 +21,15 @@ from __future__ import annotations
 import numpy as np
 
 from ._criteria import bic, default_ebic_gamma, ebic, log_binomial
+from ._forward import forward_supports, stationary_interval
 from ._mle import Refit, refit, refit_columns
 from ._path import path_on_problem
 from ._results import FitResult, PathResult
 
 _CRITERIA = ("bic", "ebic", "cv")
 _TUNINGS = ("refit", "path")
+#: Forward steps without a better criterion value after which the forward search stops.
+_PATIENCE = 5
 
 
 def cross_validate(
@@ -143,6 +151,41 @@ def _refit_criterion(path: PathResult, supports, penalty_of_size) -> np.ndarray:
     return values
 
 
+def _forward_choice(path: PathResult, supports, per_support, penalty_of_size):
+    """The forward search's best stationary point if it beats every visited support, else None.
+
+    Returns ``(support, value, low, high, beta)`` (see `stationary_interval`).
+    """
+    pr = path.problem
+    finite = per_support[np.isfinite(per_support)]
+    target = float(finite.min()) if finite.size else np.inf
+    seen = {s.tobytes() for s in supports}
+    max_size = min(pr.d, pr.n - pr.C.shape[1] - 2)
+    union = np.unique(np.concatenate(supports)) if supports else np.empty(0, dtype=np.int64)
+    floor = None
+    found = []
+    running, stale = np.inf, 0
+    for support, loglik in forward_supports(pr, max_size):
+        value = -2.0 * loglik + penalty_of_size(support.size)
+        if support.tobytes() not in seen and value < target:
+            found.append((value, support))
+        if value < running:
+            running, stale = value, 0
+        else:
+            stale += 1
+        if stale >= _PATIENCE or support.size >= max_size:
+            break
+        if floor is None:
+            floor = _floor(path, union) if union.size else -np.inf
+        if floor + penalty_of_size(support.size + 1) > min(running, target):
+            break
+    for value, support in sorted(found, key=lambda t: t[0]):
+        got = stationary_interval(pr, path.penalty, support)
+        if got is not None:
+            return (support, value, *got)
+    return None
+
+
 def cross_validate_supports(
     path: PathResult, supports: list[np.ndarray], n_folds: int = 5, seed: int = 0
 ) -> tuple[np.ndarray, np.ndarray]:
@@ -190,6 +233,7 @@ def select_model(
     cv: int = 5,
     seed: int = 0,
     tuning: str = "refit",
+    forward: bool = True,
 ) -> FitResult:
     """Pick the model of ``path`` that minimises an information criterion or the CV deviance.
 
@@ -218,6 +262,11 @@ def select_model(
         path visits (CV: the refit cross-validated), so the choice is the criterion's best over those
         supports; among the lambdas sharing the chosen support, the smallest is reported (its
         penalised coefficients are the least shrunk). ``"path"``: ``L`` at the penalised estimates.
+    forward : bool
+        With ``tuning="refit"``, BIC / EBIC and SCAD or MCP: also consider the supports of a forward
+        search whose refits are stationary points of the penalised objective (`_forward`). When one of
+        them is chosen, ``index`` is None, ``lambda_`` a level at which it is stationary (the geometric
+        middle of its interval) and ``coef`` equals its refit (no coefficient is penalised there).
 
     Returns
     -------
@@ -247,6 +296,7 @@ def select_model(
         else:
             used_gamma = 1.0 if tuning == "refit" else default_ebic_gamma(n, p)
     supports, which = _supports(path)
+    extra = None
     if tuning == "path":
         if criterion == "ebic":
             values = ebic(path.log_likelihood, path.df, n, p, used_gamma)
@@ -266,6 +316,8 @@ def select_model(
                 return k * np.log(n) + 2.0 * g * float(log_binomial(pp, k))
 
             per_support = _refit_criterion(path, supports, penalty_of_size)
+            if forward and path.penalty.concave:
+                extra = _forward_choice(path, supports, per_support, penalty_of_size)
         values = per_support[which]
     finite = np.isfinite(values)
     if not np.any(finite):
@@ -276,7 +328,20 @@ def select_model(
         # The same support at the next lambdas: report the last of the run (least shrunk).
         while best + 1 < which.shape[0] and which[best + 1] == which[best]:
             best += 1
+    index: int | None = best
+    lambda_ = float(path.lambdas[best])
     coef = path.coefs[best]
+    intercept = float(path.intercepts[best])
+    unpen = path.unpenalized_coefs[best]
+    value = float(values[best])
+    if extra is not None:
+        _, value, low, high, beta = extra
+        pr = path.problem
+        index, lambda_ = None, float(np.sqrt(low * high)) if low > 0 else 0.5 * high
+        coef = beta[:d] / pr.scale
+        g = beta[d:]
+        intercept = float(g[0] - coef @ pr.mean) if pr.loss.has_intercept else 0.0
+        unpen = g[1:] if pr.loss.has_intercept else g
     support = np.flatnonzero(coef)
     fit = refit_support(path, support)
     refit_coef = np.zeros(d)
@@ -285,12 +350,13 @@ def select_model(
     refit_se[support] = fit.se
     return FitResult(
         coef=coef,
-        intercept=float(path.intercepts[best]),
-        unpenalized_coef=path.unpenalized_coefs[best],
+        intercept=intercept,
+        unpenalized_coef=unpen,
         support=support,
-        lambda_=float(path.lambdas[best]),
-        index=best,
+        lambda_=lambda_,
+        index=index,
         criterion=criterion,
+        criterion_value=value,
         criterion_values=values,
         lambdas=path.lambdas,
         coefs=path.coefs,

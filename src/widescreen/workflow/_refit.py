@@ -203,7 +203,7 @@ def fit_union(
         intercept=float(best.intercept),
         covariate_coef=np.asarray(best.unpenalized_coef, dtype=np.float64),
         lambda_=None if empty else float(best.lambda_),
-        criterion_value=float(best.criterion_values[best.index]),
+        criterion_value=float(best.criterion_value),
         seconds=time.perf_counter() - t0,
         path=None
         if empty
