@@ -1,7 +1,8 @@
 """Benchmark of the in-memory penalised fits (not a test; prints figures).
 
 Goals (2 cores):
-- a 100-lambda SCAD path plus EBIC selection on n = 1000, d = 500: under 1 s;
+- a 100-lambda SCAD path plus EBIC selection on n = 1000, d = 500: under 1 s (Gaussian), under 3 s
+  (binomial, with ``--glm``);
 - the lasso path within 2x of scikit-learn's own ``lasso_path`` on the same data and lambdas.
 
 Wall-clock time is what the goals mean; CPU time of this process is printed beside it because on a
@@ -57,6 +58,7 @@ def main() -> None:
         path = fit_path(X, y, penalty="scad", n_lambda=100)
         return path, select_model(path, "ebic", n_candidates=d)
 
+    scad()  # compiles the coordinate descent loops (numba caches them on disk afterwards)
     wall, cpu, (path, best) = _time(scad, args.repeat)
     print(
         f"SCAD path, 100 lambdas + EBIC, n={n} d={d}: wall {wall:.3f} s, cpu {cpu:.3f} s (goal < 1 s)"
@@ -87,8 +89,17 @@ def main() -> None:
         rng = np.random.default_rng(1)
         eta = X @ beta
         yb = (rng.random(n) < 1 / (1 + np.exp(-eta))).astype(float)
-        wall, cpu, p = _time(lambda: fit_path(X, yb, loss="binomial", penalty="scad"), 1)
-        print(f"binomial SCAD path: wall {wall:.3f} s, cpu {cpu:.3f} s, {len(p.lambdas)} lambdas")
+
+        def binomial():
+            path = fit_path(X, yb, loss="binomial", penalty="scad", n_lambda=100)
+            return path, select_model(path, "ebic", n_candidates=d)
+
+        wall, cpu, (p, best) = _time(binomial, args.repeat)
+        print(
+            f"binomial SCAD path + EBIC: wall {wall:.3f} s, cpu {cpu:.3f} s (goal < 3 s), "
+            f"{len(p.lambdas)} lambdas, converged at {int(p.converged.sum())}; EBIC picks "
+            f"{len(best.support)}, true support recovered: {np.array_equal(best.support, truth)}"
+        )
         T = rng.exponential(np.exp(-eta))
         yc2 = np.column_stack([T, (rng.random(n) < 0.8).astype(float)])
         wall, cpu, p = _time(lambda: fit_path(X, yc2, loss="cox", penalty="scad"), 1)

@@ -86,7 +86,7 @@ def generate(design: str, seed: int, n: int | None = None, p: int | None = None)
         beta[:4] = [4.0, 4.0, 4.0, -6.0 * np.sqrt(2.0)]
         y = (rng.random(n) < 1.0 / (1.0 + np.exp(-(X @ beta)))).astype(np.float64)
     elif design == "poisson-hidden":
-        beta[:4] = 0.5 * np.array([1.0, 1.0, 1.0, -1.5 * np.sqrt(2.0)])
+        beta[:4] = 1.0 * np.array([1.0, 1.0, 1.0, -1.5 * np.sqrt(2.0)])
         y = rng.poisson(np.exp(X @ beta)).astype(np.float64)
     else:
         beta[:4] = 1.0 * np.array([1.0, 1.0, 1.0, -1.5 * np.sqrt(2.0)])

@@ -83,6 +83,9 @@ def kkt_violation(
 
 #: Coordinate descent sweeps between attempts of the Newton polish.
 _BURST = 5
+#: Polish attempts per solve: where a pattern's quadratic is not convex (a GLM's small working weights
+#: under a concave piece) the polish cannot apply, and the sweeps alone finish the solve.
+_POLISH_TRIES = 3
 
 
 class _State:
@@ -214,6 +217,7 @@ def _solve_working(st: _State, z, w, active, lam, kind, conc, opts: SolverOption
         free = idx >= d
         args = (st.XC, r, w, st.beta, idx, xwx, free, lam, kind, conc)
         sweeps_left = opts.max_iter
+        tries = _POLISH_TRIES
         while sweeps_left > 0:
             # A few sweeps settle which coefficients are non-zero and in which piece; the polish
             # then solves that pattern exactly, and one more sweep confirms that no coordinate moves.
@@ -222,12 +226,14 @@ def _solve_working(st: _State, z, w, active, lam, kind, conc, opts: SolverOption
             if change < opts.tol:
                 ok = True
                 break
-            if _polish(st, z, w, r, lam, kind, conc):
-                done, change = _cd.sweeps(*args, 1, opts.tol)
-                sweeps_left -= done
-                if change < opts.tol:
-                    ok = True
-                    break
+            if tries > 0:
+                tries -= 1
+                if _polish(st, z, w, r, lam, kind, conc):
+                    done, change = _cd.sweeps(*args, 1, opts.tol)
+                    sweeps_left -= done
+                    if change < opts.tol:
+                        ok = True
+                        break
         # Features outside the active set: at b_j = 0 the condition is |x_j^T W r| / n <= lambda.
         grad = np.abs(st.XC[:, :d].T @ (w * r)) / n
         viol = st.eligible & ~active & (grad > lam * (1.0 + 1e-9))

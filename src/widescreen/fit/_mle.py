@@ -81,11 +81,14 @@ def _cox_grad_hess(y: np.ndarray, eta: np.ndarray, D: np.ndarray):
     idx = np.searchsorted(-t, -t, side="right") - 1
     S0 = np.cumsum(r)[idx]
     S1 = np.cumsum(r[:, None] * X, axis=0)[idx]
-    S2 = np.cumsum(r[:, None, None] * X[:, :, None] * X[:, None, :], axis=0)[idx]
     xbar = S1 / S0[:, None]
     grad = (d[:, None] * (X - xbar)).sum(axis=0)
+    # sum_i d_i S2_i / S0_i = X^T diag(r a) X with a_k = sum of d_i / S0_i over the events whose risk
+    # set holds k (t_i <= t_k): a suffix sum from the first row tied with k. O(n m^2), no (n, m, m) array.
+    first = np.searchsorted(-t, -t, side="left")
+    a = np.cumsum((d / S0)[::-1])[::-1][first]
     ev = d > 0
-    info = (S2[ev] / S0[ev, None, None]).sum(axis=0) - xbar[ev].T @ xbar[ev]
+    info = (X.T * (r * a)) @ X - xbar[ev].T @ xbar[ev]
     return grad, info
 
 

@@ -210,8 +210,8 @@ class FitResult:
     lambda_ : float
         The chosen penalty level.
     index : int or None
-        Its position on the path; None for a stationary point found by the forward search (see
-        `select_model`).
+        Its position on the path; None for a support found by the stepwise search (see
+        `select_model`; ``lambda_`` is then NaN and ``coef`` the refit).
     criterion : str
         ``"bic"``, ``"ebic"`` or ``"cv"``.
     criterion_value : float

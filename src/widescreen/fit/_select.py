@@ -10,10 +10,9 @@ therefore the criterion's best over the visited supports; the path supplies the 
 visited support's refit is cross-validated (refitted on the training folds, scored on the held-out one).
 ``tuning="path"`` gives the former behaviour: the criterion at the penalised estimates of each lambda.
 
-For SCAD and MCP tuned by BIC / EBIC the candidates also include the supports of a forward search
-(`_forward`) whose refits are stationary points of the same penalised objective: a warm-started path
-follows one branch of a non-convex problem and can miss the sparse model when features stand in for
-one another.
+For SCAD and MCP tuned by BIC / EBIC the candidates also include the supports of a stepwise search on
+the criterion (`_forward`): a warm-started path follows one branch of a non-convex problem and can miss
+the sparse model when features stand in for one another.
 """
 
 from __future__ import annotations
@@ -21,14 +20,14 @@ from __future__ import annotations
 import numpy as np
 
 from ._criteria import bic, default_ebic_gamma, ebic, log_binomial
-from ._forward import forward_supports, stationary_interval
+from ._forward import stepwise_supports
 from ._mle import Refit, refit, refit_columns
 from ._path import path_on_problem
 from ._results import FitResult, PathResult
 
 _CRITERIA = ("bic", "ebic", "cv")
 _TUNINGS = ("refit", "path")
-#: Forward steps without a better criterion value after which the forward search stops.
+#: Steps without a better criterion value after which the stepwise search stops.
 _PATIENCE = 5
 
 
@@ -151,39 +150,33 @@ def _refit_criterion(path: PathResult, supports, penalty_of_size) -> np.ndarray:
     return values
 
 
-def _forward_choice(path: PathResult, supports, per_support, penalty_of_size):
-    """The forward search's best stationary point if it beats every visited support, else None.
+def _stepwise_choice(path: PathResult, supports, per_support, penalty_of_size):
+    """The stepwise search's best support if it beats every support the path visits, else None.
 
-    Returns ``(support, value, low, high, beta)`` (see `stationary_interval`).
+    Returns ``(support, value)``.
     """
     pr = path.problem
     finite = per_support[np.isfinite(per_support)]
     target = float(finite.min()) if finite.size else np.inf
     seen = {s.tobytes() for s in supports}
-    max_size = min(pr.d, pr.n - pr.C.shape[1] - 2)
     union = np.unique(np.concatenate(supports)) if supports else np.empty(0, dtype=np.int64)
-    floor = None
-    found = []
-    running, stale = np.inf, 0
-    for support, loglik in forward_supports(pr, max_size):
-        value = -2.0 * loglik + penalty_of_size(support.size)
-        if support.tobytes() not in seen and value < target:
-            found.append((value, support))
-        if value < running:
-            running, stale = value, 0
-        else:
-            stale += 1
-        if stale >= _PATIENCE or support.size >= max_size:
-            break
-        if floor is None:
-            floor = _floor(path, union) if union.size else -np.inf
-        if floor + penalty_of_size(support.size + 1) > min(running, target):
-            break
-    for value, support in sorted(found, key=lambda t: t[0]):
-        got = stationary_interval(pr, path.penalty, support)
-        if got is not None:
-            return (support, value, *got)
-    return None
+    floor: list[float] = []
+    max_size = min(pr.d, pr.n - pr.C.shape[1] - 2)
+
+    def hopeless(k: int, best: float) -> bool:
+        # No support of size k + 1 can beat the best found (see `_floor`).
+        if k + 1 > max_size:
+            return True
+        if not floor:
+            floor.append(_floor(path, union) if union.size else -np.inf)
+        return floor[0] + penalty_of_size(k + 1) > min(best, target)
+
+    found = stepwise_supports(pr, penalty_of_size, max_size, hopeless, _PATIENCE)
+    fresh = [(v, s) for key, (s, v) in found.items() if key not in seen and v < target]
+    if not fresh:
+        return None
+    value, support = min(fresh, key=lambda t: (t[0], t[1].size))
+    return support, value
 
 
 def cross_validate_supports(
@@ -263,10 +256,9 @@ def select_model(
         supports; among the lambdas sharing the chosen support, the smallest is reported (its
         penalised coefficients are the least shrunk). ``"path"``: ``L`` at the penalised estimates.
     forward : bool
-        With ``tuning="refit"``, BIC / EBIC and SCAD or MCP: also consider the supports of a forward
-        search whose refits are stationary points of the penalised objective (`_forward`). When one of
-        them is chosen, ``index`` is None, ``lambda_`` a level at which it is stationary (the geometric
-        middle of its interval) and ``coef`` equals its refit (no coefficient is penalised there).
+        With ``tuning="refit"``, BIC / EBIC and SCAD or MCP: also consider the supports of a stepwise
+        search on the criterion (`_forward`). When one of them is chosen, ``index`` is None,
+        ``lambda_`` is NaN and ``coef`` is its refit (no penalised estimate belongs to it).
 
     Returns
     -------
@@ -317,9 +309,19 @@ def select_model(
 
             per_support = _refit_criterion(path, supports, penalty_of_size)
             if forward and path.penalty.concave:
-                extra = _forward_choice(path, supports, per_support, penalty_of_size)
+                extra = _stepwise_choice(path, supports, per_support, penalty_of_size)
         values = per_support[which]
     finite = np.isfinite(values)
+    if tuning == "refit" and not np.any(finite) and criterion != "cv":
+        # No visited support has a maximum likelihood estimate (for example a constant or separated
+        # response): score the penalised estimates instead, which always exist.
+        extra = None
+        values = (
+            ebic(path.log_likelihood, path.df, n, p, used_gamma)
+            if criterion == "ebic"
+            else bic(path.log_likelihood, path.df, n)
+        )
+        finite = np.isfinite(values)
     if not np.any(finite):
         raise ValueError(f"The {criterion} criterion is not finite at any lambda of the path.")
     # First minimum: ties go to the larger lambda (the sparser model).
@@ -334,16 +336,16 @@ def select_model(
     intercept = float(path.intercepts[best])
     unpen = path.unpenalized_coefs[best]
     value = float(values[best])
-    if extra is not None:
-        _, value, low, high, beta = extra
-        pr = path.problem
-        index, lambda_ = None, float(np.sqrt(low * high)) if low > 0 else 0.5 * high
-        coef = beta[:d] / pr.scale
-        g = beta[d:]
-        intercept = float(g[0] - coef @ pr.mean) if pr.loss.has_intercept else 0.0
-        unpen = g[1:] if pr.loss.has_intercept else g
     support = np.flatnonzero(coef)
+    if extra is not None:
+        support, value = extra
     fit = refit_support(path, support)
+    if extra is not None:
+        # A support off the path: no penalised estimate belongs to it, so its refit stands in.
+        index, lambda_ = None, float("nan")
+        coef = np.zeros(d)
+        coef[support] = fit.coef
+        intercept, unpen = fit.intercept, fit.unpenalized_coef
     refit_coef = np.zeros(d)
     refit_se = np.full(d, np.nan)
     refit_coef[support] = fit.coef

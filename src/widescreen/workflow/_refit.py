@@ -202,14 +202,15 @@ def fit_union(
         coef=np.asarray(best.coef[support], dtype=np.float64),
         intercept=float(best.intercept),
         covariate_coef=np.asarray(best.unpenalized_coef, dtype=np.float64),
-        lambda_=None if empty else float(best.lambda_),
+        # NaN: a support found by the stepwise search, off the path (JSON has no NaN).
+        lambda_=None if empty or not np.isfinite(best.lambda_) else float(best.lambda_),
         criterion_value=float(best.criterion_value),
         seconds=time.perf_counter() - t0,
         path=None
         if empty
         else {
             "criterion": best.criterion,
-            "lambda": float(best.lambda_),
+            "lambda": float(best.lambda_) if np.isfinite(best.lambda_) else None,
             "lambdas": _plain(best.lambdas),
             "criterion_values": _plain(best.criterion_values),
             "coefs": [_plain(row) for row in best.coefs],
