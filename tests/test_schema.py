@@ -23,7 +23,6 @@ from widescreen.schema import (
 )
 from widescreen.store import DatasetWriter
 from widescreen.workflow import IterateConfig, ScreenConfig, run, screen
-from widescreen.workflow._tables import MODEL_FIT_COLUMNS
 
 from .conftest import write_outcome
 
@@ -84,15 +83,8 @@ def test_every_table_round_trips_through_pandas_with_its_dtypes(runs, folder, sp
     assert [c for c in frame.columns if c in fixed] == fixed
     assert set(fixed) == {c.name for c in spec.fixed}
     # Written back from pandas' values by the same schema: the same bytes.
-    # Columns of the fit's slot (model.tsv's refit columns) go back to that slot, the rest are the
-    # family's statistics.
-    fit_names = {c.name for c, _ in MODEL_FIT_COLUMNS} if spec.file == "model.tsv" else set()
-    extra = [c for c in frame.columns if c not in fixed]
-    stats = tuple(Column(c, "float64", "") for c in extra if c not in fit_names)
-    fit = tuple(Column(c, "float64", "") for c in extra if c in fit_names)
+    stats = tuple(Column(c, "float64", "") for c in frame.columns if c not in fixed)
     slots = {"statistics": stats} if stats else {}
-    if fit:
-        slots["fit"] = fit
     back = format_table(spec, {c: frame[c].tolist() for c in frame.columns}, **slots)
     assert back == text
     # A plain pandas read with the documented dtypes gives the same frame.
