@@ -348,7 +348,12 @@ def _tables(summary) -> str:
         parts += [
             "<h3>Selected model</h3>",
             f'<p class="note">{escape(CAUTIONS[1])}</p>',
-            html_table(summary.model, skip=_redundant(summary.model)),
+            # The refit's two columns need room: missing rate, mean and allele frequency stay in
+            # model.tsv.
+            html_table(
+                summary.model,
+                skip=(*_redundant(summary.model), "missing_rate", "mean", "allele_freq"),
+            ),
         ]
     if summary.iterations is not None:
         parts += [
