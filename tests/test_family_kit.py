@@ -85,6 +85,10 @@ def test_run_fits_and_resumes_to_the_same_model(family_case: Case, tmp_path, spl
     model = (out / "model.tsv").read_text()
     has_intercept = model.splitlines()[1].startswith("(intercept)")
     assert has_intercept == FAMILIES[family_case.family].intercept
+    for pre in FAMILIES[family_case.family].pre_passes:
+        # A pre-pass (HOLP's Gram matrix) is checkpointed beside the pass it serves, once per half.
+        for name in ("screen_a", "screen_b") if split else ("screen",):
+            assert (out / "passes" / f"{name}-{pre.name}" / "result.npy").exists()
     again = run(family_case.store, family_case.outcome, cfg, out)
     assert (out / "model.tsv").read_text() == model
     np.testing.assert_array_equal(again.coef, first.coef)
