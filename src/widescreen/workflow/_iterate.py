@@ -22,6 +22,7 @@ import numpy as np
 
 from .._config import ConfigError, check_int, check_keep
 from ..engine import FeatureFilter, PassResult, RunFolder, read_columns
+from ..schema import FitRecord, IterationRecord
 from ..store import prepare_block
 from ._candidates import Candidates, ConditioningError, StepContext, screen_step, stats_at
 from ._problem import Problem, check_problem_fields, shortlist_size
@@ -430,19 +431,19 @@ def _record(
     before = prev.index if prev is not None else np.empty(0, dtype=np.int64)
     entered = np.setdiff1d(new.index, before)
     left = np.setdiff1d(before, new.index)
-    return {
-        "iteration": k,
-        "passes": [r.name for r in cands.passes],
-        "threshold": cands.threshold,
-        "n_candidates": int(cands.index.size),
-        "candidates": cands.index.tolist(),
-        "entered": _ids(problem, entered),
-        "left": _ids(problem, left),
-        "selected_size": int(new.index.size),
-        "pass_seconds": round(cands.seconds, 3),
-        "refit": refit,
-        "model": new.record(),
-    }
+    return IterationRecord(
+        iteration=k,
+        passes=tuple(r.name for r in cands.passes),
+        threshold=tuple(cands.threshold),
+        n_candidates=int(cands.index.size),
+        candidates=cands.index,
+        entered=tuple(_ids(problem, entered)),
+        left=tuple(_ids(problem, left)),
+        selected_size=int(new.index.size),
+        pass_seconds=round(cands.seconds, 3),
+        refit=refit,
+        model=FitRecord.from_dict(new.record()),
+    ).to_dict()
 
 
 def _marginal(ctx: StepContext, passes: list[PassResult], index: np.ndarray) -> dict:

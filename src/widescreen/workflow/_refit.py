@@ -20,6 +20,7 @@ from dask.base import tokenize
 
 from .._config import check_choice, check_int, check_number
 from ..fit import Refit, fit_path, make_penalty, refit, select_model
+from ..schema import FitRecord, PathRecord
 from ._problem import Problem
 
 CRITERIA = ("ebic", "bic", "cv")
@@ -101,29 +102,31 @@ class FittedModel:
         return eta
 
     def record(self) -> dict:
-        return {
-            "union": self.union.tolist(),
-            "index": self.index.tolist(),
-            "coef": [float(c) for c in self.coef],
-            "intercept": float(self.intercept),
-            "covariate_coef": [float(c) for c in self.covariate_coef],
-            "lambda": None if self.lambda_ is None else float(self.lambda_),
-            "criterion_value": float(self.criterion_value),
-            "seconds": round(self.seconds, 3),
-            "path": self.path,
-        }
+        """The manifest's record of the fit (`widescreen.schema.FitRecord`)."""
+        return FitRecord(
+            union=self.union,
+            index=self.index,
+            coef=self.coef,
+            intercept=self.intercept,
+            covariate_coef=self.covariate_coef,
+            lambda_=self.lambda_,
+            criterion_value=self.criterion_value,
+            seconds=self.seconds,
+            path=None if self.path is None else PathRecord.from_dict(self.path),
+        ).to_dict()
 
     @classmethod
     def from_record(cls, r: dict) -> FittedModel:
+        rec = FitRecord.from_dict(r)
         return cls(
-            union=np.asarray(r["union"], dtype=np.int64),
-            index=np.asarray(r["index"], dtype=np.int64),
-            coef=np.asarray(r["coef"], dtype=np.float64),
-            intercept=float(r["intercept"]),
-            covariate_coef=np.asarray(r["covariate_coef"], dtype=np.float64),
-            lambda_=None if r["lambda"] is None else float(r["lambda"]),
-            criterion_value=float(r["criterion_value"]),
-            seconds=float(r.get("seconds", 0.0)),
+            union=rec.union,
+            index=rec.index,
+            coef=rec.coef,
+            intercept=rec.intercept,
+            covariate_coef=rec.covariate_coef,
+            lambda_=rec.lambda_,
+            criterion_value=rec.criterion_value,
+            seconds=rec.seconds,
             path=r.get("path"),
         )
 
