@@ -5,7 +5,7 @@ from __future__ import annotations
 import numpy as np
 
 from ..families import get_family
-from ..workflow._problem import Problem
+from ..workflow import Problem
 from ._core import make_problem
 from ._inputs import Design, align, read_covariates, read_design
 from ._target import no_target, read_target, target_length

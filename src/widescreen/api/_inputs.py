@@ -16,7 +16,7 @@ from sklearn.utils.validation import check_array, validate_data
 
 from ..engine import ArraySource, BlockSource, StoreSource, as_source
 from ..engine import read_columns as engine_read_columns
-from ..store._format import Dataset
+from ..store import Dataset
 from ._view import StoreView, _positions
 
 

@@ -11,7 +11,7 @@ from sklearn.utils._available_if import available_if
 from sklearn.utils.validation import check_is_fitted
 
 from ..fit import make_loss
-from ..workflow._iterate import IterateConfig
+from ..workflow import IterateConfig
 from ._base import fill_missing, fit_inputs, predict_covariates
 from ._core import iterate_once
 from ._inputs import Design, align, read_design

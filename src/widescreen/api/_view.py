@@ -12,7 +12,7 @@ from numbers import Integral
 
 import numpy as np
 
-from ..store._format import Dataset, open_dataset
+from ..store import Dataset, open_dataset
 
 
 class StoreView:
