@@ -12,7 +12,7 @@ from typing import Annotated
 import typer
 
 from ._app import NOT_RESUMABLE, command
-from ._options import OFF, QuietOpt, at_least, below_one, one_of, positive
+from ._options import QuietOpt, at_least, below_one, one_of, positive
 from ._progress import progress_display
 
 #: Filters the demo applies (a common practice for genotype data: drop rare and poorly called sites).
@@ -88,7 +88,7 @@ def simulate_cmd(
             metavar="N",
             help="Features per chunk of X.",
             callback=at_least(1),
-            show_default=OFF,
+            show_default="about 16 MiB chunks",
         ),
     ] = None,
     overwrite: Annotated[

@@ -8,7 +8,7 @@ from typing import Annotated
 import typer
 
 from ._app import NOT_RESUMABLE, command
-from ._options import OFF, QuietOpt, at_least, one_of
+from ._options import QuietOpt, at_least, one_of
 from ._progress import progress_display
 
 _VCF = "VCF files"
@@ -95,9 +95,9 @@ def import_cmd(
         typer.Option(
             "--chunk-features",
             metavar="N",
-            help="Features per chunk of X (default: about 16 MiB chunks, at most the features).",
+            help="Features per chunk of X.",
             callback=at_least(1),
-            show_default=OFF,
+            show_default="about 16 MiB chunks, at most the features",
         ),
     ] = None,
     overwrite: Annotated[
