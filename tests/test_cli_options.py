@@ -172,6 +172,18 @@ def test_cli_import_loads_no_heavy_module():
     assert out.stdout.strip() == ""
 
 
+def test_workflow_import_leaves_fit_and_report_libraries_unloaded():
+    # A resumed run reuses its passes and fits: scikit-learn (the refit's solver) and matplotlib
+    # (the report) load only when a fit or a picture is made.
+    heavy = ["sklearn", "matplotlib", "scipy.stats", "scipy.optimize"]
+    code = (
+        "import sys, widescreen.workflow._run, widescreen.workflow._screen\n"
+        f"print(','.join(m for m in {heavy!r} if m in sys.modules))"
+    )
+    out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True)
+    assert out.stdout.strip() == ""
+
+
 def test_progress_without_a_terminal_writes_whole_lines():
     stream = io.StringIO()
     bar = progress_display("screen", stream=stream)
