@@ -121,8 +121,9 @@ class RichProgress:
             BarColumn(),
             *amount,
             TimeElapsedColumn(),
-            TextColumn("left"),
+            TextColumn("elapsed,"),
             TimeRemainingColumn(),
+            TextColumn("left"),
             console=Console(file=self.stream),
             auto_refresh=False,  # no refresh thread: we redraw on each update
         )
