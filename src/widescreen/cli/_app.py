@@ -43,12 +43,33 @@ class Command(TyperCommand):
         return opt
 
 
+def _usage_errors() -> tuple[type[BaseException], ...]:
+    # typer's own click exceptions (a missing option, an unknown one): the base of BadParameter.
+    return (typer.BadParameter.__mro__[1],)
+
+
 class Group(TyperGroup):
     """The command group: commands listed in `ORDER`, flags shown without a value."""
 
     def __init__(self, *args, **kwargs) -> None:
         super().__init__(*args, **kwargs)
         _plain_flags(self.params)
+
+    def main(self, *args, standalone_mode: bool = True, **kwargs):
+        """Run the command line; a usage error (a bad or missing value) is one line on stderr."""
+        if not standalone_mode:
+            return super().main(*args, standalone_mode=False, **kwargs)
+        try:
+            rv = super().main(*args, standalone_mode=False, **kwargs)
+        except typer.Abort:
+            typer.echo("aborted", err=True)
+            sys.exit(1)
+        except (typer.BadParameter, *_usage_errors()) as exc:
+            hint = f" (see '{exc.ctx.command_path} --help')" if exc.ctx is not None else ""
+            typer.echo(f"error: {exc.format_message()}{hint}", err=True)
+            sys.exit(exc.exit_code)
+        # Without standalone mode typer returns the code of a typer.Exit instead of exiting.
+        sys.exit(rv if isinstance(rv, int) else 0)
 
     def list_commands(self, ctx) -> list[str]:
         names = super().list_commands(ctx)
