@@ -103,6 +103,7 @@ def test_values_out_of_range_are_refused_with_one_line(
     assert f"Invalid value for '{option}'" in out or f"'{option}'" in out, res.output
     assert message in out, res.output
     assert "a bug" not in out and "Traceback" not in res.output
+    assert len(res.output.strip().splitlines()) == 1  # one line: "error: Invalid value for ..."
     assert list(tmp_path.iterdir()) == []  # nothing was written
 
 
