@@ -89,7 +89,7 @@ def test_errors_are_one_line_without_traceback(tmp_path):
     assert "Traceback" not in res.output
 
 
-def test_bad_keep_is_refused(tmp_path):
+def test_bad_shortlist_is_refused(tmp_path):
     res = runner.invoke(
         app,
         [
@@ -125,5 +125,21 @@ def test_demo_runs_the_whole_job(tmp_path):
     )
     assert res.exit_code == 0, res.output
     assert "causal" in res.output
+    assert f"Writing into {(tmp_path / 'd').resolve()}" in res.output
     for name in ("model.tsv", "iterations.tsv", "ranking.tsv", "manifest.json", "report.html"):
         assert (tmp_path / "d" / "run" / name).is_file()
+    # Every causal site's row says how the run treated it; a shortlisted one's marginal rank is
+    # the rank ranking.tsv gives it.
+    ranking = read_tsv(tmp_path / "d" / "run" / "ranking.tsv")
+    rank_of = dict(zip(ranking["feature"], ranking["rank"], strict=True))
+    truth = read_tsv(tmp_path / "d" / "reeds.zarr.truth.tsv")
+    rows = {ln.split()[0]: ln for ln in res.output.splitlines() if ln.split()[:1] != []}
+    for f in truth["feature"]:
+        line = rows[f]
+        assert "marginal rank" in line or "dropped before screening" in line, line
+        if "marginal rank" in line:
+            r = line.split("marginal rank ")[1].split(",")[0]
+            inside = f"in the {ranking['feature'].size}-site shortlist" in line
+            assert inside == (f in rank_of), line
+            if inside:
+                assert r == rank_of[f], line

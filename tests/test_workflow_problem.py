@@ -82,8 +82,9 @@ def test_configs_validate_every_field_in_one_line():
 @pytest.mark.parametrize(
     ("option", "message"),
     [
-        (["--alpha", "2"], "'alpha' must be a number in (0, 1); got 2.0"),
-        (["--max-iter", "-1"], "--max-iter must be 0 or more"),
+        # Refused while the command line is parsed (cli/_options.py), before any file is read.
+        (["--alpha", "2"], "'--alpha': must be between 0 and 1 (exclusive); got 2"),
+        (["--max-iter", "-1"], "'--max-iter': must be an integer of at least 0; got -1"),
     ],
 )
 def test_cli_reports_a_bad_value_in_one_line_not_as_a_bug(tmp_path, option, message):

@@ -1,8 +1,11 @@
 """The ``widescreen`` command line."""
 
-from . import (
-    _report,  # noqa: F401  (registers the report command)
-    _run,  # noqa: F401  (registers the run command)
+from . import (  # noqa: F401  (each module registers its commands)
+    _demo,
+    _report,
+    _run,
+    _screen,
+    _store,
 )
 from ._app import app, main
 

@@ -1,41 +1,130 @@
-"""The typer command line. Thin: parse, validate, call the workflow, print one clear line on error."""
+"""The typer application: command order, help layout, ``--version``, one clear line on error.
+
+Thin on purpose: this module imports typer and nothing heavy, so ``widescreen --help`` starts fast;
+each command imports the workflow, the store and the report where it runs.
+"""
 
 from __future__ import annotations
 
 import functools
 import os
 import sys
-from pathlib import Path
 from typing import Annotated
 
 import typer
+from typer.core import TyperCommand, TyperGroup
 
-from ._options import (
-    CovariatesOpt,
-    DropMissingOpt,
-    DropRareOpt,
-    EventOpt,
-    FamilyOpt,
-    MemoryOpt,
-    OutcomeOpt,
-    OutOpt,
-    QuietOpt,
-    ReportOpt,
-    ResponseOpt,
-    RestartOpt,
-    SchedulerOpt,
-    StoreArg,
-    WorkersOpt,
-)
-from ._progress import ProgressBar
+#: Commands in the order data flows through them (the order of ``widescreen --help``).
+ORDER = ("import", "inspect", "simulate", "screen", "run", "report", "demo")
+
+
+def _plain_flags(params) -> None:
+    # A flag takes no value: show none (typer would show "<bool>").
+    for p in params:
+        if getattr(p, "is_flag", False) and p.metavar is None:
+            p.metavar = ""
+
+
+class Command(TyperCommand):
+    """A command whose usage line names its arguments (``STORE``, not ``{STORE}``) and shows no
+    value for flags."""
+
+    def __init__(self, *args, **kwargs) -> None:
+        super().__init__(*args, **kwargs)
+        _plain_flags(self.params)
+
+    def collect_usage_pieces(self, ctx) -> list[str]:
+        return [p.strip("{}") for p in super().collect_usage_pieces(ctx)]
+
+    def get_help_option(self, ctx):
+        opt = super().get_help_option(ctx)
+        if opt is not None:
+            _plain_flags([opt])
+        return opt
+
+
+def _usage_errors() -> tuple[type[BaseException], ...]:
+    # typer's own click exceptions (a missing option, an unknown one): the base of BadParameter.
+    return (typer.BadParameter.__mro__[1],)
+
+
+class Group(TyperGroup):
+    """The command group: commands listed in `ORDER`, flags shown without a value."""
+
+    def __init__(self, *args, **kwargs) -> None:
+        super().__init__(*args, **kwargs)
+        _plain_flags(self.params)
+
+    def main(self, *args, standalone_mode: bool = True, **kwargs):
+        """Run the command line; a usage error (a bad or missing value) is one line on stderr."""
+        if not standalone_mode:
+            return super().main(*args, standalone_mode=False, **kwargs)
+        try:
+            rv = super().main(*args, standalone_mode=False, **kwargs)
+        except typer.Abort:
+            typer.echo("aborted", err=True)
+            sys.exit(1)
+        except (typer.BadParameter, *_usage_errors()) as exc:
+            hint = f" (see '{exc.ctx.command_path} --help')" if exc.ctx is not None else ""
+            typer.echo(f"error: {exc.format_message()}{hint}", err=True)
+            sys.exit(exc.exit_code)
+        # Without standalone mode typer returns the code of a typer.Exit instead of exiting.
+        sys.exit(rv if isinstance(rv, int) else 0)
+
+    def list_commands(self, ctx) -> list[str]:
+        names = super().list_commands(ctx)
+        return sorted(names, key=lambda n: ORDER.index(n) if n in ORDER else len(ORDER))
+
+    def get_help_option(self, ctx):
+        opt = super().get_help_option(ctx)
+        if opt is not None:
+            _plain_flags([opt])
+        return opt
+
 
 app = typer.Typer(
     name="widescreen",
-    help="Screen very wide data on disk for features associated with an outcome.",
+    cls=Group,
     no_args_is_help=True,
     add_completion=False,
     pretty_exceptions_enable=False,
 )
+
+
+def command(name: str, *, interrupted: str | None = None):
+    """Register a command of `app` under ``name`` (with our usage line and error handling).
+
+    ``interrupted``: the line printed on Ctrl-C or SIGTERM (`RESUMABLE` by default).
+    """
+
+    def register(fn):
+        return app.command(name, cls=Command)(friendly(fn, interrupted=interrupted or RESUMABLE))
+
+    return register
+
+
+def _print_version(value: bool) -> None:
+    if value:
+        from .._version import __version__
+
+        typer.echo(f"widescreen {__version__}")
+        raise typer.Exit()
+
+
+@app.callback()
+def _main(
+    version: Annotated[
+        bool,
+        typer.Option(
+            "--version", help="Print the version and exit.", callback=_print_version, is_eager=True
+        ),
+    ] = False,
+) -> None:
+    """Screen very wide data on disk for features associated with an outcome.
+
+    Commands in the order of the work: import (or simulate) a store, inspect it, screen it or run
+    the whole iterative job, write the report. `widescreen demo` shows all of it on simulated data.
+    """
 
 
 def _expected_errors() -> tuple[type[BaseException], ...]:
@@ -102,17 +191,17 @@ def friendly(fn=None, *, interrupted: str = RESUMABLE):
     return wrapper
 
 
-def _scheduler(workers: int | None, scheduler: str | None):
+def scheduler_of(workers: int | None, scheduler: str | None):
+    """The scheduler a command runs on: ``processes:N``, an address, or None (threads)."""
     if workers is not None and scheduler is not None:
         raise typer.BadParameter("give --workers or --scheduler, not both")
     if workers is not None:
-        if workers < 1:
-            raise typer.BadParameter(f"--workers must be at least 1; got {workers}")
         return f"processes:{workers}"
     return scheduler
 
 
-def _budget(value: str | None) -> int | None:
+def budget_of(value: str | None) -> int | None:
+    """``--memory-budget`` in bytes (None: no budget)."""
     from ..engine import parse_budget
 
     try:
@@ -121,291 +210,11 @@ def _budget(value: str | None) -> int | None:
         raise typer.BadParameter(f"--memory-budget: {exc}") from None
 
 
-def _parse_shortlist(value: str) -> int | str:
-    if value == "auto":
-        return value
-    try:
-        k = int(value)
-    except ValueError:
-        raise typer.BadParameter(f"must be a positive integer or 'auto'; got {value!r}") from None
-    if k < 1:
-        raise typer.BadParameter(f"must be a positive integer or 'auto'; got {value!r}")
-    return k
-
-
-def _covariates(value: str | None) -> tuple[str, ...]:
+def covariates_of(value: str | None) -> tuple[str, ...]:
+    """``--covariates a,b`` as a tuple of names."""
     if not value:
         return ()
     return tuple(c.strip() for c in value.split(",") if c.strip())
-
-
-# ------------------------------------------------------------------------------------------------
-# screen
-
-
-@app.command("screen")
-@friendly
-def screen_cmd(
-    store: StoreArg,
-    outcome: OutcomeOpt,
-    response: ResponseOpt,
-    out: OutOpt,
-    family: FamilyOpt = "linear",
-    covariates: CovariatesOpt = None,
-    event: EventOpt = None,
-    shortlist: Annotated[
-        str, typer.Option("--shortlist", help="Shortlist size: N or 'auto' = floor(n / log n).")
-    ] = "auto",
-    list_top: Annotated[
-        int | None, typer.Option("--list", help="Rows in ranking.tsv (default: the shortlist).")
-    ] = None,
-    drop_missing: DropMissingOpt = None,
-    drop_rare: DropRareOpt = None,
-    workers: WorkersOpt = None,
-    scheduler: SchedulerOpt = None,
-    restart: RestartOpt = False,
-    memory_budget: MemoryOpt = None,
-    report: ReportOpt = True,
-    quiet: QuietOpt = False,
-) -> None:
-    """Rank every feature by its marginal association with the outcome (SIS) and write the shortlist."""
-    from ..workflow._screen import ScreenConfig, screen
-
-    config = ScreenConfig(
-        response=response,
-        family=family,
-        covariates=_covariates(covariates),
-        event=event,
-        shortlist=_parse_shortlist(shortlist),
-        list_top=list_top,
-        drop_missing=drop_missing,
-        drop_rare=drop_rare,
-    )
-    result = screen(
-        store,
-        outcome,
-        config,
-        out,
-        scheduler=_scheduler(workers, scheduler),
-        progress=ProgressBar("screen", quiet),
-        restart=restart,
-        memory_budget=_budget(memory_budget),
-    )
-    s = result.pass_result
-    rep = result.problem.samples
-    typer.echo(
-        f"screened {s.n_features} features on {rep['n_analysed']} samples "
-        f"({rep['n_dropped_missing']} dropped for missing values, {rep['n_unknown_ids']} unknown ids); "
-        f"{s.n_filtered} filtered, {s.n_constant} constant, {s.n_degenerate} degenerate, "
-        f"{s.n_nonfinite} not finite; shortlist of {result.index.size} "
-        f"in {out / 'ranking.tsv'}"
-        + (
-            f" [resumed {s.blocks_reused} of {s.blocks_reused + s.blocks_computed} blocks]"
-            if s.blocks_reused
-            else ""
-        )
-    )
-    if report:
-        from ..report import build_report
-
-        typer.echo(f"report: {build_report(out)}")
-
-
-# ------------------------------------------------------------------------------------------------
-# simulate and demo
-
-
-@app.command("simulate")
-@friendly(interrupted=NOT_RESUMABLE)
-def simulate_cmd(
-    store: Annotated[Path, typer.Argument(help="Path of the new store.")],
-    design: Annotated[
-        str, typer.Option("--design", help="independent, equicorrelated, hidden or dosage.")
-    ] = "independent",
-    samples: Annotated[int, typer.Option("--samples", "-n", help="Number of samples.")] = 200,
-    features: Annotated[int, typer.Option("--features", "-p", help="Number of features.")] = 1000,
-    true: Annotated[
-        int,
-        typer.Option("--true", help="Number of true features (the hidden design fixes its own)."),
-    ] = 8,
-    rho: Annotated[
-        float, typer.Option("--rho", help="Pairwise correlation (equicorrelated, hidden).")
-    ] = 0.5,
-    sigma: Annotated[
-        float, typer.Option("--sigma", help="Noise sd of a continuous outcome.")
-    ] = 1.5,
-    family: Annotated[
-        str,
-        typer.Option(
-            "--family",
-            help="Model of the outcome: linear (continuous y), logistic (binary y), poisson (counts) "
-            "or cox (survival time and event).",
-        ),
-    ] = "linear",
-    seed: Annotated[int, typer.Option("--seed", help="Random seed.")] = 0,
-    chunk_features: Annotated[
-        int | None, typer.Option("--chunk-features", help="Features per chunk of X.")
-    ] = None,
-    overwrite: Annotated[
-        bool, typer.Option("--overwrite", help="Replace an existing store.")
-    ] = False,
-    quiet: QuietOpt = False,
-) -> None:
-    """Write a simulated store plus STORE.outcome.tsv and STORE.truth.tsv (a published design)."""
-    from ..simulate import SimulationConfig, simulate
-
-    cfg = SimulationConfig(
-        design=design,
-        n_samples=samples,
-        n_features=features,
-        n_true=true,
-        rho=rho,
-        sigma=sigma,
-        family=family,
-        seed=seed,
-        chunk_features=chunk_features,
-    )
-    sim = simulate(store, cfg, overwrite=overwrite, progress=ProgressBar("simulate", quiet))
-    typer.echo(f"wrote {store} ({samples} x {features}), {sim.outcome_path}, {sim.truth_path}")
-
-
-@app.command("demo")
-@friendly
-def demo_cmd(
-    out: Annotated[Path, typer.Option("--out", help="Folder for the demo's store and run.")] = Path(
-        "widescreen-demo"
-    ),
-    samples: Annotated[int, typer.Option("--samples", "-n", help="Number of samples.")] = 600,
-    features: Annotated[int, typer.Option("--features", "-p", help="Number of features.")] = 50_000,
-    seed: Annotated[int, typer.Option("--seed", help="Random seed.")] = 7,
-    quiet: QuietOpt = False,
-) -> None:
-    """Simulate a study, run the whole job on it and compare the model with the truth.
-
-    The scenario: a breeding programme of the fictional 'Saltmarsh reed', 600 plants genotyped at
-    50,000 variant sites (dosages 0/1/2), a quantitative salt-tolerance score, age and batch covariates,
-    and 8 causal variants hidden among the rest.
-    """
-    from ._demo import run_demo
-
-    run_demo(out, samples=samples, features=features, seed=seed, quiet=quiet)
-
-
-# ------------------------------------------------------------------------------------------------
-# import and inspect
-
-
-@app.command("import")
-@friendly(interrupted=NOT_RESUMABLE)
-def import_cmd(
-    src: Annotated[
-        Path, typer.Argument(help="CSV/TSV (optionally .gz), .npy, or VCF (.vcf, .vcf.gz) file.")
-    ],
-    store: Annotated[Path, typer.Argument(help="Path of the new store.")],
-    features_as_rows: Annotated[
-        bool,
-        typer.Option("--features-as-rows", help="CSV/TSV: rows are features, columns samples."),
-    ] = False,
-    dosage: Annotated[
-        bool,
-        typer.Option("--dosage", help="CSV/TSV/.npy: values are dosages 0/1/2 (stored as int8)."),
-    ] = False,
-    dtype: Annotated[
-        str, typer.Option("--dtype", help="float32 or float64 for continuous values.")
-    ] = "float32",
-    id_from: Annotated[
-        str,
-        typer.Option(
-            "--vcf-ids",
-            help="VCF: feature ids from the 'column' (ID) or the 'position' (chrom:pos:ref:alt).",
-        ),
-    ] = "column",
-    multiallelic: Annotated[
-        str,
-        typer.Option(
-            "--multiallelic",
-            help="VCF sites with several ALT alleles: 'split' (one feature per ALT), 'nonref' "
-            "(count every non-reference allele) or 'skip'.",
-        ),
-    ] = "split",
-    chunk_features: Annotated[
-        int | None,
-        typer.Option(
-            "--chunk-features", help="Features per chunk of X (default: about 16 MiB chunks)."
-        ),
-    ] = None,
-    overwrite: Annotated[
-        bool, typer.Option("--overwrite", help="Replace an existing store.")
-    ] = False,
-    inf_as_missing: Annotated[
-        bool,
-        typer.Option(
-            "--inf-as-missing",
-            help="CSV/TSV: read infinite values (inf, -Infinity) as missing instead of refusing "
-            "them.",
-        ),
-    ] = False,
-    quiet: QuietOpt = False,
-) -> None:
-    """Convert a matrix file into a dataset store, streaming with bounded memory."""
-    name = src.name.lower()
-    bar = ProgressBar("import", quiet, unit="bytes")
-    if name.endswith((".vcf", ".vcf.gz", ".vcf.bgz")):
-        from ..store._ingest_vcf import import_vcf
-
-        ds = import_vcf(
-            src,
-            store,
-            id_from=id_from,
-            multiallelic=multiallelic,
-            chunk_features=chunk_features,
-            overwrite=overwrite,
-            progress=bar,
-        )
-    elif name.endswith(".npy"):
-        from ..store._ingest_npy import import_npy
-
-        ds = import_npy(
-            src,
-            store,
-            value_kind="dosage" if dosage else None,
-            chunk_features=chunk_features,
-            overwrite=overwrite,
-            progress=bar,
-        )
-    else:
-        from ..store._ingest_text import import_table
-
-        ds = import_table(
-            src,
-            store,
-            features_as_rows=features_as_rows,
-            dtype="int8" if dosage else dtype,
-            value_kind="dosage" if dosage else "continuous",
-            chunk_features=chunk_features,
-            overwrite=overwrite,
-            progress=bar,
-            nonfinite="missing" if inf_as_missing else "error",
-        )
-    typer.echo(f"wrote {store}: {ds.n_samples} samples x {ds.n_features} features ({ds.dtype})")
-
-
-@app.command("inspect")
-@friendly
-def inspect_cmd(
-    store: Annotated[Path, typer.Argument(help="Dataset store.")],
-    sample_blocks: Annotated[
-        int | None,
-        typer.Option(
-            "--sample-blocks",
-            help="Estimate the missing rate from this many blocks (default: all).",
-        ),
-    ] = None,
-) -> None:
-    """Print shape, dtype, chunking, codec, size on disk and missing rate of a store."""
-    from ..store._inspect import inspect_dataset
-
-    typer.echo(inspect_dataset(store, sample_blocks=sample_blocks).format())
 
 
 _IN_MAIN = False  # set by `main`: the process is the command (not a caller's test or notebook)

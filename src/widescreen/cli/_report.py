@@ -7,15 +7,23 @@ from typing import Annotated
 
 import typer
 
-from ._app import app, friendly
+from ._app import command
+from ._options import at_least
 
 
-@app.command("report")
-@friendly
+@command("report")
 def report_cmd(
-    run: Annotated[Path, typer.Argument(help="Run folder of a finished `screen` or `run`.")],
+    run: Annotated[
+        Path, typer.Argument(metavar="RUN", help="Run folder of a finished `screen` or `run`.")
+    ],
     top: Annotated[
-        int, typer.Option("--top", help="Rows of the ranking table shown on the page.")
+        int,
+        typer.Option(
+            "--top",
+            metavar="N",
+            help="Rows of the ranking table shown on the page.",
+            callback=at_least(1),
+        ),
     ] = 50,
 ) -> None:
     """Write RUN/report.html (pictures embedded) and the pictures as PNG under RUN/figures/."""

@@ -6,7 +6,7 @@ from typing import Annotated
 
 import typer
 
-from ._app import _budget, _covariates, _parse_shortlist, _scheduler, app, friendly
+from ._app import budget_of, command, covariates_of, scheduler_of
 from ._options import (
     CovariatesOpt,
     DropMissingOpt,
@@ -21,17 +21,19 @@ from ._options import (
     ResponseOpt,
     RestartOpt,
     SchedulerOpt,
+    ShortlistOpt,
     StoreArg,
     WorkersOpt,
+    at_least,
+    level,
 )
-from ._progress import ProgressBar
+from ._progress import progress_display
 
 _MODEL = "Model and tuning"
 _THRESH = "Thresholds"
 
 
-@app.command("run")
-@friendly
+@command("run")
 def run_cmd(
     store: StoreArg,
     outcome: OutcomeOpt,
@@ -46,29 +48,28 @@ def run_cmd(
         str,
         typer.Option(
             "--penalty",
+            metavar="NAME",
             help="Refit penalty: scad, mcp, lasso, enet, adaptive_lasso or dantzig.",
             rich_help_panel=_MODEL,
         ),
     ] = "scad",
+    shortlist: ShortlistOpt = "auto",
     criterion: Annotated[
         str,
         typer.Option(
-            "--criterion", help="Tuning of the refit: ebic, bic or cv.", rich_help_panel=_MODEL
-        ),
-    ] = "ebic",
-    shortlist: Annotated[
-        str,
-        typer.Option(
-            "--shortlist",
-            help="Size budget d of the selected set: N or 'auto' = floor(n / log n).",
+            "--criterion",
+            metavar="NAME",
+            help="Tuning of the refit: ebic, bic or cv.",
             rich_help_panel=_MODEL,
         ),
-    ] = "auto",
+    ] = "ebic",
     max_iter: Annotated[
         int,
         typer.Option(
             "--max-iter",
+            metavar="N",
             help="Conditional passes at most (0: plain SIS and one fit).",
+            callback=at_least(0),
             rich_help_panel=_MODEL,
         ),
     ] = 5,
@@ -83,13 +84,18 @@ def run_cmd(
     seed: Annotated[
         int,
         typer.Option(
-            "--seed", help="Seed of the halves, permutations and CV folds.", rich_help_panel=_MODEL
+            "--seed",
+            metavar="N",
+            help="Seed of the halves, permutations and CV folds.",
+            callback=at_least(0),
+            rich_help_panel=_MODEL,
         ),
     ] = 0,
     threshold: Annotated[
         str,
         typer.Option(
             "--threshold",
+            metavar="RULE",
             help="Cut within the budget: none, permutation, bonferroni or bh.",
             rich_help_panel=_THRESH,
         ),
@@ -98,7 +104,9 @@ def run_cmd(
         int,
         typer.Option(
             "--permutations",
+            metavar="K",
             help="Permuted responses per pass (--threshold permutation).",
+            callback=at_least(1),
             rich_help_panel=_THRESH,
         ),
     ] = 100,
@@ -106,7 +114,9 @@ def run_cmd(
         float,
         typer.Option(
             "--alpha",
+            metavar="LEVEL",
             help="Level: family-wise (permutation, bonferroni) or false discovery rate (bh).",
+            callback=level,
             rich_help_panel=_THRESH,
         ),
     ] = 0.05,
@@ -125,14 +135,12 @@ def run_cmd(
     from ..workflow._iterate import IterateConfig
     from ..workflow._run import run
 
-    if max_iter < 0:
-        raise typer.BadParameter(f"--max-iter must be 0 or more; got {max_iter}")
     config = IterateConfig(
         response=response,
         family=family,
-        covariates=_covariates(covariates),
+        covariates=covariates_of(covariates),
         event=event,
-        shortlist=_parse_shortlist(shortlist),
+        shortlist=shortlist,
         penalty=penalty,
         criterion=criterion,
         max_iter=max_iter,
@@ -149,10 +157,10 @@ def run_cmd(
         outcome,
         config,
         out,
-        scheduler=_scheduler(workers, scheduler),
-        progress=lambda name: ProgressBar(name, quiet),
+        scheduler=scheduler_of(workers, scheduler),
+        progress=lambda name: progress_display(name, quiet),
         restart=restart,
-        memory_budget=_budget(memory_budget),
+        memory_budget=budget_of(memory_budget),
     )
     rep = result.problem.samples
     shown = ", ".join(str(f) for f in result.feature_ids[:10])

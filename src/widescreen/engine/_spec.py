@@ -24,9 +24,9 @@ class FeatureFilter:
     Attributes
     ----------
     drop_missing : float, optional
-        Exclude features whose missing rate exceeds this.
+        Drop features whose missing rate exceeds this (0 to 1).
     drop_rare : float, optional
-        Dosage stores only: exclude features whose minor allele frequency is below this.
+        Dosage stores only: drop features whose minor allele frequency is below this (0 to 0.5).
     """
 
     drop_missing: float | None = None
@@ -35,6 +35,14 @@ class FeatureFilter:
     def __post_init__(self) -> None:
         check_number("drop_missing", self.drop_missing, 0.0, 1.0, optional=True)
         check_number("drop_rare", self.drop_rare, 0.0, 0.5, optional=True)
+
+    def check(self, value_kind: str) -> None:
+        """Refuse a filter the data cannot take: the allele-frequency filter needs dosages."""
+        if self.drop_rare is not None and value_kind != "dosage":
+            raise ValueError(
+                f"the data hold {value_kind} values; the minor allele frequency filter "
+                "(--drop-rare, drop_rare) applies to dosage stores only"
+            )
 
     def to_dict(self) -> dict:
         return {"drop_missing": self.drop_missing, "drop_rare": self.drop_rare}

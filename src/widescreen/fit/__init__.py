@@ -10,7 +10,6 @@ model (penalised estimates), ``best.refit_coef`` and ``best.refit_se`` its unpen
 """
 
 from ._criteria import bic, default_ebic_gamma, ebic, log_binomial
-from ._estimator import PenalizedRegression
 from ._losses import BinomialLoss, CoxLoss, GaussianLoss, Loss, PoissonLoss, make_loss
 from ._mle import Refit, refit
 from ._path import fit_path
@@ -76,3 +75,12 @@ __all__ = [
     "select_model",
     "soft_threshold",
 ]
+
+
+def __getattr__(name: str):
+    # The scikit-learn estimator shell loads on first use: importing scikit-learn costs a second.
+    if name == "PenalizedRegression":
+        from ._estimator import PenalizedRegression
+
+        return PenalizedRegression
+    raise AttributeError(f"module {__name__!r} has no attribute {name!r}")

@@ -12,7 +12,6 @@ With ``b = u - v``, ``u, v >= 0`` this is the LP ``min 1^T (u + v)`` under
 from __future__ import annotations
 
 import numpy as np
-from scipy.optimize import linprog
 
 from ._quadratic import WorkingProblem
 
@@ -42,6 +41,8 @@ def dantzig_selector(prob: WorkingProblem, lam: float, active: np.ndarray) -> np
     c = prob.xty[idx] / prob.n
     if np.abs(c).max() <= lam:
         return b  # b = 0 is feasible, hence optimal
+    from scipy.optimize import linprog  # here: scipy.optimize is slow to import
+
     A = np.block([[G, -G], [-G, G]])
     rhs = np.concatenate([lam + c, lam - c])
     res = linprog(np.ones(2 * p), A_ub=A, b_ub=rhs, bounds=(0, None), method="highs")

@@ -17,7 +17,6 @@ from __future__ import annotations
 import contextlib
 
 import numpy as np
-from sklearn import config_context
 from threadpoolctl import threadpool_limits
 
 from ._concave import concave_path
@@ -252,6 +251,8 @@ def path_on_problem(
     options: SolverOptions | None = None,
 ) -> PathResult:
     """`fit_path` on an already validated `Problem` (used again by cross-validation)."""
+    from sklearn import config_context  # here, not at import: a resumed run may never fit
+
     opts = options or SolverOptions()
     # The solver calls enet_path hundreds of times with arguments it built itself: skip
     # scikit-learn's per-call parameter validation.

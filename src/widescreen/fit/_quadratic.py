@@ -21,8 +21,6 @@ from dataclasses import dataclass, field
 
 import numpy as np
 from scipy import linalg
-from sklearn.exceptions import ConvergenceWarning
-from sklearn.linear_model import enet_path
 
 
 @dataclass(frozen=True)
@@ -251,6 +249,9 @@ def coordinate_descent(
     coefs : ndarray of shape (p, len(alphas))
     converged : ndarray of bool of shape (len(alphas),)
     """
+    from sklearn.exceptions import ConvergenceWarning  # here: importing sklearn costs a second
+    from sklearn.linear_model import enet_path
+
     p = gram.shape[0]
     # In Gram mode (check_input=False) enet_path reads only the shape of X and the norm of y:
     # a zero-stride view and a one-element y of the right norm stand in for the projected data.

@@ -41,7 +41,8 @@ UNSAFE_ID_CHARS = ("\t", "\n", "\r", "\x00")
 ATTRS_KEY = "widescreen"
 MISSING_INT8 = -128
 VALUE_KINDS = ("dosage", "continuous")
-DTYPES = {"dosage": ("int8",), "continuous": ("float32", "float64")}
+# Dosages are int8 counts (0/1/2) or, for imputed data, float32 expected counts.
+DTYPES = {"dosage": ("int8", "float32"), "continuous": ("float32", "float64")}
 
 #: Target size of one chunk of X in bytes; the design aims at 8-64 MiB chunks.
 TARGET_CHUNK_BYTES = 16 * 2**20
@@ -97,7 +98,8 @@ def default_chunks(n_samples: int, dtype: str, n_features: int | None = None) ->
     """Chunk shape for X: all samples (up to a cap) times as many features as fit the target size.
 
     When the number of features is known and small, chunks are narrowed so that a pass still has at
-    least about eight blocks to spread over the cores (but never below 256 features).
+    least about eight blocks to spread over the cores (but never below 256 features), and a chunk is
+    never wider than the features (a store of 401 features is not written as 131,072-wide chunks).
     """
     rows = min(max(n_samples, 1), MAX_SAMPLES_PER_CHUNK)
     itemsize = np.dtype(dtype).itemsize
@@ -105,6 +107,8 @@ def default_chunks(n_samples: int, dtype: str, n_features: int | None = None) ->
     if n_features is not None:
         cols = min(cols, max(256, n_features // 8))
     cols = int(2 ** np.floor(np.log2(cols)))  # powers of two keep block plans aligned
+    if n_features is not None:
+        cols = max(1, min(cols, n_features))
     return rows, cols
 
 

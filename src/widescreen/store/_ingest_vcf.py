@@ -18,6 +18,12 @@ Rules
   - ``"skip"``: such sites are left out.
 
   A site with ALT ``.`` (no alternate allele) is one feature, all 0 where called.
+* Imputed data (``values="ds"``): where a site's FORMAT has a DS key, its values are read as
+  dosages (the expected count of the ALT allele, a number of 0 or more; ``.`` or a field that stops
+  before DS is missing) and the store holds float32 dosages (NaN for missing); sites without DS take
+  their dosage from GT as above. A multi-allelic site's DS holds one value per ALT (``0.9,0.1``):
+  ``split`` gives each ALT's feature its value, ``nonref`` their sum.
+* ``pass_only``: sites whose FILTER is not ``PASS`` are left out (``.``, filters not applied, too).
 * Feature ids: the ID column, or ``CHROM:POS:REF:ALT`` when it is ``.`` or ``id_from="position"``.
   A split site's features get ``ID:ALT`` (or ``CHROM:POS:REF:ALT``) each. Duplicate ids are an error
   naming both lines. Annotations ``chrom`` and ``pos`` (the POS column) are stored for every feature.
@@ -36,6 +42,7 @@ line (the nine fixed columns), never per call.
 
 from __future__ import annotations
 
+import itertools
 import os
 import re
 
@@ -48,6 +55,9 @@ from ._ingest_base import IngestError, Progress, Source, check_unique, chunk_sha
 BATCH_BYTES = 4 * 2**20
 ID_FROM = ("column", "position")
 MULTIALLELIC = ("split", "nonref", "skip")
+VALUES = ("gt", "ds")
+#: Longest DS value read (characters); longer ones are an error, not a silent truncation.
+DS_WIDTH = 32
 FIXED = ("#CHROM", "POS", "ID", "REF", "ALT", "QUAL", "FILTER", "INFO", "FORMAT")
 _TAB, _NL, _CR, _COLON, _DOT, _BAR, _SLASH, _ZERO = 9, 10, 13, 58, 46, 124, 47, 48
 _ABSENT, _MISSING = -2, -1  # allele codes: no such allele (lower ploidy) / '.'
@@ -103,14 +113,26 @@ def _read_header(source: Source, name: str) -> tuple[np.ndarray, bytes, int]:
 class _Parser:
     """Turn batches of whole VCF data lines into dosage rows and feature ids / annotations."""
 
-    def __init__(self, name: str, samples: np.ndarray, id_from: str, multiallelic: str) -> None:
+    def __init__(
+        self,
+        name: str,
+        samples: np.ndarray,
+        id_from: str,
+        multiallelic: str,
+        values: str = "gt",
+        pass_only: bool = False,
+    ) -> None:
         self.name = name
         self.samples = samples
         self.n = samples.size
         self.by_position = id_from == "position"
         self.multiallelic = multiallelic
-        self.gt_index: dict[bytes, int] = {}
+        self.values = values
+        self.pass_only = pass_only
+        self.key_index: dict[bytes, tuple[int, int]] = {}
         self.n_lines = 0
+        self.n_not_pass = 0  # sites left out by pass_only
+        self.n_ds = 0  # sites read from DS
 
     def fail(self, line: int, msg: str, sample: int | None = None) -> IngestError:
         where = f"{self.name}: line {line}"
@@ -118,14 +140,26 @@ class _Parser:
             where += f", column {sample + 10} (sample {str(self.samples[sample])!r})"
         return IngestError(f"{where}: {msg}")
 
-    def _gt(self, fmt: bytes, line: int) -> int:
-        g = self.gt_index.get(fmt)
-        if g is None:
+    def _keys(self, fmt: bytes, line: int) -> tuple[int, int]:
+        """Positions of GT and (when DS is wanted) DS in a FORMAT, -1 where absent."""
+        found = self.key_index.get(fmt)
+        if found is None:
             keys = fmt.split(b":")
-            if b"GT" not in keys:
-                raise self.fail(line, f"FORMAT {fmt.decode('utf-8', 'replace')!r} has no GT key")
-            g = self.gt_index[fmt] = keys.index(b"GT")
-        return g
+            g = keys.index(b"GT") if b"GT" in keys else -1
+            d = keys.index(b"DS") if self.values == "ds" and b"DS" in keys else -1
+            if g < 0 and d < 0:
+                want = "GT or DS key" if self.values == "ds" else "GT key"
+                raise self.fail(line, f"FORMAT {fmt.decode('utf-8', 'replace')!r} has no {want}")
+            found = self.key_index[fmt] = (g, d)
+        return found
+
+    @property
+    def dtype(self) -> str:
+        return "float32" if self.values == "ds" else "int8"
+
+    def _empty(self):
+        rows = np.empty((0, self.n), self.dtype)
+        return rows, [], [], np.empty(0, np.int64), np.empty(0, np.int64)
 
     def parse(self, buf: bytes, line0: int):
         """Parse whole lines (``buf`` ends with a newline); ``line0`` is the 1-based first line.
@@ -134,12 +168,11 @@ class _Parser:
 
         Returns
         -------
-        rows : ndarray of shape (k, n_samples), int8
+        rows : ndarray of shape (k, n_samples), int8 (float32 when reading DS)
         ids, chrom : list of str, of length k
         pos : ndarray of shape (k,), int64
         lines : ndarray of shape (k,), int64 (1-based line of each feature)
         """
-        n = self.n
         a = np.frombuffer(buf, np.uint8)
         nl = np.flatnonzero(a == _NL)
         ls = np.r_[0, nl[:-1] + 1]
@@ -149,9 +182,51 @@ class _Parser:
         nl, ls, line_no = nl[keep], ls[keep], line_no[keep]
         m = nl.size
         if m == 0:
-            return np.empty((0, n), np.int8), [], [], np.empty(0, np.int64), np.empty(0, np.int64)
+            return self._empty()
         first = np.array([self._first_sample(buf, ls[i], nl[i], line_no[i]) for i in range(m)])
         meta = [self._fixed(buf[ls[i] : first[i] - 1], int(line_no[i])) for i in range(m)]
+        if self.pass_only:
+            ok = np.array([x[7] for x in meta])
+            self.n_not_pass += int(np.count_nonzero(~ok))
+            if not ok.all():
+                nl, ls, line_no, first = nl[ok], ls[ok], line_no[ok], first[ok]
+                meta = [x for x, k in zip(meta, ok, strict=True) if k]
+                if not meta:
+                    return self._empty()
+        if self.values == "gt":
+            return self._from_gt(buf, a, ls, nl, first, meta, line_no)
+        by_ds = np.array([x[6] >= 0 for x in meta])
+        self.n_ds += int(np.count_nonzero(by_ds))
+        parts = []
+        for sel, fn in ((~by_ds, self._from_gt), (by_ds, self._from_ds)):
+            k = np.flatnonzero(sel)
+            if k.size:
+                sub = [meta[i] for i in k]
+                if fn == self._from_ds:
+                    part = fn(buf, ls[k], nl[k], sub, line_no[k])
+                else:
+                    part = fn(buf, a, ls[k], nl[k], first[k], sub, line_no[k])
+                    rows = part[0].astype(np.float32)
+                    rows[part[0] == MISSING_INT8] = np.nan
+                    part = (rows, *part[1:])
+                parts.append(part)
+        if len(parts) == 1:
+            return parts[0]
+        # Both kinds in one batch: back into file order (a line's features stay together).
+        order = np.argsort(np.concatenate([x[4] for x in parts]), kind="stable")
+        ids = [i for x in parts for i in x[1]]
+        chrom = [c for x in parts for c in x[2]]
+        return (
+            np.concatenate([x[0] for x in parts])[order],
+            [ids[i] for i in order],
+            [chrom[i] for i in order],
+            np.concatenate([x[3] for x in parts])[order],
+            np.concatenate([x[4] for x in parts])[order],
+        )
+
+    def _from_gt(self, buf: bytes, a: np.ndarray, ls, nl, first, meta, line_no):
+        """Dosage rows of lines read from GT (offsets into ``buf``/``a``)."""
+        n, m = self.n, len(meta)
         g = np.array([x[5] for x in meta])
         alleles = np.full((2, m, n), _ABSENT, np.int16)
         slow = np.ones(m, bool)
@@ -221,7 +296,8 @@ class _Parser:
         return self._alleles(a, T, nl, meta, line_no)
 
     def _fixed(self, text: bytes, line: int):
-        chrom, pos, vid, ref, alt, _qual, _filt, _info, fmt = text.split(b"\t")
+        """The fixed columns: (chrom, pos, id, ref, alts, GT index, DS index, FILTER is PASS)."""
+        chrom, pos, vid, ref, alt, _qual, filt, _info, fmt = text.split(b"\t")
         if not pos.isdigit():
             raise self.fail(line, f"POS {pos.decode('utf-8', 'replace')!r} is not a whole number")
         if not chrom or not ref or not alt:
@@ -231,7 +307,8 @@ class _Parser:
         for col, field in enumerate((chrom, vid, ref, alt)):
             if not field.isascii():
                 decode_utf8(field, f"{where}, column {(1, 3, 4, 5)[col]}")
-        return chrom.decode(), int(pos), vid.decode(), ref.decode(), alts, self._gt(fmt, line)
+        g, d = self._keys(fmt, line)
+        return chrom.decode(), int(pos), vid.decode(), ref.decode(), alts, g, d, filt == b"PASS"
 
     def _alleles(self, a, T, nl, meta, line_no) -> np.ndarray:
         """Allele codes of every call, shape (ploidy, m * n): index, -1 for '.', -2 for none."""
@@ -317,35 +394,149 @@ class _Parser:
         missing = (alleles == _MISSING).any(axis=0).reshape(m, n)
         nonref = (alleles >= 1).sum(axis=0, dtype=np.int8).reshape(m, n)
         multi = n_alt > 1
-        if self.multiallelic == "split":
-            counts = np.where(multi, n_alt, 1)
-        elif self.multiallelic == "skip":
-            counts = np.where(multi, 0, 1)
-        else:
-            counts = np.ones(m, np.int64)
+        counts = self._counts(meta)
         self._check_dosage_range(nonref, missing, line_no)
         nonref[missing] = MISSING_INT8
         rows = np.repeat(nonref, counts, axis=0) if np.any(counts != 1) else nonref
-        ids, chrom = [], []
         offsets = np.r_[0, np.cumsum(counts)[:-1]]
         al = alleles.reshape(alleles.shape[0], m, n)
-        for i, (ch, pos, vid, ref, alts, _g) in enumerate(meta):
+        for i in np.flatnonzero(multi & (counts > 1)):  # split: each ALT's own count
+            for k in range(counts[i]):
+                d = (al[:, i] == k + 1).sum(axis=0, dtype=np.int8)
+                self._check_dosage_range(d[None], missing[i][None], line_no[i : i + 1])
+                rows[offsets[i] + k] = np.where(missing[i], np.int8(MISSING_INT8), d)
+        return (rows, *self._names(meta, counts, line_no))
+
+    def _counts(self, meta) -> np.ndarray:
+        """Features per line: one, one per ALT (split), or none (a skipped multi-allelic site)."""
+        n_alt = np.array([len(x[4]) for x in meta])
+        multi = n_alt > 1
+        if self.multiallelic == "split":
+            return np.where(multi, n_alt, 1)
+        if self.multiallelic == "skip":
+            return np.where(multi, 0, 1)
+        return np.ones(len(meta), np.int64)
+
+    def _names(self, meta, counts: np.ndarray, line_no: np.ndarray):
+        """Ids, chromosomes, positions and line numbers of the features of ``meta``'s lines."""
+        ids, chrom = [], []
+        for i, x in enumerate(meta):
+            ch, pos, vid, ref, alts = x[:5]
             if counts[i] == 0:
                 continue
-            split = multi[i] and self.multiallelic == "split"
+            split = len(alts) > 1 and self.multiallelic == "split"
             named = vid if vid != "." and not self.by_position else ""
-            for k, alt in enumerate(alts if split else [b",".join(alts) or b"."]):
+            for alt in alts if split else [b",".join(alts) or b"."]:
                 alt = alt.decode()
                 if split:
-                    d = (al[:, i] == k + 1).sum(axis=0, dtype=np.int8)
-                    self._check_dosage_range(d[None], missing[i][None], line_no[i : i + 1])
-                    rows[offsets[i] + k] = np.where(missing[i], np.int8(MISSING_INT8), d)
                     ids.append(f"{named}:{alt}" if named else f"{ch}:{pos}:{ref}:{alt}")
                 else:
                     ids.append(named or f"{ch}:{pos}:{ref}:{alt}")
                 chrom.append(ch)
         pos = np.repeat(np.array([x[1] for x in meta], np.int64), counts)
-        return rows, ids, chrom, pos, np.repeat(line_no, counts)
+        return ids, chrom, pos, np.repeat(line_no, counts)
+
+    def _from_ds(self, buf: bytes, ls, nl, meta, line_no):
+        """Float32 dosage rows of lines read from their DS field (NaN for missing)."""
+        n, m = self.n, len(meta)
+        sub = b"".join(buf[ls[i] : nl[i] + 1] for i in range(m))
+        a = np.frombuffer(sub, np.uint8)
+        nl = np.flatnonzero(a == _NL)
+        ls = np.r_[0, nl[:-1] + 1]
+        tabs = np.flatnonzero(a == _TAB)
+        n_tabs = np.searchsorted(tabs, nl) - np.searchsorted(tabs, ls)
+        bad = np.flatnonzero(n_tabs != 8 + n)
+        if bad.size:
+            i = bad[0]
+            raise self._columns_error(sub, int(ls[i]), int(nl[i]), int(line_no[i]))
+        T = tabs.reshape(m, 8 + n)
+        start = T[:, 8:] + 1  # (m, n) first byte of each sample field
+        stop = np.concatenate([T[:, 9:], nl[:, None]], axis=1)
+        stop[:, -1] -= a[nl - 1] == _CR  # a Windows line end is not part of the last field
+        d = np.array([x[6] for x in meta])[:, None]
+        colons = np.flatnonzero(a == _COLON)
+        if colons.size == 0:
+            colons = np.array([a.size], np.int64)
+        # DS is the d-th key: it starts after the d-th colon of the field (at the start for d = 0).
+        j = np.searchsorted(colons, start) + d - 1
+        at = np.where(d > 0, colons[np.minimum(j, colons.size - 1)] + 1, start)
+        present = (d == 0) | ((j < colons.size) & (at <= stop))
+        k = np.searchsorted(colons, at)
+        end = np.minimum(
+            np.where(k < colons.size, colons[np.minimum(k, colons.size - 1)], stop), stop
+        )
+        length = np.where(present, end - at, 0)
+        counts = self._counts(meta)
+        n_alt = np.array([max(len(x[4]), 1) for x in meta])
+        values = np.full((m, n), np.nan)
+        simple = n_alt == 1
+        if simple.any():
+            values[simple] = self._ds_numbers(a, at[simple], length[simple], line_no[simple])
+        rows = np.repeat(values, counts, axis=0).astype(np.float32)
+        offsets = np.r_[0, np.cumsum(counts)[:-1]]
+        for i in np.flatnonzero(~simple & (counts > 0)):  # several ALTs: one value per ALT
+            per_alt = self._ds_per_alt(a, at[i], length[i], n_alt[i], int(line_no[i]))
+            if counts[i] == 1:  # nonref: the expected count of any ALT allele
+                rows[offsets[i]] = per_alt.sum(axis=1)
+            else:
+                rows[offsets[i] : offsets[i] + counts[i]] = per_alt.T
+        return (rows, *self._names(meta, counts, line_no))
+
+    def _ds_numbers(self, a: np.ndarray, at: np.ndarray, length: np.ndarray, line_no) -> np.ndarray:
+        """DS values (one per call) from their byte offsets; NaN for '.' and absent fields."""
+        width = int(length.max()) if length.size else 0
+        if width > DS_WIDTH:
+            i, s = np.argwhere(length == width)[0]
+            raise self.fail(int(line_no[i]), f"DS value longer than {DS_WIDTH} characters", int(s))
+        missing = (length == 0) | ((length == 1) & (a[np.minimum(at, a.size - 1)] == _DOT))
+        if width == 0:
+            return np.full(at.shape, np.nan)
+        # One fixed-width byte string per call (NUL-padded), converted by numpy in one go.
+        idx = at[..., None] + np.arange(width)
+        text = np.where(np.arange(width) < length[..., None], a[np.minimum(idx, a.size - 1)], 0)
+        text[missing] = 0
+        text[missing, 0] = _ZERO
+        strings = np.ascontiguousarray(text.astype(np.uint8)).view(f"S{width}")[..., 0]
+        try:
+            out = strings.astype(np.float64)
+        except ValueError:
+            out = None
+        if out is None or not np.all((out >= 0) & np.isfinite(out)):
+            for (i, s), v in np.ndenumerate(strings):
+                try:
+                    ok = float(v) >= 0 and np.isfinite(float(v))
+                except ValueError:
+                    ok = False
+                if not ok:
+                    text_v = v.decode("utf-8", "replace")
+                    raise self.fail(
+                        int(line_no[i]), f"DS {text_v!r} is not a dosage (a number, 0 or more)", s
+                    )
+        out[missing] = np.nan
+        return out
+
+    def _ds_per_alt(self, a: np.ndarray, at: np.ndarray, length: np.ndarray, n_alt: int, line: int):
+        """DS values of a multi-allelic line, shape (n_samples, n_alt): one per ALT allele."""
+        out = np.full((self.n, n_alt), np.nan)
+        raw = a.tobytes()
+        for s in range(self.n):
+            text = raw[at[s] : at[s] + length[s]]
+            if not text or text == b".":
+                continue
+            parts = text.split(b",")
+            try:
+                vals = [float(x) for x in parts]
+            except ValueError:
+                vals = []
+            if len(vals) != n_alt or not all(v >= 0 and np.isfinite(v) for v in vals):
+                raise self.fail(
+                    line,
+                    f"DS {text.decode('utf-8', 'replace')!r} is not {n_alt} dosages "
+                    "(one per ALT allele, each 0 or more)",
+                    s,
+                )
+            out[s] = vals
+        return out
 
 
 def _batches(source: Source, head: bytes):
@@ -372,11 +563,13 @@ def import_vcf(
     *,
     id_from: str = "column",
     multiallelic: str = "split",
+    values: str = "gt",
+    pass_only: bool = False,
     chunk_features: int | None = None,
     overwrite: bool = False,
     progress: Progress = None,
 ) -> Dataset:
-    """Import the genotypes of a VCF file as an int8 dosage store with chrom / pos annotations.
+    """Import the genotypes of a VCF file as a dosage store with chrom / pos annotations.
 
     Parameters
     ----------
@@ -389,8 +582,15 @@ def import_vcf(
         ``CHROM:POS:REF:ALT``.
     multiallelic : {"split", "nonref", "skip"}
         Rule for sites with several ALT alleles (see the module notes).
+    values : {"gt", "ds"}
+        ``"gt"``: dosages counted from the genotype calls, stored as int8. ``"ds"``: the DS field
+        (imputed dosages) where a site's FORMAT has it, GT elsewhere, stored as float32.
+    pass_only : bool
+        Leave out sites whose FILTER is not ``PASS``.
     chunk_features : int, optional
-        Features per chunk of X; `default_chunks` by default.
+        Features per chunk of X. By default `default_chunks` for the number of features, which is
+        estimated from the first chunk's worth of sites and the file size (exact for a file that
+        fits in one chunk), so a small file is not stored in a chunk wider than itself.
     overwrite : bool
         Replace an existing store at ``store``.
     progress : callable(done, total), optional
@@ -399,44 +599,47 @@ def import_vcf(
     Returns
     -------
     Dataset
-        The complete store (n_samples, n_features), int8 with -128 for missing calls.
+        The complete store (n_samples, n_features): int8 with -128 for missing calls, or float32
+        with NaN when reading DS.
     """
     name = str(src)
     if id_from not in ID_FROM:
         raise IngestError(f"id_from must be one of {ID_FROM}; got {id_from!r}")
     if multiallelic not in MULTIALLELIC:
         raise IngestError(f"multiallelic must be one of {MULTIALLELIC}; got {multiallelic!r}")
+    if values not in VALUES:
+        raise IngestError(f"values must be one of {VALUES}; got {values!r}")
     if not os.path.isfile(name):
         raise IngestError(f"{name}: no such file")
     check_new_store(store, overwrite, IngestError)
     source = Source(name)
     try:
         samples, head, n_header = _read_header(source, name)
-        parser = _Parser(name, samples, id_from, multiallelic)
-        chunks = chunk_shape(samples.size, "int8", chunk_features)
+        parser = _Parser(name, samples, id_from, multiallelic, values, pass_only)
+        batches = _parsed(source, head, parser, n_header + 1, progress)
+        first, chunks = _first_chunk(batches, source, samples.size, parser.dtype, chunk_features)
         all_ids, all_lines = [], []
-        line = n_header + 1
         with DatasetWriter(
             store,
             samples,
             "dosage",
-            "int8",
+            parser.dtype,
             chunks=chunks,
             source=name,
             overwrite=overwrite,
             annotations=True,
         ) as writer:
-            for buf in _batches(source, head):
-                rows, ids, chrom, pos, lines = parser.parse(buf, line)
-                line += parser.n_lines
-                if ids:
-                    writer.append(rows.T, ids, chrom, pos)
-                    all_ids.append(np.asarray(ids, dtype=str))
-                    all_lines.append(lines)
-                if progress is not None:
-                    progress(source.tell(), source.size)
+            for rows, ids, chrom, pos, lines in itertools.chain(first, batches):
+                writer.append(rows.T, ids, chrom, pos)
+                all_ids.append(np.asarray(ids, dtype=str))
+                all_lines.append(lines)
             if not all_ids:
-                raise IngestError(f"{name}: no variant lines after the header")
+                why = (
+                    f" ({parser.n_not_pass} site(s) left out: FILTER not PASS)"
+                    if parser.n_not_pass
+                    else ""
+                )
+                raise IngestError(f"{name}: no variant lines after the header{why}")
             ids = np.concatenate(all_ids)
             lines = np.concatenate(all_lines)
             try:
@@ -451,3 +654,34 @@ def import_vcf(
             return writer.finalize()
     finally:
         source.close()
+
+
+def _parsed(source: Source, head: bytes, parser: _Parser, line: int, progress: Progress):
+    """Parsed batches that hold at least one feature: (rows, ids, chrom, pos, lines)."""
+    for buf in _batches(source, head):
+        rows, ids, chrom, pos, lines = parser.parse(buf, line)
+        line += parser.n_lines
+        if progress is not None:
+            progress(source.tell(), source.size)
+        if ids:
+            yield rows, ids, chrom, pos, lines
+
+
+def _first_chunk(batches, source: Source, n: int, dtype: str, chunk_features: int | None):
+    """Read ahead about one chunk of features to size the chunks by the data.
+
+    Returns the batches read and the chunk shape: `default_chunks` for the number of features,
+    which is known when the file ends within the read-ahead and otherwise estimated from the share
+    of the file read so far (the read-ahead holds at most one target chunk of values).
+    """
+    if chunk_features is not None:
+        return [], chunk_shape(n, dtype, chunk_features)
+    target = chunk_shape(n, dtype, None)[1]
+    first, count = [], 0
+    for item in batches:
+        first.append(item)
+        count += len(item[1])
+        if count >= target:
+            read = max(source.tell(), 1)
+            return first, chunk_shape(n, dtype, None, max(count, count * source.size // read))
+    return first, chunk_shape(n, dtype, None, max(count, 1))

@@ -65,7 +65,8 @@ class ChunkLayout:
             dtype=ds.dtype,
             fast=fast,
             checksummed=checksummed,
-            dosage=ds.attrs.value_kind == "dosage",
+            # int8 counts only: imputed (float32) dosages take any value from 0 to the ploidy
+            dosage=ds.attrs.value_kind == "dosage" and ds.dtype == np.int8,
             checksums=ds.checksum_table() if checksummed else None,
         )
 

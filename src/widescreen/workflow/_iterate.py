@@ -237,6 +237,7 @@ def iterate(
     memory_budget : int or str, optional
     """
     n, p = problem.n, problem.source.n_features
+    config.filters.check(problem.source.value_kind)
     d = shortlist_size(config.shortlist, n, p)
     ctx = StepContext(
         problem,

@@ -15,7 +15,6 @@ import time
 from dataclasses import dataclass
 
 import numpy as np
-import sklearn
 from dask.base import tokenize
 
 from .._config import check_choice, check_int, check_number
@@ -181,7 +180,9 @@ def fit_union(
     X = np.zeros((n, 1)) if empty else values
     # The fit validates its own inputs; scikit-learn's per-call parameter checks in its inner solver
     # would otherwise cost about as much as the solves on a shortlist this small.
-    with sklearn.config_context(skip_parameter_validation=True):
+    from sklearn import config_context  # here: a resumed run that reuses its fits never needs it
+
+    with config_context(skip_parameter_validation=True):
         path = fit_path(
             X,
             y,

@@ -60,6 +60,7 @@ def run(
         covariates=config.covariates,
         event=config.event,
     )
+    config.filters.check(problem.source.value_kind)
     with open_session(
         out, "run", config.to_dict(), dataset_record(problem), restart=restart
     ) as session:

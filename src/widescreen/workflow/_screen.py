@@ -197,6 +197,7 @@ def screen(
         covariates=config.covariates,
         event=config.event,
     )
+    config.filters.check(problem.source.value_kind)
     with open_session(
         out, "screen", config.to_dict(), dataset_record(problem), restart=restart
     ) as session:
