@@ -98,17 +98,18 @@ class PoissonFamily(_GLMFamily):
 
     name = "poisson"
     loss = "poisson"
-    description = (
-        "count outcome: marginal quasi-Poisson regression (Pearson dispersion), likelihood-ratio test"
-    )
+    columns = SCORE_COLUMNS
+    description = "count outcome: Poisson regression, score test with the variance estimated from the data"
 
     def code(self, where: Where):
         return counts(where)
 
     def _prepare(self, response, covariates, offset, test="lr"):
-        # Quasi-Poisson: real counts are overdispersed, and a plain Poisson test then reports noise as
-        # signal; the Pearson scale of the null fit (about 1 for Poisson data) corrects it.
-        return prepare_poisson(response.y, covariates, offset, test=test, dispersion="pearson")
+        # Real counts are overdispersed (and a marginal model omits the other causes, which adds
+        # variance growing faster than the mean): a plain Poisson test reports noise as signal, and a
+        # single quasi-Poisson scale corrects only a variance proportional to the mean. The robust
+        # score test (Boos 1992) estimates the score's variance from the data whatever its form.
+        return prepare_poisson(response.y, covariates, offset, test="score", dispersion="quadratic")
 
     kernel = staticmethod(poisson_statistics)
 

@@ -202,6 +202,25 @@ def _lr_statistics(block: Block, st: GLMState) -> dict[str, np.ndarray]:
     return out
 
 
+def _empirical_score_variance(block: Block, st: GLMState, gx: np.ndarray) -> np.ndarray:
+    """``sum_i x~_i^2 v_i`` with x~ = x - D D' W0 x (x net of the nuisance columns), v = `state.variance`.
+
+    The variance of the score U = x~' (y - mu0) when Var(y_i) = v_i: with v the squared residuals it
+    is the robust (sandwich) variance (Boos 1992). Expanded as ``x' V x - 2 g' D' V x + g' D' V D g``
+    with g = D' W0 x, so it costs one product.
+    """
+    r2 = st.variance
+    D = st.score_basis / st.w0[:, None]  # whitened nuisance columns, D' W0 D = I
+    x = block.values
+    DR2x = (D * r2[:, None]).T @ x
+    DR2D = D.T @ (D * r2[:, None])
+    return (
+        weighted_sumsq(x, r2)
+        - 2.0 * np.einsum("ij,ij->j", gx, DR2x)
+        + np.einsum("ij,ik,kj->j", gx, DR2D, gx)
+    )
+
+
 def _score_statistics(block: Block, st: GLMState) -> dict[str, np.ndarray]:
     """Rao score test of b_j = 0: U = x'(y - mu0), I = x'W0 x - |G'x|^2, from one matrix product."""
     _check_block(block, st)
@@ -219,9 +238,15 @@ def _score_statistics(block: Block, st: GLMState) -> dict[str, np.ndarray]:
     info = w0xx - np.einsum("ij,ij->j", gx, gx)
     dead = block.constant | ~(info > 1e-10 * w0xx)
     info = np.where(dead, 1.0, info)
-    phi = st.dispersion  # quasi-score test: U^2 / (phi I) (McCullagh & Nelder 1989, sec. 9.2)
-    chi2 = np.where(dead, 0.0, u * u / (phi * info))
-    z = np.where(dead, 0.0, u / np.sqrt(phi * info))
+    if st.dispersion_rule in ("sandwich", "quadratic"):
+        var_u = np.where(dead, 1.0, _empirical_score_variance(block, st, gx))
+        dead = dead | ~(var_u > 0)
+        var_u = np.where(dead, 1.0, var_u)
+    else:
+        # model-based (phi = 1) or quasi-score test: U^2 / (phi I) (McCullagh & Nelder 1989, sec. 9.2)
+        var_u = st.dispersion * info
+    chi2 = np.where(dead, 0.0, u * u / var_u)
+    z = np.where(dead, 0.0, u / np.sqrt(var_u))
     beta = np.where(dead, 0.0, u / info)
     return {
         "score": 0.5 * chi2,
@@ -229,7 +254,7 @@ def _score_statistics(block: Block, st: GLMState) -> dict[str, np.ndarray]:
         "z": z,
         "p_value": np.where(dead, 1.0, special.chdtrc(1, chi2)),
         "beta": beta,
-        "std_error": np.where(dead, np.inf, np.sqrt(phi / info)),
+        "std_error": np.where(dead, np.inf, np.sqrt(var_u) / info),
         "std_beta": beta * np.sqrt(block.sumsq / st.n_samples),
         "degenerate": dead,
     }
