@@ -99,3 +99,13 @@ def test_screen_adjusts_for_a_text_covariate_as_statsmodels_does(tmp_path, rng):
         "plateC",
     ]
     assert manifest["covariates"]["columns"] == ["batch:plateB", "batch:plateC"]
+
+
+def test_new_data_are_coded_with_the_fitted_levels():
+    fitted = code_covariates({"site": np.array(["b", "a", "c"] * 10)})
+    # a prediction set lacking level "b" still gets both dummy columns, in the fitted order
+    new = code_covariate_frame({"site": np.array(["c", "a", "c"])}, levels=fitted.levels)
+    assert new.names == fitted.names == ("site:b", "site:c")
+    np.testing.assert_array_equal(new.matrix, [[0, 1], [0, 0], [0, 1]])
+    with pytest.raises(OutcomeError, match="'site' has level 'd'"):
+        code_covariate_frame({"site": np.array(["a", "d"])}, levels=fitted.levels)

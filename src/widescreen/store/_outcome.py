@@ -277,7 +277,10 @@ def _is_numeric(values: np.ndarray) -> bool:
 
 
 def code_covariates(
-    columns: dict[str, np.ndarray], *, where: str = "covariates"
+    columns: dict[str, np.ndarray],
+    *,
+    where: str = "covariates",
+    levels: dict[str, list[str]] | None = None,
 ) -> CovariateCoding:
     """Code covariate columns (text or numbers, no missing values) as a design matrix.
 
@@ -290,6 +293,10 @@ def code_covariates(
         Covariate values per name, aligned on the analysed samples.
     where : str
         Where the values come from (a file path), for error messages.
+    levels : dict of str -> list of str, optional
+        The coding of a fitted model (`CovariateCoding.levels`): categorical columns are coded with
+        these levels, so new data (a prediction, a fold) get the same columns; a value outside them is
+        refused.
 
     Raises
     ------
@@ -299,10 +306,24 @@ def code_covariates(
     """
     cols: list[np.ndarray] = []
     names: list[str] = []
-    levels: dict[str, list[str]] = {}
+    found: dict[str, list[str]] = {}
     for name, raw in columns.items():
         raw = np.asarray(raw)
         n = raw.shape[0]
+        if levels is not None and name in levels:
+            text = raw.astype(str)
+            lv = np.asarray(levels[name], dtype=str)
+            unknown = np.setdiff1d(text, lv)
+            if unknown.size:
+                raise OutcomeError(
+                    f"{where}: covariate {name!r} has level {str(unknown[0])!r}, not among the "
+                    f"fitted levels {levels[name]}"
+                )
+            found[name] = list(levels[name])
+            for level in lv[1:]:
+                cols.append((text == level).astype(np.float64))
+                names.append(f"{name}:{level}")
+            continue
         if raw.dtype.kind in "biuf" or (raw.dtype.kind in "UO" and _is_numeric(raw)):
             v = raw.astype(np.float64)
             if not np.all(np.isfinite(v)):
@@ -329,21 +350,23 @@ def code_covariates(
                 f"most {most} (at least {MIN_SAMPLES_PER_LEVEL} samples per level on average) "
                 "- is it an identifier, or a number column with a stray text value?"
             )
-        levels[name] = [str(x) for x in lv]
+        found[name] = [str(x) for x in lv]
         for level in lv[1:]:
             cols.append((text == level).astype(np.float64))
             names.append(f"{name}:{level}")
     n_rows = next(iter(columns.values())).shape[0] if columns else 0
     matrix = np.column_stack(cols) if cols else np.empty((n_rows, 0))
-    return CovariateCoding(matrix=matrix, names=tuple(names), levels=levels)
+    return CovariateCoding(matrix=matrix, names=tuple(names), levels=found)
 
 
-def code_covariate_frame(frame, *, where: str = "covariates") -> CovariateCoding:
+def code_covariate_frame(
+    frame, *, where: str = "covariates", levels: dict[str, list[str]] | None = None
+) -> CovariateCoding:
     """`code_covariates` for an in-memory table: a pandas DataFrame (numeric, object, category or
     string columns), a dict of columns, or a plain numeric array of shape (n, q) (names ``z0, z1, ...``).
 
     This is the Python API's route: a DataFrame with text or categorical columns is dummy-coded like a
-    covariate column of the outcome table.
+    covariate column of the outcome table; ``levels`` (a fitted coding's) codes new data the same way.
     """
     if hasattr(frame, "columns") and hasattr(frame, "__getitem__") and not isinstance(frame, dict):
         columns = {}
@@ -355,9 +378,11 @@ def code_covariate_frame(frame, *, where: str = "covariates") -> CovariateCoding
             columns[str(c)] = (
                 s.to_numpy(dtype=np.float64) if kind in "biuf" else s.astype(str).to_numpy()
             )
-        return code_covariates(columns, where=where)
+        return code_covariates(columns, where=where, levels=levels)
     if isinstance(frame, dict):
-        return code_covariates({str(k): np.asarray(v) for k, v in frame.items()}, where=where)
+        return code_covariates(
+            {str(k): np.asarray(v) for k, v in frame.items()}, where=where, levels=levels
+        )
     a = np.asarray(frame)
     a = a.reshape(a.shape[0], -1) if a.ndim == 1 else a
     return code_covariates({f"z{j}": a[:, j] for j in range(a.shape[1])}, where=where)
