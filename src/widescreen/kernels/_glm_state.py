@@ -17,8 +17,9 @@ from ._newton import damped_newton
 
 FAMILIES = ("logistic", "poisson")
 TESTS = ("lr", "score")
-#: Reweighting rounds of the count variance fit (`_quadratic_variance`); the weights settle in a few.
-ITER_VARIANCE = 5
+#: Reweighting rounds of the count variance fit (`_quadratic_variance`) at most; it stops once the
+#: fitted variances change by less than 1e-12 (relative), typically within ten.
+ITER_VARIANCE = 50
 DISPERSIONS = ("fixed", "pearson", "quadratic", "sandwich")
 
 
@@ -183,7 +184,10 @@ def _quadratic_variance(y: np.ndarray, mu: np.ndarray) -> np.ndarray:
         v_new = A @ (coef / scale)
         if not np.all(v_new > 0):
             break
+        change = np.max(np.abs(v_new - v) / v)
         v = v_new
+        if change < 1e-12:
+            break
     if not np.all(v > 0):
         raise ValueError("the fitted variance of the counts is zero: the counts are fitted exactly")
     return v
