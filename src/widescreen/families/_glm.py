@@ -74,7 +74,9 @@ class _GLMFamily(Family):
             return self._prepare(response, covariates, offset)
         # The penalised model's linear predictor (``offset``) is not used: the null model is refitted
         # without penalty on the covariates and the selected columns.
-        return self._prepare(response, conditioning_columns(covariates, conditioning), None, "score")
+        return self._prepare(
+            response, conditioning_columns(covariates, conditioning), None, "score"
+        )
 
 
 class LogisticFamily(_GLMFamily):
@@ -99,7 +101,9 @@ class PoissonFamily(_GLMFamily):
     name = "poisson"
     loss = "poisson"
     columns = SCORE_COLUMNS
-    description = "count outcome: Poisson regression, score test with the variance estimated from the data"
+    description = (
+        "count outcome: Poisson regression, score test with the variance estimated from the data"
+    )
 
     def code(self, where: Where):
         return counts(where)

@@ -186,7 +186,7 @@ def pass_lambda_gc(
     test is calibrated and most features are null, above 1 under inflation (for example overdispersed
     counts under a plain Poisson test, or confounding the covariates do not remove).
     """
-    if "p_value" not in problem.family.columns:
+    if not problem.family.has_p_values:
         return None
     from ..report._stats import lambda_gc
 

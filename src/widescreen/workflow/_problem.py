@@ -159,7 +159,9 @@ class Problem:
         n = y.shape[0] if y.ndim else 0
         Z = None
         coding = None
-        if covariates is not None and (hasattr(covariates, "columns") or isinstance(covariates, dict)):
+        if covariates is not None and (
+            hasattr(covariates, "columns") or isinstance(covariates, dict)
+        ):
             # A table (DataFrame, dict of columns): text or category columns are dummy-coded.
             coding = code_covariate_frame(covariates)
             Z = coding.matrix
