@@ -10,7 +10,7 @@ import pytest
 import scipy.stats as ss
 from statsmodels.duration.hazard_regression import PHReg
 
-from widescreen.kernels import _glm
+from widescreen.kernels import _tiles
 from widescreen.kernels._cox import cox_statistics, prepare_cox
 from widescreen.store import _accel
 from widescreen.store._reader import prepare_block
@@ -42,18 +42,18 @@ def _survival(rng, n=200, p=20, ties=True):
 
 
 def _phreg_marginal(time, event, X, Z, offset):
-    """beta, se, LR chi2 of x_j from statsmodels PHReg(ties="breslow"), one feature at a time."""
+    """beta, se, LR chi2 of x_j from statsmodels PHReg(ties="breslow") joint fits on (Z, x_j)."""
     base = np.zeros(time.size) if offset is None else offset
-    if Z is not None:
-        # The covariates-only fit, whose linear predictor becomes the offset of the marginal fits.
-        null = PHReg(time, Z, status=event, ties="breslow", offset=base).fit(tol=1e-13)
-        base = Z @ null.params + base
     out = []
+    null_llf = None
+    if Z is not None:
+        null_llf = PHReg(time, Z, status=event, ties="breslow", offset=base).fit(tol=1e-13).llf
     for j in range(X.shape[1]):
-        model = PHReg(time, X[:, [j]], status=event, ties="breslow", offset=base)
+        ex = X[:, [j]] if Z is None else np.column_stack([Z, X[:, j]])
+        model = PHReg(time, ex, status=event, ties="breslow", offset=base)
         fit = model.fit(tol=1e-13)
-        lr = 2.0 * (fit.llf - model.loglike(np.zeros(1)))
-        out.append([fit.params[0], fit.bse[0], lr])
+        ll0 = model.loglike(np.zeros(1)) if Z is None else null_llf
+        out.append([fit.params[-1], fit.bse[-1], 2.0 * (fit.llf - ll0)])
     return np.array(out)
 
 
@@ -69,11 +69,14 @@ def _phreg_marginal(time, event, X, Z, offset):
 )
 def test_marginal_fits_equal_statsmodels_phreg(rng, ties, covariates, use_offset):
     X, Z, offset, time, event = _survival(rng, ties=ties)
+    X[:, 1] += 0.8 * Z[:, 0]  # a feature correlated with a covariate: the adjustment matters
     assert (np.unique(time).size < time.size) == ties
     Z = Z if covariates else None
     offset = offset if use_offset else None
     res = cox_statistics(prepare_block(X, 0), prepare_cox(time, event, Z, offset))
-    ref = _phreg_marginal(time, event, X, Z, offset)  # statsmodels PHReg, Breslow ties
+    # statsmodels PHReg, Breslow ties, joint fit on (Z, x_j): beta and its Wald se from the full fit,
+    # the partial-likelihood ratio 2 (llf_full - llf_null) and its chi-square(1) p-value
+    ref = _phreg_marginal(time, event, X, Z, offset)
     np.testing.assert_allclose(res["beta"], ref[:, 0], rtol=1e-6)
     np.testing.assert_allclose(res["std_error"], ref[:, 1], rtol=1e-6)
     np.testing.assert_allclose(res["lr_chi2"], ref[:, 2], rtol=1e-6, atol=1e-9)
@@ -89,7 +92,7 @@ def test_small_tiles_and_sample_order_do_not_matter(rng, monkeypatch):
     X, _, _, time, event = _survival(rng, n=130, p=40)
     X[:, 10:20] *= 2.5  # stronger columns need more steps: the working set shrinks
     monkeypatch.setattr(
-        _glm, "TILE_BYTES", 16 * 130 * 8
+        _tiles, "TILE_BYTES", 16 * 130 * 8
     )  # tiles of 16 columns, the last one ragged
     res = cox_statistics(prepare_block(X, 0), prepare_cox(time, event))
     ref = _phreg_marginal(time, event, X, None, None)  # statsmodels PHReg, Breslow ties

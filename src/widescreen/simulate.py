@@ -18,8 +18,10 @@ Designs (see the project's CHECKS notes; Fan & Lv 2008 and Fan, Samworth & Wu 20
     s causal features with effects of random sign, two covariates (age, batch) that shift the outcome.
 
 Outcome families (the names of ``--family``): ``linear`` (y = eta + sigma eps), ``logistic`` (a binary
-outcome), ``poisson`` (counts, log link) and ``cox`` (exponential survival times with rate exp(eta),
-independent exponential censoring).
+outcome, P(y = 1) = 1 / (1 + exp(-eta))), ``poisson`` (y ~ Poisson(exp(eta))) and ``cox`` (exponential
+survival times with rate exp(eta), independent exponential censoring), eta = the truth table's
+coefficients times the features (plus the covariate effects of ``dosage``), never clipped. On the ``hidden``
+design the Poisson and Cox coefficients are (1, 1, 1, -3 sqrt(rho)).
 
 True features sit at random positions among the p features (seeded), so no method can profit from
 their order; the truth table says where they are and which role they play.
@@ -48,7 +50,7 @@ class SimulationConfig:
     design : {"independent", "equicorrelated", "hidden", "dosage"}
     n_samples, n_features : int
     n_true : int
-        Number of true features (fixed at 5 for ``hidden``: x1..x5, or 4 for ``logistic``).
+        Number of true features (fixed at 5 for ``hidden``: x1..x5, or 4 for the GLM families).
     rho : float
         Pairwise correlation for ``equicorrelated`` and ``hidden``.
     sigma : float
@@ -109,6 +111,10 @@ def _coefficients(
         if cfg.family == "logistic":
             # GLM version: 3 * 4 * sqrt(rho) - 6 sqrt(2) * ... = 0 at rho = 0.5 (Fan, Samworth & Wu 2009).
             return np.array([4.0, 4.0, 4.0, -12.0 * r]), ("joint", "joint", "joint", "hidden")
+        if cfg.family in ("poisson", "cox"):
+            # The same cancellation on a log scale, a quarter of the logistic size so that exp(eta)
+            # stays in a sane range without any clipping (sd of eta about 1.2 at rho = 0.5).
+            return np.array([1.0, 1.0, 1.0, -3.0 * r]), ("joint", "joint", "joint", "hidden")
         return np.array([5.0, 5.0, 5.0, -15.0 * r, 1.0]), (
             "joint",
             "joint",
@@ -253,9 +259,16 @@ def _outcome(
         return {"y": eta + sigma * rng.standard_normal(n)}
     if cfg.family == "logistic":
         return {"y": (rng.random(n) < 1.0 / (1.0 + np.exp(-eta))).astype(float)}
+    # Counts and times follow the stated model exactly (no clipping of eta): the coefficients are sized
+    # so that exp(eta) stays in range, and a design that leaves it is refused rather than distorted.
+    if cfg.family in ("poisson", "cox") and np.abs(eta).max() > 30.0:
+        raise ValueError(
+            f"the linear predictor reaches {np.abs(eta).max():.1f} on the log scale; the {cfg.family} "
+            "outcome would overflow: lower n_true"
+        )
     if cfg.family == "poisson":
-        return {"y": rng.poisson(np.exp(np.clip(eta, -10, 5))).astype(float)}
-    t = rng.exponential(1.0 / np.exp(np.clip(eta, -10, 10)))
+        return {"y": rng.poisson(np.exp(eta)).astype(float)}
+    t = rng.exponential(1.0 / np.exp(eta))
     c = rng.exponential(np.median(t) * 2.0, size=n)
     return {"time": np.minimum(t, c), "event": (t <= c).astype(float)}
 

@@ -71,9 +71,10 @@ class Family(ABC):
     takes_event : bool
         Whether the response comes with an event indicator (survival).
     conditioning : {"columns", "offset", "score"}
-        How the iterative pass conditions on the selected set: project the selected columns out
-        (linear); add the current model's linear predictor as an offset (Cox, model-free); or both,
-        a score test at the current fit adjusted for the selected columns (logistic, Poisson).
+        How the iterative pass conditions on the selected set: the selected columns join the
+        adjustment set (linear: projected out; Cox: refitted with each feature); the current model's
+        linear predictor as an offset (model-free); or a score test given the covariates and the
+        selected columns at their unpenalised null fit (logistic, Poisson).
     supports_permutation : bool
         Whether the kernel computes null scores for permuted responses in the same pass.
     pre_passes : tuple of PrePass

@@ -1,4 +1,4 @@
-"""Logistic, Poisson and Cox families: marginal likelihood screening, IRLS refits, offset conditioning."""
+"""Logistic, Poisson and Cox families: covariate-adjusted likelihood screening, conditioning on the selection."""
 
 from __future__ import annotations
 
@@ -21,33 +21,40 @@ GLM_COLUMNS = ("score", "beta", "std_error", "z", "lr_chi2", "p_value", "converg
 SCORE_COLUMNS = ("score", "beta", "std_error", "z", "score_chi2", "p_value")
 
 
-def _weighted_basis(
-    C: np.ndarray, w: np.ndarray, tol: float = 1e-10
-) -> tuple[np.ndarray, np.ndarray]:
-    """Q, an orthonormal basis of W^1/2 C, and G = W^1/2 Q.
+def conditioning_columns(
+    covariates: np.ndarray | None, conditioning: np.ndarray, tol: float = 1e-10
+) -> np.ndarray:
+    """Covariates and selected columns as one full-rank adjustment set (n, r), centred.
 
-    |G' x|^2 = x' W C (C' W C)^- C' W x is the part of x's information that C explains.
+    The null fit of the conditional pass needs linearly independent columns; a selected column that the
+    covariates (or the other selected ones) already span adds nothing to the model, so a pivoted QR keeps
+    an orthonormal basis of their span, which gives the same fitted null model.
     """
     from scipy.linalg import qr
 
-    sw = np.sqrt(np.maximum(w, 1e-300))
-    q, r, _ = qr(C * sw[:, None], mode="economic", pivoting=True)
+    n = conditioning.shape[0]
+    parts = [] if covariates is None else [np.asarray(covariates, dtype=np.float64).reshape(n, -1)]
+    parts.append(np.asarray(conditioning, dtype=np.float64).reshape(n, -1))
+    A = np.hstack(parts)
+    A = A - A.mean(axis=0)
+    if A.shape[1] == 0:
+        return A
+    q, r, _ = qr(A, mode="economic", pivoting=True)
     d = np.abs(np.diag(r))
     rank = int(np.sum(d > tol * max(d.max(initial=0.0), 1e-300)))
-    q = q[:, :rank]
-    return q, np.ascontiguousarray(q * sw[:, None])
+    return np.ascontiguousarray(q[:, :rank] * np.sqrt(n))
 
 
 class _GLMFamily(Family):
-    """Marginal likelihood screening; the conditional pass is a score test given the selected set.
+    """Marginal likelihood screening adjusted for the covariates; the conditional pass given the selection.
 
-    The iterative pass conditions on the current model (Fan, Samworth & Wu 2009) through its linear
-    predictor as an offset *and* by adjusting each candidate for the selected columns: the efficient
-    Rao score statistic of x_j at the current fit, (x_j - P x_j)' (y - mu) over the information of x_j
-    net of what the covariates and the selected features explain (P: the projection in the fit's
-    weight metric). It is the one-step form of the conditional utility; without the adjustment a
-    feature correlated with the selected ones (the marginally hidden one) is ranked by its raw
-    variance and missed.
+    The marginal pass tests ``b_j = 0`` in the full model ``y ~ 1 + covariates + x_j`` (likelihood ratio,
+    every nuisance coefficient refitted per feature). The iterative pass conditions on the selected set
+    M (Fan, Samworth & Wu 2009) with the standard test given it: the Rao score test of ``b_j = 0`` in
+    ``y ~ 1 + covariates + X_M + x_j``, at the unpenalised maximum-likelihood fit of the null model
+    ``y ~ 1 + covariates + X_M`` (one matrix product per block). Ranking by it is the one-step form of
+    the conditional utility; a feature correlated with the selected ones (the marginally hidden one)
+    is judged by its information net of them.
     """
 
     columns = GLM_COLUMNS
@@ -65,21 +72,11 @@ class _GLMFamily(Family):
             )
         if conditioning is None:
             return self._prepare(response, covariates, offset)
-        from dataclasses import replace
-
-        state = self._prepare(response, covariates, offset, test="score")
-        n = response.y.size
-        parts = [np.ones((n, 1))]
-        if covariates is not None:
-            parts.append(np.asarray(covariates, dtype=np.float64).reshape(n, -1))
-        parts.append(np.asarray(conditioning, dtype=np.float64).reshape(n, -1))
-        Q, G = _weighted_basis(np.hstack(parts), state.w0)
-        # The current fit is penalised, so r = y - mu is not orthogonal to the selected columns: use
-        # r_adj = r - W C (C'WC)^- C' r (then x' r_adj = (x - P x)' r), by shifting the state's mean.
-        sw = np.sqrt(np.maximum(state.w0, 1e-300))
-        r = state.y - state.mu0
-        shift = sw * (Q @ (Q.T @ (r / sw)))
-        return replace(state, score_basis=G, mu0=state.mu0 + shift)
+        # The penalised model's linear predictor (``offset``) is not used: the null model is refitted
+        # without penalty on the covariates and the selected columns.
+        return self._prepare(
+            response, conditioning_columns(covariates, conditioning), None, "score"
+        )
 
 
 class LogisticFamily(_GLMFamily):
@@ -103,13 +100,20 @@ class PoissonFamily(_GLMFamily):
 
     name = "poisson"
     loss = "poisson"
-    description = "count outcome: marginal Poisson regression, likelihood-ratio test"
+    columns = SCORE_COLUMNS
+    description = (
+        "count outcome: Poisson regression, score test with the variance estimated from the data"
+    )
 
     def code(self, where: Where):
         return counts(where)
 
     def _prepare(self, response, covariates, offset, test="lr"):
-        return prepare_poisson(response.y, covariates, offset, test=test)
+        # Real counts are overdispersed (and a marginal model omits the other causes, which adds
+        # variance growing faster than the mean): a plain Poisson test reports noise as signal, and a
+        # single quasi-Poisson scale corrects only a variance proportional to the mean. The robust
+        # score test (Boos 1992) estimates the score's variance from the data whatever its form.
+        return prepare_poisson(response.y, covariates, offset, test="score", dispersion="quadratic")
 
     kernel = staticmethod(poisson_statistics)
 
@@ -117,14 +121,16 @@ class PoissonFamily(_GLMFamily):
 class CoxFamily(_GLMFamily):
     """Right-censored time to event; marginal Cox partial likelihood (Breslow ties).
 
-    The iterative pass conditions through the current model's linear predictor as an offset.
+    Both passes use the partial-likelihood ratio test of ``b_j = 0`` in the full model: hazard ~
+    covariates + x_j, and in the iterative pass covariates + X_M + x_j (the selected columns join the
+    refitted covariates; the cost of a fit grows with their number squared).
     """
 
     name = "cox"
     loss = "cox"
     intercept = False  # the partial likelihood has none: a shift of the linear predictor cancels
     takes_event = True
-    conditioning = "offset"
+    conditioning = "columns"
 
     def pass_columns(self, state) -> tuple[str, ...]:
         return self.columns
@@ -137,7 +143,7 @@ class CoxFamily(_GLMFamily):
                 "the permutation threshold is available for the linear family, not cox"
             )
         if conditioning is not None:
-            raise ValueError("the cox family conditions through an offset, not columns")
+            return self._prepare(response, conditioning_columns(covariates, conditioning), None)
         return self._prepare(response, covariates, offset)
 
     description = "time to event: marginal Cox proportional hazards, likelihood-ratio test"

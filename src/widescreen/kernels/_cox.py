@@ -31,9 +31,13 @@ from scipy import special
 
 from ..store import _accel
 from ..store._reader import Block
-from . import _glm
-from ._glm import check_rank, newton, sum_log
+from . import _tiles
+from ._batched import newton
+from ._cox_joint import joint_fit_tile
+from ._glm_loops import linear_predictor
+from ._glm_state import check_rank
 from ._newton import damped_newton
+from ._tiles import sum_log
 
 
 @dataclass(frozen=True)
@@ -55,6 +59,9 @@ class CoxState:
         Number of events at each distinct event time.
     deviance0 : float
         -2 log partial likelihood of the null (offset and covariates only).
+    design : ndarray of shape (n, q)
+        The covariates, centred and whitened in the null fit's information (``design`` refitted with every
+        feature: the full model ``eta = offset + design gamma + b x``); q may be 0.
     max_iter : int
     tol : float
         Convergence when the predicted deviance decrease of the next Newton step is below ``tol``.
@@ -66,12 +73,19 @@ class CoxState:
     ends: np.ndarray
     deaths: np.ndarray
     deviance0: float
+    design: np.ndarray
     max_iter: int
     tol: float
 
     @property
     def n_samples(self) -> int:
         return self.order.shape[0]
+
+    @property
+    def parts(self) -> int:
+        """Arrays whose risk-set sums one evaluation needs: exp(eta), exp(eta) v, exp(eta) v v'."""
+        k = self.design.shape[1] + 1
+        return 1 + k + k * (k + 1) // 2
 
 
 def _tie_groups(t_sorted: np.ndarray, ev_sorted: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
@@ -85,7 +99,8 @@ def _tie_groups(t_sorted: np.ndarray, ev_sorted: np.ndarray) -> tuple[np.ndarray
 
 
 def _cox_null_fit(Z, off, event, ends, deaths, max_iter: int = 100):
-    """Newton fit of the covariates-only model with step halving; returns (eta, deviance)."""
+    """Newton fit of the covariates-only model with step halving; returns (eta, deviance, design)."""
+    Zraw = Z
 
     def evaluate(gamma):
         eta = off + Z @ gamma
@@ -111,12 +126,14 @@ def _cox_null_fit(Z, off, event, ends, deaths, max_iter: int = 100):
             ell, g, H = evaluate(g0)
             return -ell, g, H
 
-        gamma, (neg_ell, _, _) = damped_newton(
+        gamma, (neg_ell, _, info) = damped_newton(
             loss, gamma, max_iter=max_iter, what="Cox null fit on the covariates"
         )
         ell = -neg_ell
-    eta = off + Z @ gamma
-    return eta - eta.max(), -2.0 * ell
+        # Whitened covariates (design' info design = I) keep the per-feature systems well conditioned.
+        Z = np.linalg.solve(np.linalg.cholesky(info), Z.T).T
+    eta = off + Zraw @ gamma
+    return eta - eta.max(), -2.0 * ell, np.ascontiguousarray(Z)
 
 
 def prepare_cox(
@@ -166,7 +183,7 @@ def prepare_cox(
     ends, deaths = _tie_groups(time[order], ev[order])
     Zs = Z[order] - Z.mean(axis=0)
     check_rank(Zs)  # centred: a constant covariate is a zero column
-    eta0, dev0 = _cox_null_fit(Zs, off[order], ev[order], ends, deaths)
+    eta0, dev0, design = _cox_null_fit(Zs, off[order], ev[order], ends, deaths)
     return CoxState(
         order=order,
         eta0=eta0,
@@ -174,6 +191,7 @@ def prepare_cox(
         ends=ends,
         deaths=deaths,
         deviance0=dev0,
+        design=design,
         max_iter=int(max_iter),
         tol=float(tol),
     )
@@ -188,22 +206,22 @@ class _CoxWorkspace:
     ``exp(eta) x^p`` (p = 0, 1, 2) whose cumulative sums are the risk-set sums, and their values at the
     event times. Reused for every step and block: fresh block-sized arrays cost page faults."""
 
-    def __init__(self, n: int, n_times: int, tile: int):
-        self.n, self.n_times, self.tile = n, n_times, tile
+    def __init__(self, n: int, n_times: int, tile: int, parts: int = 3):
+        self.n, self.n_times, self.tile, self.parts = n, n_times, tile, parts
         # Cumulative sums run over row blocks of about sqrt(n) rows: some 2 sqrt(n) array operations.
         self.rows = max(1, int(np.sqrt(n)))
         self.n_pad = -(-n // self.rows) * self.rows
         self._x = np.zeros(self.n_pad * tile)
-        self._r = np.zeros(3 * self.n_pad * tile)
-        self._s = np.zeros(3 * n_times * tile)
+        self._r = np.zeros(parts * self.n_pad * tile)
+        self._s = np.zeros(parts * n_times * tile)
         self.idx = np.arange(0)
         self.x = self._x[:0].reshape(self.n_pad, 0)
 
     @classmethod
-    def get(cls, n: int, n_times: int, tile: int) -> _CoxWorkspace:
+    def get(cls, n: int, n_times: int, tile: int, parts: int = 3) -> _CoxWorkspace:
         ws = getattr(_local, "workspace", None)
-        if ws is None or (ws.n, ws.n_times) != (n, n_times) or ws.tile < tile:
-            ws = _local.workspace = cls(n, n_times, tile)
+        if ws is None or (ws.n, ws.n_times) != (n, n_times) or ws.tile < tile or ws.parts < parts:
+            ws = _local.workspace = cls(n, n_times, tile, parts)
         return ws
 
     def load(self, tile: np.ndarray, order: np.ndarray) -> np.ndarray:
@@ -218,7 +236,7 @@ class _CoxWorkspace:
         return self.x
 
     def take(self, cols: np.ndarray) -> np.ndarray:
-        if cols.size < _glm.SHRINK * self.idx.size:
+        if cols.size < _tiles.SHRINK * self.idx.size:
             kept = self.x[:, np.searchsorted(self.idx, cols)]
             self.idx = cols
             self.x = self._x[: self.n_pad * cols.size].reshape(self.n_pad, cols.size)
@@ -327,7 +345,7 @@ def _risk_moments(st: CoxState, ws: _CoxWorkspace, b: np.ndarray | None):
         if b is None:
             np.copyto(r, np.exp(st.eta0)[:, None])
         else:
-            _glm.linear_predictor(x[:n], b, np.zeros_like(b), st.eta0, 1.0, r)
+            linear_predictor(x[:n], b, np.zeros_like(b), st.eta0, 1.0, r)
             np.exp(r, out=r)
         out = np.empty((4, x.shape[1]))
         _risk_sums(r, x[:n], st.ends, d, out)
@@ -377,6 +395,8 @@ def _evaluate(st: CoxState, ws: _CoxWorkspace, ex: np.ndarray, idx, params):
 
 
 def _fit_tile(st: CoxState, ws: _CoxWorkspace, tile: np.ndarray, dead: np.ndarray):
+    if st.design.shape[1]:
+        return joint_fit_tile(st, ws, tile, dead)
     c = tile.shape[1]
     x = ws.load(tile, st.order)
     ex = st.event @ x[: st.n_samples]  # sum of the feature over the events
@@ -423,8 +443,11 @@ def cox_statistics(block: Block, state: CoxState) -> dict[str, np.ndarray]:
             f"block at feature {block.start} has {n} samples; the Cox state was built for {state.n_samples}"
         )
     x = block.values
-    ranges = _glm.tiles(n, width)
-    ws = _CoxWorkspace.get(n, state.ends.size, max(1, ranges[0].stop - ranges[0].start))
+    parts = state.parts if state.design.shape[1] else 3
+    ranges = _tiles.tiles(n, width, max(1, parts // 3))
+    ws = _CoxWorkspace.get(
+        n, state.ends.size, max(1, ranges[0].stop - ranges[0].start), max(3, parts)
+    )
     parts = [_fit_tile(state, ws, x[:, sl], block.constant[sl]) for sl in ranges]
     fit = {key: np.concatenate([part[key] for part in parts]) for key in parts[0]}
     dead = fit["dead"]

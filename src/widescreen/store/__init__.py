@@ -17,9 +17,12 @@ from ._ingest_text import import_table
 from ._ingest_vcf import import_vcf
 from ._inspect import InspectReport, inspect_dataset
 from ._outcome import (
+    CovariateCoding,
     JoinedOutcome,
     OutcomeError,
     OutcomeTable,
+    code_covariate_frame,
+    code_covariates,
     join_outcome,
     read_outcome_table,
 )
@@ -31,6 +34,7 @@ __all__ = [
     "Block",
     "ChunkError",
     "ChunkLayout",
+    "CovariateCoding",
     "Dataset",
     "DatasetWriter",
     "FormatAttributes",
@@ -40,6 +44,8 @@ __all__ = [
     "OutcomeError",
     "OutcomeTable",
     "StoreError",
+    "code_covariate_frame",
+    "code_covariates",
     "default_chunks",
     "default_codec",
     "import_npy",

@@ -234,3 +234,155 @@ def join_outcome(store_ids: np.ndarray, table: OutcomeTable, needed: list[str]) 
         unknown_ids=tuple(table.ids[~found].tolist()),
         n_store_only=int(store_ids.size - found.sum()),
     )
+
+
+#: A categorical covariate needs at least this many samples per level on average (common practice: a
+#: level seen a handful of times gives a dummy coefficient with no information and invites separation).
+MIN_SAMPLES_PER_LEVEL = 10
+
+
+@dataclass(frozen=True)
+class CovariateCoding:
+    """Covariates as model columns: numeric columns as they are, categorical ones dummy-coded.
+
+    Attributes
+    ----------
+    matrix : ndarray of shape (n, q)
+        The design columns, float64, in the order of `names`.
+    names : tuple of str
+        One per column: the covariate's name, or ``NAME:LEVEL`` for a dummy (1 where the sample has
+        LEVEL); the first level in sorted order is the reference and has no column.
+    levels : dict of str -> list of str
+        Each categorical covariate's levels in sorted order (the first is the reference).
+    """
+
+    matrix: np.ndarray
+    names: tuple[str, ...]
+    levels: dict[str, list[str]]
+
+    def record(self) -> dict:
+        """What a manifest records: the columns and the coding of each categorical covariate."""
+        return {
+            "columns": list(self.names),
+            "categorical": {k: {"levels": v, "reference": v[0]} for k, v in self.levels.items()},
+        }
+
+
+def _is_numeric(values: np.ndarray) -> bool:
+    try:
+        values.astype(np.float64)
+    except (TypeError, ValueError):
+        return False
+    return True
+
+
+def code_covariates(
+    columns: dict[str, np.ndarray],
+    *,
+    where: str = "covariates",
+    levels: dict[str, list[str]] | None = None,
+) -> CovariateCoding:
+    """Code covariate columns (text or numbers, no missing values) as a design matrix.
+
+    A column whose every value parses as a number is numeric; any other column is categorical and
+    becomes one 0/1 column per level but the first (sorted order), the reference.
+
+    Parameters
+    ----------
+    columns : dict of str -> ndarray of shape (n,)
+        Covariate values per name, aligned on the analysed samples.
+    where : str
+        Where the values come from (a file path), for error messages.
+    levels : dict of str -> list of str, optional
+        The coding of a fitted model (`CovariateCoding.levels`): categorical columns are coded with
+        these levels, so new data (a prediction, a fold) get the same columns; a value outside them is
+        refused.
+
+    Raises
+    ------
+    OutcomeError
+        A constant numeric covariate, a categorical one with a single level, or one with more levels
+        than ``n / MIN_SAMPLES_PER_LEVEL``.
+    """
+    cols: list[np.ndarray] = []
+    names: list[str] = []
+    found: dict[str, list[str]] = {}
+    for name, raw in columns.items():
+        raw = np.asarray(raw)
+        n = raw.shape[0]
+        if levels is not None and name in levels:
+            text = raw.astype(str)
+            lv = np.asarray(levels[name], dtype=str)
+            unknown = np.setdiff1d(text, lv)
+            if unknown.size:
+                raise OutcomeError(
+                    f"{where}: covariate {name!r} has level {str(unknown[0])!r}, not among the "
+                    f"fitted levels {levels[name]}"
+                )
+            found[name] = list(levels[name])
+            for level in lv[1:]:
+                cols.append((text == level).astype(np.float64))
+                names.append(f"{name}:{level}")
+            continue
+        if raw.dtype.kind in "biuf" or (raw.dtype.kind in "UO" and _is_numeric(raw)):
+            v = raw.astype(np.float64)
+            if not np.all(np.isfinite(v)):
+                raise OutcomeError(f"{where}: covariate {name!r} has values that are not finite")
+            if n and np.all(v == v[0]):
+                raise OutcomeError(
+                    f"{where}: covariate {name!r} is constant over the analysed samples"
+                )
+            cols.append(v)
+            names.append(name)
+            continue
+        text = raw.astype(str)
+        lv = np.unique(text)
+        if lv.size < 2:
+            shown = repr(str(lv[0])) if lv.size else "none"
+            raise OutcomeError(
+                f"{where}: categorical covariate {name!r} has a single level ({shown}) over the "
+                "analysed samples"
+            )
+        most = max(2, n // MIN_SAMPLES_PER_LEVEL)
+        if lv.size > most:
+            raise OutcomeError(
+                f"{where}: categorical covariate {name!r} has {lv.size} levels for {n} samples; at "
+                f"most {most} (at least {MIN_SAMPLES_PER_LEVEL} samples per level on average) "
+                "- is it an identifier, or a number column with a stray text value?"
+            )
+        found[name] = [str(x) for x in lv]
+        for level in lv[1:]:
+            cols.append((text == level).astype(np.float64))
+            names.append(f"{name}:{level}")
+    n_rows = next(iter(columns.values())).shape[0] if columns else 0
+    matrix = np.column_stack(cols) if cols else np.empty((n_rows, 0))
+    return CovariateCoding(matrix=matrix, names=tuple(names), levels=found)
+
+
+def code_covariate_frame(
+    frame, *, where: str = "covariates", levels: dict[str, list[str]] | None = None
+) -> CovariateCoding:
+    """`code_covariates` for an in-memory table: a pandas DataFrame (numeric, object, category or
+    string columns), a dict of columns, or a plain numeric array of shape (n, q) (names ``z0, z1, ...``).
+
+    This is the Python API's route: a DataFrame with text or categorical columns is dummy-coded like a
+    covariate column of the outcome table; ``levels`` (a fitted coding's) codes new data the same way.
+    """
+    if hasattr(frame, "columns") and hasattr(frame, "__getitem__") and not isinstance(frame, dict):
+        columns = {}
+        for c in frame.columns:
+            s = frame[c]
+            if getattr(s, "isna", None) is not None and bool(s.isna().any()):
+                raise OutcomeError(f"{where}: covariate {str(c)!r} has missing values")
+            kind = getattr(s.dtype, "kind", "O")
+            columns[str(c)] = (
+                s.to_numpy(dtype=np.float64) if kind in "biuf" else s.astype(str).to_numpy()
+            )
+        return code_covariates(columns, where=where, levels=levels)
+    if isinstance(frame, dict):
+        return code_covariates(
+            {str(k): np.asarray(v) for k, v in frame.items()}, where=where, levels=levels
+        )
+    a = np.asarray(frame)
+    a = a.reshape(a.shape[0], -1) if a.ndim == 1 else a
+    return code_covariates({f"z{j}": a[:, j] for j in range(a.shape[1])}, where=where)

@@ -177,6 +177,27 @@ def _p_value_blocks(
     return blocks
 
 
+def pass_lambda_gc(
+    problem: Problem, run: RunFolder | None, result: PassResult, exclude: np.ndarray
+) -> float | None:
+    """Genomic inflation factor lambda_GC of a pass's tested features (None without p-values).
+
+    median(chi2.isf(p, 1)) / 0.4549 (common practice; `widescreen.report.lambda_gc`): about 1 when the
+    test is calibrated and most features are null, above 1 under inflation (for example overdispersed
+    counts under a plain Poisson test, or confounding the covariates do not remove).
+    """
+    if not problem.family.has_p_values:
+        return None
+    from ..report._stats import lambda_gc
+
+    width = problem.source.block_width
+    step = width * max(1, (1 << 18) // width)
+    parts = list(_p_value_blocks(run, result, exclude, step)())
+    p = np.concatenate(parts) if parts else np.empty(0)
+    p = p[np.isfinite(p)]
+    return round(float(lambda_gc(p)), 6) if p.size else None
+
+
 def _finite(v: float) -> float | None:
     """A cutoff as the manifest records it: None when nothing can pass (plain JSON has no inf)."""
     return float(v) if np.isfinite(v) else None
@@ -218,6 +239,7 @@ def apply_threshold(
         info["cutoff_p_value"] = _finite(cutoff)
     kept = np.flatnonzero(keep)
     info["n_kept"] = int(kept.size)
+    info["lambda_gc"] = pass_lambda_gc(ctx.problem, ctx.run, result, exclude)
     return kept, info
 
 

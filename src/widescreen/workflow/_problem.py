@@ -19,7 +19,14 @@ import numpy as np
 from .._config import check_choice, check_int, check_names, check_text
 from ..engine import BlockSource, as_source
 from ..families import FAMILY_NAMES, Family, Response, get_family
-from ..store import JoinedOutcome, OutcomeError, join_outcome, read_outcome_table
+from ..store import (
+    JoinedOutcome,
+    OutcomeError,
+    code_covariate_frame,
+    code_covariates,
+    join_outcome,
+    read_outcome_table,
+)
 
 
 def check_problem_fields(config) -> None:
@@ -71,6 +78,7 @@ class Problem:
         The validated response of the analysed samples (in the order of ``rows``).
     covariates : ndarray of shape (n, q) or None
     covariate_names : tuple of str
+        One per column of ``covariates``: a numeric covariate's name, or ``NAME:LEVEL`` for a dummy.
     rows : ndarray of int or None
         Rows of X of the analysed samples; None when they are all of X's rows in order.
     sample_ids : ndarray of str of shape (n,), optional
@@ -78,6 +86,9 @@ class Problem:
         How the samples were matched (recorded in the manifest as ``samples``).
     joined : JoinedOutcome, optional
         The file route's join (its table, lines and counts).
+    covariate_coding : dict
+        `widescreen.store.CovariateCoding.record`: the columns and each text covariate's levels (the
+        first, in sorted order, is the reference); recorded in the manifest as ``covariates``.
     """
 
     source: BlockSource
@@ -89,6 +100,7 @@ class Problem:
     sample_ids: np.ndarray | None = None
     samples: dict[str, Any] = field(default_factory=dict)
     joined: JoinedOutcome | None = None
+    covariate_coding: dict[str, Any] = field(default_factory=dict)
 
     @property
     def n(self) -> int:
@@ -146,7 +158,19 @@ class Problem:
         y = np.asarray(y)
         n = y.shape[0] if y.ndim else 0
         Z = None
-        if covariates is not None:
+        coding = None
+        if covariates is not None and (
+            hasattr(covariates, "columns") or isinstance(covariates, dict)
+        ):
+            # A table (DataFrame, dict of columns): text or category columns are dummy-coded.
+            coding = code_covariate_frame(covariates)
+            Z = coding.matrix
+            covariate_names = covariate_names or coding.names
+            if Z.shape[0] != n:
+                raise OutcomeError(
+                    f"covariates must have shape (n_samples, q) = ({n}, q); got {Z.shape}"
+                )
+        elif covariates is not None:
             Z = np.asarray(covariates, dtype=np.float64)
             Z = Z.reshape(-1, 1) if Z.ndim == 1 else Z
             if Z.ndim != 2 or Z.shape[0] != n:
@@ -194,6 +218,7 @@ class Problem:
             rows=rows,
             sample_ids=ids,
             samples={"n_analysed": n, "n_store": source.n_samples},
+            covariate_coding={} if coding is None else coding.record(),
         )
 
 
@@ -258,25 +283,28 @@ def load_problem(
         raise ValueError("an outcome table can only be joined to a dataset store")
     joined = join_outcome(dataset.sample_ids(), table, needed)
     resp = fam.response(joined, response, event)
-    Z = None
+    Z, names, coding = None, (), {}
     if covariates:
-        Z = np.column_stack([joined.numeric(c) for c in covariates])
-        check_covariates(Z, tuple(covariates), f"{table.path}: ")
+        # Numeric columns as they are; text columns dummy-coded (first sorted level the reference).
+        coded = code_covariates({c: joined.values[c] for c in covariates}, where=str(table.path))
+        Z, names, coding = coded.matrix, coded.names, coded.record()
+        check_covariates(Z, names, f"{table.path}: ")
     _check_response_varies(table.path, response, np.asarray(resp.y, dtype=np.float64), Z)
     rows = joined.rows
     if rows.size == source.n_samples and np.array_equal(rows, np.arange(rows.size)):
         rows = None
-    check_sample_size(joined.n, len(covariates), f"{table.path}: ")
+    check_sample_size(joined.n, len(names), f"{table.path}: ")
     return Problem(
         source=source,
         family=fam,
         response=resp,
         covariates=Z,
-        covariate_names=tuple(covariates),
+        covariate_names=names,
         rows=rows,
         sample_ids=joined.sample_ids,
         samples=joined.report(),
         joined=joined,
+        covariate_coding=coding,
     )
 
 

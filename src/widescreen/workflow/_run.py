@@ -65,6 +65,7 @@ def run(
         out, "run", config.to_dict(), dataset_record(problem), restart=restart
     ) as session:
         session.manifest["samples"] = problem.samples
+        session.manifest["covariates"] = problem.covariate_coding
         if problem.response.mapping:
             session.manifest["response_coding"] = problem.response.mapping
         session.manifest["memory_budget"] = memory_budget

@@ -11,6 +11,7 @@ import numpy as np
 from .._config import check_int, check_keep
 from ..engine import FeatureFilter, PassResult, RunFolder, read_stats
 from ..schema import RANKING
+from ._candidates import pass_lambda_gc
 from ._passes import PassContext
 from ._problem import Problem, check_problem_fields, load_problem, shortlist_size
 from ._session import open_session
@@ -202,6 +203,7 @@ def screen(
         out, "screen", config.to_dict(), dataset_record(problem), restart=restart
     ) as session:
         session.manifest["samples"] = problem.samples
+        session.manifest["covariates"] = problem.covariate_coding
         if problem.response.mapping:
             session.manifest["response_coding"] = problem.response.mapping
         keep = shortlist_size(config.shortlist, problem.n, problem.source.n_features)
@@ -220,6 +222,8 @@ def screen(
         )
         result = found.pass_result
         session.record_pass("screen", result.summary())
+        lam = pass_lambda_gc(problem, session.run, result, np.empty(0, dtype=np.int64))
+        session.manifest["lambda_gc"] = {"screen": lam}
         top = result.topk
         shortlisted = np.arange(top.index.size) < keep
         text = ranking_text(problem, session.run, result, top.index, top.score, shortlisted)
