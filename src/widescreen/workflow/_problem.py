@@ -285,6 +285,8 @@ def load_problem(
     resp = fam.response(joined, response, event)
     Z, names, coding = None, (), {}
     if covariates:
+        for c in covariates:
+            _refuse_stray_text(joined, c)
         # Numeric columns as they are; text columns dummy-coded (first sorted level the reference).
         coded = code_covariates({c: joined.values[c] for c in covariates}, where=str(table.path))
         Z, names, coding = coded.matrix, coded.names, coded.record()
@@ -306,6 +308,23 @@ def load_problem(
         joined=joined,
         covariate_coding=coding,
     )
+
+
+def _refuse_stray_text(joined: JoinedOutcome, column: str) -> None:
+    """A column mostly of numbers with a few text cells is a numeric column with typos, not a category:
+    refuse it at its first text cell (file, column, line) instead of dummy-coding every number."""
+    raw = joined.values[column]
+    is_number = np.array([_parses(v) for v in raw.tolist()], dtype=bool)
+    if 0 < (~is_number).sum() and is_number.mean() >= 0.5:
+        joined.numeric(column)  # raises, naming the line of the first text cell
+
+
+def _parses(v: str) -> bool:
+    try:
+        float(v)
+    except ValueError:
+        return False
+    return True
 
 
 def _check_response_varies(path, name: str, y: np.ndarray, Z: np.ndarray | None) -> None:
