@@ -122,8 +122,7 @@ def _main(
 ) -> None:
     """Screen very wide data on disk for features associated with an outcome.
 
-    Commands in the order of the work: import (or simulate) a store, inspect it, screen it or run
-    the whole iterative job, write the report. `widescreen demo` shows all of it on simulated data.
+    Commands in the order of the work: import (or simulate) a store, inspect it, screen it or run the whole iterative job, write the report. `widescreen demo` shows all of it on simulated data.
     """
 
 
