@@ -109,3 +109,34 @@ def test_new_data_are_coded_with_the_fitted_levels():
     np.testing.assert_array_equal(new.matrix, [[0, 1], [0, 0], [0, 1]])
     with pytest.raises(OutcomeError, match="'site' has level 'd'"):
         code_covariate_frame({"site": np.array(["a", "d"])}, levels=fitted.levels)
+
+
+def test_estimators_take_a_text_covariate_and_code_new_data_with_the_fitted_levels(rng):
+    from widescreen.api import IterativeScreeningModel, ScreeningSelector
+
+    n, p = 160, 40
+    X = rng.standard_normal((n, p))
+    batch = rng.choice(["plateA", "plateB", "plateC"], n)
+    shift = pd.Series(batch).map({"plateA": 0.0, "plateB": 1.5, "plateC": -1.0}).to_numpy()
+    y = shift + 1.2 * X[:, 3] + rng.standard_normal(n)
+    ids = [f"s{i}" for i in range(n)]
+    Xf = pd.DataFrame(X, index=ids, columns=[f"f{j}" for j in range(p)])
+    Z = pd.DataFrame({"batch": batch, "age": rng.uniform(20, 70, n)}, index=ids)
+    sel = ScreeningSelector(shortlist=5).fit(Xf, pd.Series(y, index=ids), covariates=Z)
+    assert list(sel.covariate_names_) == ["batch:plateB", "batch:plateC", "age"]
+    assert sel.covariate_levels_ == {"batch": ["plateA", "plateB", "plateC"]}
+    assert sel.ranking_[0] == 3
+    model = IterativeScreeningModel(shortlist=5, covariates=Z).fit(Xf, pd.Series(y, index=ids))
+    assert list(model.selected_) == [3]
+    # the unpenalised refit of y ~ 1 + C(batch) + age + f3 (statsmodels OLS, treatment coding) is
+    # where a single selected feature's refitted coefficients must land when the penalty leaves it
+    df = Z.assign(y=y, f3=X[:, 3])
+    ols = smf.ols("y ~ C(batch) + age + f3", df).fit()
+    eta_ref = ols.fittedvalues.to_numpy()
+    eta = model.linear_predictor(Xf, covariates=Z)
+    assert np.corrcoef(eta, eta_ref)[0, 1] > 0.99
+    # one new sample of plateC: coded with the fitted levels (two dummies), no constancy refusal
+    one = Z.iloc[[0]].assign(batch="plateC")
+    assert model.predict(Xf.iloc[[0]], covariates=one).shape == (1,)
+    with pytest.raises(ValueError, match="'batch' has level 'plateD'"):
+        model.predict(Xf.iloc[[0]], covariates=one.assign(batch="plateD"))

@@ -13,11 +13,14 @@ from ._target import no_target, read_target, target_length
 MIN_SAMPLES = 4
 
 
-def fit_inputs(estimator, X, y, covariates) -> tuple[Design, Problem, np.ndarray | None]:
+def fit_inputs(
+    estimator, X, y, covariates
+) -> tuple[Design, Problem, np.ndarray | None, dict[str, list[str]]]:
     """X, y and the covariates validated and aligned on X's samples, as a workflow problem.
 
     Covariates given to ``fit`` replace the estimator's ``covariates`` parameter. Returns the design,
-    the problem and the class labels (binary families; None otherwise).
+    the problem, the class labels (binary families; None otherwise) and the levels of the
+    categorical covariates (dummy-coded, the first level the reference).
     """
     family = get_family(estimator.family)
     design = read_design(estimator, X, reset=True)
@@ -34,8 +37,11 @@ def fit_inputs(estimator, X, y, covariates) -> tuple[Design, Problem, np.ndarray
             f"need at least {MIN_SAMPLES} samples to screen; got n_samples = {design.n}"
         )
     target = read_target(family, y)
-    Z, names = read_covariates(estimator.covariates if covariates is None else covariates, design)
-    return design, make_problem(design, family, target, Z, names), target.classes
+    Z, names, levels = read_covariates(
+        estimator.covariates if covariates is None else covariates, design
+    )
+    problem = make_problem(design, family, target, Z, names)
+    return design, problem, target.classes, levels
 
 
 def predict_covariates(estimator, design: Design, covariates, q: int) -> np.ndarray | None:
@@ -48,7 +54,7 @@ def predict_covariates(estimator, design: Design, covariates, q: int) -> np.ndar
             f"the model adjusts for {q} covariates; pass them (covariates=...) to predict and score, "
             "or give the estimator a covariates table indexed by sample id"
         )
-    Z, _ = read_covariates(given, design)
+    Z, _, _ = read_covariates(given, design, levels=getattr(estimator, "covariate_levels_", {}))
     if Z.shape[1] != q:
         raise ValueError(f"covariates have {Z.shape[1]} columns; the model adjusts for {q}")
     return Z

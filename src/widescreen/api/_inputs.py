@@ -16,7 +16,7 @@ from sklearn.utils.validation import check_array, validate_data
 
 from ..engine import ArraySource, BlockSource, StoreSource, as_source
 from ..engine import read_columns as engine_read_columns
-from ..store import Dataset
+from ..store import Dataset, code_covariate_frame
 from ._view import StoreView, _positions
 
 
@@ -139,33 +139,51 @@ def align(obj, design: Design, what: str, *, lookup: bool = False):
     return obj.iloc[pos]
 
 
-def read_covariates(covariates, design: Design) -> tuple[np.ndarray | None, tuple[str, ...]]:
-    """Covariates as a float (n, q) array aligned with X's samples, and their names.
+def read_covariates(
+    covariates, design: Design, levels: dict[str, list[str]] | None = None
+) -> tuple[np.ndarray | None, tuple[str, ...], dict[str, list[str]]]:
+    """Covariates as a float (n, q) design aligned with X's samples, their names and their coding.
+
+    A pandas table (or Series) may hold text or categorical columns: each becomes one 0/1 column per
+    level but the first (sorted order, the reference), as for the outcome table's covariates
+    (`widescreen.store.code_covariate_frame`). ``levels`` is a fitted model's coding: new data get the
+    same columns, a level outside it is refused. An array is taken as numbers, by position.
 
     A pandas table indexed by sample id may hold more samples than X (each fold of a cross-validation
     looks up its own); every sample of X must be in it.
 
     At fit, the workflow's problem refuses a constant covariate (it duplicates the intercept).
+
+    Returns
+    -------
+    Z : ndarray of shape (n, q) or None
+    names : tuple of str
+        ``NAME`` for a numeric column, ``NAME:LEVEL`` for a dummy.
+    levels : dict of str -> list of str
+        Each categorical covariate's levels, the first the reference.
     """
     if covariates is None:
-        return None, ()
+        return None, (), {}
     covariates = align(covariates, design, "covariates", lookup=True)
     if _is_pandas(covariates):
-        names = (
-            tuple(str(c) for c in covariates.columns)
-            if hasattr(covariates, "columns")
-            else (str(covariates.name if covariates.name is not None else "z0"),)
+        frame = covariates if hasattr(covariates, "columns") else covariates.to_frame(
+            name=str(covariates.name if covariates.name is not None else "z0")
         )
+        coding = code_covariate_frame(frame, where="covariates", levels=levels)
+        Z, names, found = coding.matrix, coding.names, coding.levels
     else:
-        names = ()
-    Z = check_array(
-        covariates, ensure_2d=False, dtype=np.float64, input_name="covariates", ensure_min_samples=0
-    )
-    Z = Z.reshape(Z.shape[0], -1)
+        Z = check_array(
+            covariates,
+            ensure_2d=False,
+            dtype=np.float64,
+            input_name="covariates",
+            ensure_min_samples=0,
+        )
+        Z = Z.reshape(Z.shape[0], -1)
+        names, found = tuple(f"z{j}" for j in range(Z.shape[1])), {}
     if Z.shape[0] != design.n:
         raise ValueError(f"covariates have {Z.shape[0]} rows but X has {design.n} samples")
-    names = names or tuple(f"z{j}" for j in range(Z.shape[1]))
-    return Z, names
+    return Z, names, found
 
 
 def read_columns(source: BlockSource, cols: np.ndarray) -> np.ndarray:

@@ -62,7 +62,9 @@ class IterativeScreeningModel(SelectorMixin, RegressorMixin, BaseEstimator):
     random_state : int, default=0
         Seeds the halves, the permutations and the folds.
     covariates : array-like or pandas DataFrame, optional
-        Adjusted for in every pass and unpenalised in every fit. A DataFrame indexed by sample id is
+        Adjusted for in every pass and unpenalised in every fit. Text or categorical columns of a
+        DataFrame are dummy-coded (one 0/1 column per level but the first, the reference; the levels
+        are kept in ``covariate_levels_`` and new data are coded with them). A DataFrame indexed by sample id is
         matched to X's samples by id in ``fit``, ``predict`` and ``score`` (so each cross-validation
         fold of a `StoreView` finds its own rows); an array by position. A ``covariates`` argument
         to a method replaces it for that call.
@@ -80,6 +82,11 @@ class IterativeScreeningModel(SelectorMixin, RegressorMixin, BaseEstimator):
     feature_ids_ : ndarray of str of shape (k,)
         Ids of the selected features: the store's, a DataFrame's column names, or ``x<index>``.
     covariate_coef_ : ndarray of shape (q,)
+        Coefficients of the covariate design columns, in the order of ``covariate_names_``.
+    covariate_names_ : ndarray of str of shape (q,)
+        ``NAME`` for a numeric covariate, ``NAME:LEVEL`` for a dummy of a categorical one.
+    covariate_levels_ : dict of str -> list of str
+        Levels of each categorical covariate, sorted; the first is the reference.
     mean_ : ndarray of shape (k,)
         Training means of the selected features (used for missing values).
     classes_ : ndarray of shape (2,)
@@ -182,7 +189,7 @@ class IterativeScreeningModel(SelectorMixin, RegressorMixin, BaseEstimator):
         self
         """
         config = self._config()
-        design, problem, classes = fit_inputs(self, X, y, covariates)
+        design, problem, classes, levels = fit_inputs(self, X, y, covariates)
         if config.split and problem.n < 8:
             raise ValueError(
                 f"sample splitting needs at least 8 samples; got n_samples = {problem.n}"
@@ -197,6 +204,8 @@ class IterativeScreeningModel(SelectorMixin, RegressorMixin, BaseEstimator):
             result.index, getattr(self, "feature_names_in_", None)
         )
         self.covariate_coef_ = result.covariate_coef
+        self.covariate_names_ = np.asarray(problem.covariate_names, dtype=object)
+        self.covariate_levels_ = levels
         self.mean_ = result.mean
         self.entered_ = result.entered
         self.iterations_ = result.iterations

@@ -28,7 +28,8 @@ class ScreeningSelector(SelectorMixin, BaseEstimator):
     shortlist : int or "auto", default="auto"
         Number of features kept; "auto" = floor(n / log n) (Fan & Lv 2008).
     covariates : array-like or pandas DataFrame, optional
-        Adjusted for in the screen. A DataFrame indexed by sample id is matched to X's samples by id
+        Adjusted for in the screen. Text or categorical columns of a DataFrame are dummy-coded (one
+        0/1 column per level but the first). A DataFrame indexed by sample id is matched to X's samples by id
         (for a store or a `StoreView`, so each cross-validation fold finds its own rows); an array is
         matched by position. A ``covariates`` argument to ``fit`` replaces it.
     scheduler : optional
@@ -50,6 +51,10 @@ class ScreeningSelector(SelectorMixin, BaseEstimator):
     means_ : ndarray of shape (k,)
         Training means of the kept features (what ``transform`` puts in place of a missing value).
     missing_rate_ : ndarray of shape (n_features,)
+    covariate_names_ : ndarray of str of shape (q,)
+        The covariate design columns adjusted for: ``NAME``, or ``NAME:LEVEL`` for a dummy.
+    covariate_levels_ : dict of str -> list of str
+        Levels of each categorical covariate, sorted; the first is the reference.
     n_features_in_ : int
 
     Notes
@@ -95,7 +100,7 @@ class ScreeningSelector(SelectorMixin, BaseEstimator):
         -------
         self
         """
-        design, problem, _ = fit_inputs(self, X, y, covariates)
+        design, problem, _, levels = fit_inputs(self, X, y, covariates)
         result, k = screen_once(problem, self.shortlist, scheduler=self.scheduler)
         self.statistics_ = result.stats
         self.scores_ = result.stats["score"]
@@ -103,6 +108,8 @@ class ScreeningSelector(SelectorMixin, BaseEstimator):
         self.missing_rate_ = result.stats["missing_rate"]
         self.ranking_ = result.topk.index
         self.k_ = k
+        self.covariate_names_ = np.asarray(problem.covariate_names, dtype=object)
+        self.covariate_levels_ = levels
         support = np.sort(self.ranking_)
         means = np.asarray(result.stats["mean"], dtype=np.float64)[support]
         self.means_ = np.where(np.isfinite(means), means, 0.0)  # a wholly missing column -> 0

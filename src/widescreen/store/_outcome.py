@@ -296,7 +296,7 @@ def code_covariates(
     levels : dict of str -> list of str, optional
         The coding of a fitted model (`CovariateCoding.levels`): categorical columns are coded with
         these levels, so new data (a prediction, a fold) get the same columns; a value outside them is
-        refused.
+        refused, and a numeric column may then be constant.
 
     Raises
     ------
@@ -328,7 +328,8 @@ def code_covariates(
             v = raw.astype(np.float64)
             if not np.all(np.isfinite(v)):
                 raise OutcomeError(f"{where}: covariate {name!r} has values that are not finite")
-            if n and np.all(v == v[0]):
+            # New data coded with a fitted coding (a prediction) may be one sample: no constancy rule.
+            if levels is None and n and np.all(v == v[0]):
                 raise OutcomeError(
                     f"{where}: covariate {name!r} is constant over the analysed samples"
                 )
