@@ -2,6 +2,8 @@
 
 from __future__ import annotations
 
+import json
+
 import numpy as np
 import pytest
 from typer.testing import CliRunner
@@ -60,6 +62,9 @@ def test_simulate_then_screen(tmp_path):
     )
     assert res.exit_code == 0, res.output
     assert "shortlist of 10" in res.output
+    # the inflation factor is printed as the manifest records it
+    lam = json.loads((tmp_path / "run" / "manifest.json").read_text())["lambda_gc"]["screen"]
+    assert f"lambda_GC = {lam:.4f}" in res.output
     ranking = read_tsv(tmp_path / "run" / "ranking.tsv")
     truth = read_tsv(f"{store}.truth.tsv")
     # Three strong effects among 600 noise features at n = 150: all three lead the ranking.

@@ -166,8 +166,12 @@ def read_covariates(
         return None, (), {}
     covariates = align(covariates, design, "covariates", lookup=True)
     if _is_pandas(covariates):
-        frame = covariates if hasattr(covariates, "columns") else covariates.to_frame(
-            name=str(covariates.name if covariates.name is not None else "z0")
+        frame = (
+            covariates
+            if hasattr(covariates, "columns")
+            else covariates.to_frame(
+                name=str(covariates.name if covariates.name is not None else "z0")
+            )
         )
         coding = code_covariate_frame(frame, where="covariates", levels=levels)
         Z, names, found = coding.matrix, coding.names, coding.levels

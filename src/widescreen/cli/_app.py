@@ -209,6 +209,12 @@ def budget_of(value: str | None) -> int | None:
         raise typer.BadParameter(f"--memory-budget: {exc}") from None
 
 
+def lambda_gc_line(value: float) -> str:
+    """The genomic inflation factor of a pass, as the commands print it."""
+    note = "" if 0.9 <= value <= 1.1 else " (far from 1: check covariates, structure or the family)"
+    return f"lambda_GC = {value:.4f}{note}"
+
+
 def covariates_of(value: str | None) -> tuple[str, ...]:
     """``--covariates a,b`` as a tuple of names."""
     if not value:

@@ -7,7 +7,7 @@ from typing import Annotated
 
 import typer
 
-from ._app import command
+from ._app import command, lambda_gc_line
 from ._options import at_least
 
 
@@ -34,4 +34,4 @@ def report_cmd(
     for path in files.figures:
         typer.echo(f"figure: {path}")
     if files.lambda_gc is not None:
-        typer.echo(f"lambda_GC = {files.lambda_gc:.4f}")
+        typer.echo(lambda_gc_line(files.lambda_gc))

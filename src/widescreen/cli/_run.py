@@ -6,7 +6,7 @@ from typing import Annotated
 
 import typer
 
-from ._app import budget_of, command, covariates_of, scheduler_of
+from ._app import budget_of, command, covariates_of, lambda_gc_line, scheduler_of
 from ._options import (
     CovariatesOpt,
     DropMissingOpt,
@@ -170,6 +170,10 @@ def run_cmd(
         f"{result.budget}; stopped: {result.stop_reason}; selected {result.index.size} "
         f"feature(s){': ' + shown + more if shown else ''}; model in {out / 'model.tsv'}"
     )
+    first = result.iterations[0]["threshold"] if result.iterations else []
+    lam = first[0].get("lambda_gc") if first else None
+    if lam is not None:
+        typer.echo(lambda_gc_line(lam))
     for warning in result.warnings:
         typer.echo(f"warning: {warning}", err=True)
     if report:

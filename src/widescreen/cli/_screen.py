@@ -6,7 +6,7 @@ from typing import Annotated
 
 import typer
 
-from ._app import budget_of, command, covariates_of, scheduler_of
+from ._app import budget_of, command, covariates_of, lambda_gc_line, scheduler_of
 from ._options import (
     CovariatesOpt,
     DropMissingOpt,
@@ -95,6 +95,8 @@ def screen_cmd(
             else ""
         )
     )
+    if result.lambda_gc is not None:
+        typer.echo(lambda_gc_line(result.lambda_gc))
     if report:
         from ..report import build_report
 

@@ -81,6 +81,9 @@ class ScreenResult:
     pass_result : PassResult
     problem : Problem
     run : RunFolder or None
+    lambda_gc : float or None
+        Genomic inflation factor of the pass's p-values (`screen` with a run folder; None where the
+        family has no test).
     """
 
     index: np.ndarray
@@ -91,6 +94,7 @@ class ScreenResult:
     problem: Problem
     run: RunFolder | None
     extra: dict = field(default_factory=dict)
+    lambda_gc: float | None = None
 
     @property
     def statistics(self) -> dict[str, np.ndarray] | None:
@@ -224,6 +228,7 @@ def screen(
         session.record_pass("screen", result.summary())
         lam = pass_lambda_gc(problem, session.run, result, np.empty(0, dtype=np.int64))
         session.manifest["lambda_gc"] = {"screen": lam}
+        found.lambda_gc = lam
         top = result.topk
         shortlisted = np.arange(top.index.size) < keep
         text = ranking_text(problem, session.run, result, top.index, top.score, shortlisted)
