@@ -32,7 +32,6 @@ from __future__ import annotations
 import argparse
 import sys
 import time
-from dataclasses import replace
 
 import numpy as np
 
@@ -99,13 +98,9 @@ def generate(design: str, seed: int, n: int | None = None, p: int | None = None)
 
 def problem_of(family: str, X, y, event):
     """An in-memory workflow problem (the survival event attached for Cox)."""
-    from widescreen.families import Response
-    from widescreen.workflow._problem import problem_from_arrays
+    from widescreen.workflow import Problem
 
-    prob = problem_from_arrays(X, y, family)
-    if event is not None:
-        prob = replace(prob, response=Response(y=np.asarray(y, dtype=np.float64), event=event))
-    return prob
+    return Problem.from_arrays(X, y, family=family, event=event)
 
 
 def oracle_error(family: str, X, y, event, beta) -> float:
