@@ -246,7 +246,7 @@ def simulate(
         eta = eta + 0.03 * (covariates["age"] - 45) + 0.4 * covariates["batch"]
     columns = _outcome(cfg, eta, rng)
     _write_outcome(outcome_path, sample_ids, {**columns, **covariates}, rng)
-    _write_truth(truth_path, ds.feature_ids()[true_index], true_index, beta, roles)
+    _write_truth(truth_path, ds.feature_ids_at(true_index), true_index, beta, roles)
     return Simulation(ds, outcome_path, truth_path, true_index, beta, roles)
 
 

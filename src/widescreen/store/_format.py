@@ -30,7 +30,8 @@ import zarr
 from zarr.codecs import BloscCodec, Crc32cCodec, ZstdCodec
 
 from .._version import __version__
-from . import _checksum
+from . import _checksum, _ids
+from ._ids import DuplicateFinder, StreamedColumn
 
 #: Version written by this widescreen: 2 adds per-chunk CRC-32C checksums (see `_checksum`).
 FORMAT_VERSION = 2
@@ -56,6 +57,23 @@ class StoreError(ValueError):
 
 class ChunkError(StoreError):
     """A chunk file of X is missing, truncated, moved or cannot be decoded."""
+
+
+class FeatureIdError(StoreError):
+    """A feature id (or a chromosome) a writer refused, with what and where, for importers' messages.
+
+    Attributes
+    ----------
+    kind : {"empty", "unsafe", "duplicate", "chrom"}
+    value : str
+        The id (the chromosome for ``"chrom"``).
+    positions : tuple of int
+        0-based feature positions: one, or the first two occurrences of a duplicate.
+    """
+
+    def __init__(self, message: str, kind: str, value: str, positions: tuple[int, ...]) -> None:
+        super().__init__(message)
+        self.kind, self.value, self.positions = kind, value, positions
 
 
 @dataclass(frozen=True)
@@ -94,14 +112,20 @@ def default_codec(dtype: str) -> BloscCodec:
     return BloscCodec(cname="lz4", clevel=3, shuffle="shuffle", typesize=dt.itemsize)
 
 
-def default_chunks(n_samples: int, dtype: str, n_features: int | None = None) -> tuple[int, int]:
-    """Chunk shape for X: all samples (up to a cap) times as many features as fit the target size.
+def default_chunks(
+    n_samples: int,
+    dtype: str,
+    n_features: int | None = None,
+    max_samples: int = MAX_SAMPLES_PER_CHUNK,
+) -> tuple[int, int]:
+    """Chunk shape for X: all samples (up to ``max_samples``) times as many features as fit the
+    target size.
 
     When the number of features is known and small, chunks are narrowed so that a pass still has at
     least about eight blocks to spread over the cores (but never below 256 features), and a chunk is
     never wider than the features (a store of 401 features is not written as 131,072-wide chunks).
     """
-    rows = min(max(n_samples, 1), MAX_SAMPLES_PER_CHUNK)
+    rows = min(max(n_samples, 1), int(max_samples))
     itemsize = np.dtype(dtype).itemsize
     cols = max(64, TARGET_CHUNK_BYTES // (rows * itemsize))
     if n_features is not None:
@@ -167,9 +191,11 @@ def _check_ids(ids: np.ndarray, what: str, where: str) -> None:
 class DatasetWriter:
     """Write a dataset store feature block by feature block, with bounded memory.
 
-    The store is created incomplete; `finalize` writes the feature ids and marks it complete. If the
+    The store is created incomplete; `finalize` writes what is left and marks it complete. If the
     writer is closed without `finalize` (an error, a kill), the partial store stays marked incomplete
-    and `open_dataset` refuses it.
+    and `open_dataset` refuses it. Feature ids and annotations are written chunk by chunk as blocks
+    arrive and checked without being held (`widescreen.store._ids`), so memory does not grow with p;
+    a refused id raises `FeatureIdError` from `finalize`, after every block was appended.
 
     Parameters
     ----------
@@ -184,6 +210,10 @@ class DatasetWriter:
         Chunk shape of X; `default_chunks` by default.
     source : str
         Where the data came from, recorded in the attributes.
+    max_samples_per_chunk : int
+        Above this many samples the default chunks split X over samples too (65,536; smaller in tests).
+    id_chunk : int, optional
+        Entries per chunk of the id and annotation arrays (`_ids.ID_CHUNK`; smaller in tests).
     """
 
     def __init__(
@@ -198,6 +228,8 @@ class DatasetWriter:
         source: str = "",
         overwrite: bool = False,
         annotations: bool = False,
+        max_samples_per_chunk: int = MAX_SAMPLES_PER_CHUNK,
+        id_chunk: int | None = None,
     ) -> None:
         if value_kind not in VALUE_KINDS:
             raise StoreError(f"value kind must be one of {VALUE_KINDS}; got {value_kind!r}")
@@ -216,14 +248,22 @@ class DatasetWriter:
             raise StoreError(f"{self.path}: no samples")
         self.dtype = np.dtype(dtype)
         self.value_kind = value_kind
-        self.chunks = chunks or default_chunks(self.n_samples, dtype, n_features)
+        id_chunk = _ids.ID_CHUNK if id_chunk is None else id_chunk
+        if int(max_samples_per_chunk) < 1 or int(id_chunk) < 1:
+            raise StoreError(
+                f"max_samples_per_chunk and id_chunk must be positive; got "
+                f"{max_samples_per_chunk!r} and {id_chunk!r}"
+            )
+        self.chunks = chunks or default_chunks(
+            self.n_samples, dtype, n_features, max_samples_per_chunk
+        )
         self.source = source
         self._n_written = 0
         self._capacity = n_features if n_features is not None else self.chunks[1]
-        self._feature_ids: list[np.ndarray] = []
-        self._chrom: list[np.ndarray] = []
-        self._pos: list[np.ndarray] = []
         self._annotations = annotations
+        # The first refused id or chromosome, raised by finalize (after every block, as an importer's
+        # parse errors come first).
+        self._refused: FeatureIdError | None = None
         # Rows of X arrive in blocks of arbitrary width; buffer them to whole chunks so each chunk
         # file is written exactly once.
         self._pending: list[np.ndarray] = []
@@ -249,6 +289,10 @@ class DatasetWriter:
             "samples/id", shape=(self.n_samples,), dtype=str, compressors=_CHECKED_STRINGS
         )
         ids[:] = sample_ids
+        self._ids = StreamedColumn(self.group, "features/id", str, _CHECKED_STRINGS, id_chunk)
+        self._chrom = StreamedColumn(self.group, "features/chrom", str, _CHECKED_STRINGS, id_chunk)
+        self._pos = StreamedColumn(self.group, "features/pos", "int64", _CHECKED_NUMBERS, id_chunk)
+        self._dups = DuplicateFinder(self.path / ".id-check")
 
     def _write_attrs(self, *, complete: bool, n_features: int) -> None:
         attrs = FormatAttributes(
@@ -284,14 +328,53 @@ class DatasetWriter:
         ids = np.asarray(feature_ids, dtype=str)
         if ids.size != block.shape[1]:
             raise StoreError(f"{self.path}: {block.shape[1]} columns but {ids.size} feature ids")
-        self._feature_ids.append(ids)
+        self._check_block_ids(ids)
+        at = self._ids.n_written + self._ids.n_held
+        self._ids.add(ids)
+        self._dups.add(ids)
         if self._annotations:
-            self._chrom.append(np.asarray(chrom, dtype=str))
-            self._pos.append(np.asarray(pos, dtype=np.int64))
+            chrom = np.asarray(chrom, dtype=str)
+            bad = unsafe_id(chrom) if self._refused is None else None
+            if bad is not None:
+                self._refused = FeatureIdError(
+                    f"{self.path}: chromosome {str(chrom[bad])!r} of feature {str(ids[bad])!r} "
+                    f"holds {describe_unsafe(str(chrom[bad]))}",
+                    "chrom",
+                    str(chrom[bad]),
+                    (at + bad,),
+                )
+            self._chrom.add(chrom)
+            self._pos.add(np.asarray(pos, dtype=np.int64))
         self._pending.append(block.astype(self.dtype, copy=False))
         self._pending_cols += block.shape[1]
         if self._pending_cols >= self.chunks[1]:
             self._flush(final=False)
+
+    def _check_block_ids(self, ids: np.ndarray) -> None:
+        """Note the first empty or unsafe id (an empty one first, as `_check_ids` orders them)."""
+        at = self._ids.n_written + self._ids.n_held
+        if ids.size == 0 or (self._refused is not None and self._refused.kind == "empty"):
+            return
+        where = str(self.path)
+        empty = np.flatnonzero(np.strings.str_len(as_unicode(ids)) == 0)
+        if empty.size:
+            i = at + int(empty[0])
+            self._refused = FeatureIdError(
+                f"{where}: empty feature id at position {i + 1}", "empty", "", (i,)
+            )
+            return
+        if self._refused is not None:
+            return
+        bad = unsafe_id(ids)
+        if bad is not None:
+            v = str(ids[bad])
+            self._refused = FeatureIdError(
+                f"{where}: feature id {v!r} at position {at + bad + 1} holds "
+                f"{describe_unsafe(v)}, which would break the output tables",
+                "unsafe",
+                v,
+                (at + bad,),
+            )
 
     def _flush(self, *, final: bool) -> None:
         if not self._pending:
@@ -331,22 +414,7 @@ class DatasetWriter:
             raise StoreError(f"{self.path}: no features were written")
         if self._capacity != p:
             self.X.resize((self.n_samples, p))
-        ids = np.concatenate(self._feature_ids)
-        _check_ids(ids, "feature", str(self.path))
-        _write_strings(self.group, "features/id", ids)
-        if self._annotations:
-            chrom = np.concatenate(self._chrom)
-            bad = unsafe_id(chrom)
-            if bad is not None:
-                raise StoreError(
-                    f"{self.path}: chromosome {str(chrom[bad])!r} of feature {str(ids[bad])!r} "
-                    f"holds {describe_unsafe(str(chrom[bad]))}"
-                )
-            _write_strings(self.group, "features/chrom", chrom)
-            pos = self.group.create_array(
-                "features/pos", shape=(p,), dtype="int64", compressors=_CHECKED_NUMBERS
-            )
-            pos[:] = np.concatenate(self._pos)
+        self._finish_ids(p)
         rows, cols = self.chunks
         grid = (-(-self.n_samples // rows), -(-p // cols))
         table = np.zeros(grid, dtype=np.uint32)
@@ -359,6 +427,30 @@ class DatasetWriter:
         arr[:] = table
         self._write_attrs(complete=True, n_features=p)
         return open_dataset(self.path)
+
+    def _finish_ids(self, p: int) -> None:
+        """Write the ids' and annotations' last chunks; raise the first refused id or duplicate."""
+        try:
+            if self._refused is not None and self._refused.kind != "chrom":
+                raise self._refused
+            self._ids.finish(p)
+            ids = self.group["features/id"]
+            dup = self._dups.find(lambda at: as_unicode(ids.get_coordinate_selection(at)))
+            if dup is not None:
+                v, a, b = dup
+                raise FeatureIdError(
+                    f"{self.path}: duplicate feature id {v!r} at positions {a + 1} and {b + 1}",
+                    "duplicate",
+                    v,
+                    (a, b),
+                )
+            if self._refused is not None:
+                raise self._refused
+            if self._annotations:
+                self._chrom.finish(p)
+                self._pos.finish(p)
+        finally:
+            self._dups.close()
 
     def abort(self) -> None:
         """Remove the partial store."""
@@ -409,18 +501,6 @@ def as_unicode(values) -> np.ndarray:
 #: Codecs after the serialiser of the id and annotation arrays: compressed, then checksummed.
 _CHECKED_STRINGS = [ZstdCodec(level=0), Crc32cCodec()]
 _CHECKED_NUMBERS = [ZstdCodec(level=0), Crc32cCodec()]
-
-
-def _write_strings(group: zarr.Group, name: str, values: np.ndarray) -> None:
-    # Chunked so that ten million ids do not become one huge object.
-    arr = group.create_array(
-        name,
-        shape=values.shape,
-        dtype=str,
-        chunks=(min(max(values.size, 1), 1_048_576),),
-        compressors=_CHECKED_STRINGS,
-    )
-    arr[:] = values
 
 
 #: Arrays of a store besides X: (node, required).
@@ -494,11 +574,22 @@ class Dataset:
         return np.asarray(self._read(_checksum.TABLE, slice(None)), dtype=np.uint32)
 
     def _read(self, node: str, sel) -> np.ndarray:
-        """Read part of a 1- or 2-dimensional node, naming the node if it is damaged."""
+        """Read part of a 1- or 2-dimensional node, naming the node if it is damaged.
+
+        Coordinates (sorted) of a 1-d node are read one chunk at a time, so at most one decoded chunk
+        is held whatever the array's length.
+        """
         try:
             arr = self.group[node]
             if isinstance(sel, np.ndarray):
-                return arr.get_coordinate_selection(sel)
+                if arr.ndim != 1 or sel.size < 2:
+                    return arr.get_coordinate_selection(sel)
+                step = int(arr.chunks[0])
+                cut = np.flatnonzero(np.diff(sel // step)) + 1
+                parts = [arr.get_coordinate_selection(part) for part in np.split(sel, cut)]
+                if arr.dtype.kind in "OTU" or str(arr.dtype).startswith("Str"):
+                    return as_unicode(np.concatenate([as_unicode(x) for x in parts]))
+                return np.concatenate(parts)
             return arr[sel]
         except Exception as exc:  # zarr raises several types for damaged chunks
             raise StoreError(
@@ -516,13 +607,23 @@ class Dataset:
     def feature_ids(self, start: int = 0, stop: int | None = None) -> np.ndarray:
         return self._ids("features/id", slice(start, stop), "feature", start)
 
+    @property
+    def has_annotations(self) -> bool:
+        """Whether the store has chromosome and position annotations (reads none of them)."""
+        g = self.group
+        return "features/chrom" in g and "features/pos" in g
+
     def feature_ids_at(self, index) -> np.ndarray:
-        """Ids of the given features, reading only their entries (memory independent of p)."""
+        """Ids of the given features, reading only their entries (memory independent of p).
+
+        Read one chunk of ids at a time, so at most one decoded chunk is held whatever p is.
+        """
         index = np.asarray(index, dtype=np.int64)
         if index.size == 0:
             return np.empty(0, dtype="U1")
         order = np.argsort(index, kind="stable")
-        vals = self._ids("features/id", index[order], "feature", index[order])
+        srt = index[order]
+        vals = self._ids("features/id", srt, "feature", srt)
         out = np.empty_like(vals)
         out[order] = vals
         return out

@@ -5,6 +5,7 @@ from __future__ import annotations
 import gzip
 import os
 import queue
+import tempfile
 import threading
 import zlib
 from collections.abc import Callable
@@ -13,6 +14,7 @@ import numpy as np
 
 from ._format import (
     MAX_SAMPLES_PER_CHUNK,
+    FeatureIdError,
     StoreError,
     default_chunks,
     describe_unsafe,
@@ -64,6 +66,54 @@ def check_unique(ids: np.ndarray, where_fn: Callable[[int], str], src: str, what
         raise IngestError(
             f"{src}: duplicate {what} id {str(ids[j])!r} at {where_fn(i)} and {where_fn(j)}"
         )
+
+
+class LineLog:
+    """The input line (or any int64 label) of every feature, spilled to a temporary file.
+
+    Importers name lines in their messages about feature ids; holding one int64 per feature would
+    grow with p, so the labels go to disk as they come and are read back by position for a message.
+    """
+
+    def __init__(self, near: str | os.PathLike) -> None:
+        folder = os.path.dirname(os.path.abspath(os.fspath(near))) or "."
+        self.file = tempfile.TemporaryFile(dir=folder, prefix=".ingest-lines-")
+        self.n = 0
+
+    def add(self, labels) -> None:
+        labels = np.asarray(labels, dtype=np.int64)
+        self.file.write(memoryview(np.ascontiguousarray(labels)).cast("B"))
+        self.n += labels.size
+
+    def at(self, i: int) -> int:
+        """The label of feature ``i`` (0-based)."""
+        self.file.flush()
+        out = np.empty(1, dtype=np.int64)
+        _pread_exact(self.file.fileno(), out, 8 * int(i))
+        return int(out[0])
+
+    def close(self) -> None:
+        self.file.close()
+
+
+def id_error(exc: FeatureIdError, where_fn: Callable[[int], str], src: str) -> StoreError:
+    """A writer's refused feature id as an importer says it: the file and the lines of the id.
+
+    Messages as `check_unique` words them; a refused chromosome keeps the writer's message.
+    """
+    if exc.kind == "duplicate":
+        i, j = exc.positions
+        return IngestError(
+            f"{src}: duplicate feature id {exc.value!r} at {where_fn(i)} and {where_fn(j)}"
+        )
+    if exc.kind == "unsafe":
+        return IngestError(
+            f"{src}: {where_fn(exc.positions[0])}: feature id {exc.value!r} holds "
+            f"{describe_unsafe(exc.value)}, which would break the output tables"
+        )
+    if exc.kind == "empty":
+        return IngestError(f"{src}: {where_fn(exc.positions[0])}: empty feature id")
+    return exc
 
 
 def read_columns(

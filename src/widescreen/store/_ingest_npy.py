@@ -25,8 +25,15 @@ from pathlib import Path
 
 import numpy as np
 
-from ._format import MISSING_INT8, Dataset, DatasetWriter
-from ._ingest_base import IngestError, Progress, check_unique, chunk_shape, read_columns
+from ._format import MISSING_INT8, Dataset, DatasetWriter, FeatureIdError
+from ._ingest_base import (
+    IngestError,
+    Progress,
+    check_unique,
+    chunk_shape,
+    id_error,
+    read_columns,
+)
 
 #: Bytes of X read per group of feature columns.
 MEMORY_BUDGET = 128 * 2**20
@@ -61,6 +68,63 @@ def read_ids(ids, expected: int, what: str, default_prefix: str) -> np.ndarray:
         raise IngestError(f"{where}: empty {what} id on line {empty[0] + 1}")
     check_unique(arr, lambda i: f"line {i + 1}", where, what)
     return arr
+
+
+class _FeatureIds:
+    """Feature ids handed out block by block, in order, without holding them all.
+
+    ``None`` makes ``f1..fp`` per block; a text file (one id per line) is counted first, then read a
+    block of lines at a time; a sequence given in memory is checked whole by `read_ids`. Duplicates
+    and unsafe ids are found by the store writer (`id_error` turns them into this file's lines).
+    """
+
+    def __init__(self, ids, expected: int) -> None:
+        self.expected = expected
+        self.where = "the given list"
+        self.file = None
+        self.arr = None
+        if isinstance(ids, (str, os.PathLike)):
+            self.where = str(ids)
+            n = _count_lines(self.where)
+            if n != expected:
+                raise IngestError(f"{self.where}: {n} feature ids for {expected} features")
+            self.file = open(ids, "rb")
+        elif ids is not None:
+            self.arr = read_ids(ids, expected, "feature", "f")
+
+    def take(self, start: int, stop: int) -> np.ndarray:
+        if self.arr is not None:
+            return self.arr[start:stop]
+        if self.file is None:
+            return np.char.add("f", np.arange(start + 1, stop + 1).astype(str))
+        out = []
+        for j in range(start, stop):
+            raw = self.file.readline().rstrip(b"\n").rstrip(b"\r")
+            try:
+                text = raw.decode("utf-8")
+            except UnicodeDecodeError as exc:
+                raise IngestError(
+                    f"{self.where}: line {j + 1}, column {exc.start + 1}: not UTF-8 text "
+                    f"(byte 0x{raw[exc.start]:02x})"
+                ) from None
+            if not text:
+                raise IngestError(f"{self.where}: empty feature id on line {j + 1}")
+            out.append(text)
+        return np.asarray(out, dtype=str)
+
+    def close(self) -> None:
+        if self.file is not None:
+            self.file.close()
+
+
+def _count_lines(path: str) -> int:
+    """Lines of a text file (a last line without a newline counts), read 1 MiB at a time."""
+    n, last = 0, b"\n"
+    with open(path, "rb") as fh:
+        while piece := fh.read(2**20):
+            n += piece.count(b"\n")
+            last = piece[-1:]
+    return n + (last != b"\n")
 
 
 def _plan(
@@ -105,7 +169,7 @@ def _convert(block: np.ndarray, value_kind: str, out_dtype: str, src: str, j0: i
                 )
                 raise IngestError(
                     f"{src}: row {i + 1} (sample {str(sid[i])!r}), column {j0 + j + 1} "
-                    f"(feature {str(fid[j0 + j])!r}): value {v} {why}"
+                    f"(feature {str(fid[j])!r}): value {v} {why}"
                 )
         out = block.astype(out_dtype)
         if block.dtype == np.int8:
@@ -121,7 +185,7 @@ def _convert(block: np.ndarray, value_kind: str, out_dtype: str, src: str, j0: i
         i, j = np.argwhere(~ok)[0]
         raise IngestError(
             f"{src}: row {i + 1} (sample {str(sid[i])!r}), column {j0 + j + 1} "
-            f"(feature {str(fid[j0 + j])!r}): value {block[i, j]} is not a dosage "
+            f"(feature {str(fid[j])!r}): value {block[i, j]} is not a dosage "
             f"(0, 1, 2, or {'NaN' if block.dtype.kind == 'f' else MISSING_INT8} for missing)"
         )
     out = np.where(miss, MISSING_INT8, block).astype(np.int8)
@@ -183,7 +247,32 @@ def import_npy(
     del mm  # drop the map: values are read with positioned reads below
     value_kind, out_dtype = _plan(src_dtype, value_kind, dtype, src)
     sid = read_ids(sample_ids, n, "sample", "s")
-    fid = read_ids(feature_ids, p, "feature", "f")
+    fid = _FeatureIds(feature_ids, p)
+    try:
+        return _write(
+            src,
+            store,
+            sid,
+            fid,
+            (n, p),
+            (src_dtype, offset, fortran),
+            value_kind,
+            out_dtype,
+            chunk_features,
+            overwrite,
+            progress,
+        )
+    except FeatureIdError as exc:
+        raise id_error(exc, lambda i: f"line {i + 1}", fid.where) from None
+    finally:
+        fid.close()
+
+
+def _write(
+    src, store, sid, fid, shape, layout, value_kind, out_dtype, chunk_features, overwrite, progress
+) -> Dataset:
+    """Write the store one group of columns at a time (see `import_npy`)."""
+    (n, p), (src_dtype, offset, fortran) = shape, layout
 
     chunks = chunk_shape(n, out_dtype, chunk_features, p)
     width = chunks[1]
@@ -208,10 +297,11 @@ def import_npy(
             raw = read_columns(fd, offset, (n, p), src_dtype, g0, g1, fortran=fortran)
             for j0 in range(g0, g1, width):
                 j1 = min(j0 + width, g1)
+                ids = fid.take(j0, j1)
                 block = _convert(
-                    raw[:, j0 - g0 : j1 - g0], value_kind, out_dtype, src, j0, sid, fid
+                    raw[:, j0 - g0 : j1 - g0], value_kind, out_dtype, src, j0, sid, ids
                 )
-                writer.append(block, fid[j0:j1])
+                writer.append(block, ids)
                 if progress is not None:
                     progress(j1, p)
             del raw  # one group at a time: drop it before reading the next

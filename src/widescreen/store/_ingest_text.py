@@ -42,13 +42,15 @@ from pathlib import Path
 
 import numpy as np
 
-from ._format import Dataset, DatasetWriter, check_new_store
+from ._format import Dataset, DatasetWriter, FeatureIdError, check_new_store
 from ._ingest_base import (
     IngestError,
+    LineLog,
     Progress,
     Source,
     check_unique,
     chunk_shape,
+    id_error,
     read_columns,
 )
 from ._ingest_fields import (
@@ -307,8 +309,8 @@ class _FeatureRows:
         self.parts: list[np.ndarray] = []
         self.n_pending = 0
         self.pending_ids: list[np.ndarray] = []
-        self.all_ids: list[np.ndarray] = []
-        self.all_lines: list[np.ndarray] = []
+        # The line of every feature goes to disk (for messages), not the ids: memory flat in p.
+        self.lines = LineLog(store)
 
     def on_header(self, header: np.ndarray) -> None:
         store, name, value_kind, dtype, chunk_features, overwrite = self.args
@@ -323,8 +325,7 @@ class _FeatureRows:
         self.parts.append(values.astype(self.writer.dtype, copy=False))
         self.n_pending += values.size
         self.pending_ids.append(ids)
-        self.all_ids.append(ids)
-        self.all_lines.append(lines)
+        self.lines.add(lines)
         if self.n_pending >= self.n * self.width:
             self._emit()
 
@@ -347,13 +348,13 @@ class _FeatureRows:
         name = self.args[1]
         if self.parts:
             self._emit()
-        ids = np.concatenate(self.all_ids)
-        lines = np.concatenate(self.all_lines)
-        check_unique(ids, lambda i: f"line {lines[i] + 1}", name, "feature")
-        return self.writer.finalize()
+        try:
+            return self.writer.finalize()
+        except FeatureIdError as exc:
+            raise id_error(exc, lambda i: f"line {self.lines.at(i) + 1}", name) from None
 
     def close(self) -> None:
-        pass
+        self.lines.close()
 
     def abort(self) -> None:
         if self.writer is not None:

@@ -48,8 +48,17 @@ import re
 
 import numpy as np
 
-from ._format import MISSING_INT8, Dataset, DatasetWriter, check_new_store
-from ._ingest_base import IngestError, Progress, Source, check_unique, chunk_shape, decode_utf8
+from ._format import MISSING_INT8, Dataset, DatasetWriter, FeatureIdError, check_new_store
+from ._ingest_base import (
+    IngestError,
+    LineLog,
+    Progress,
+    Source,
+    check_unique,
+    chunk_shape,
+    decode_utf8,
+    id_error,
+)
 
 #: Bytes of VCF text parsed per batch.
 BATCH_BYTES = 4 * 2**20
@@ -613,12 +622,13 @@ def import_vcf(
         raise IngestError(f"{name}: no such file")
     check_new_store(store, overwrite, IngestError)
     source = Source(name)
+    lines = LineLog(store)
     try:
         samples, head, n_header = _read_header(source, name)
         parser = _Parser(name, samples, id_from, multiallelic, values, pass_only)
         batches = _parsed(source, head, parser, n_header + 1, progress)
         first, chunks = _first_chunk(batches, source, samples.size, parser.dtype, chunk_features)
-        all_ids, all_lines = [], []
+        n_sites = 0
         with DatasetWriter(
             store,
             samples,
@@ -629,30 +639,31 @@ def import_vcf(
             overwrite=overwrite,
             annotations=True,
         ) as writer:
-            for rows, ids, chrom, pos, lines in itertools.chain(first, batches):
+            for rows, ids, chrom, pos, at in itertools.chain(first, batches):
                 writer.append(rows.T, ids, chrom, pos)
-                all_ids.append(np.asarray(ids, dtype=str))
-                all_lines.append(lines)
-            if not all_ids:
+                lines.add(at)
+                n_sites += len(ids)
+            if not n_sites:
                 why = (
                     f" ({parser.n_not_pass} site(s) left out: FILTER not PASS)"
                     if parser.n_not_pass
                     else ""
                 )
                 raise IngestError(f"{name}: no variant lines after the header{why}")
-            ids = np.concatenate(all_ids)
-            lines = np.concatenate(all_lines)
             try:
-                check_unique(ids, lambda i: f"line {lines[i]}", name, "feature")
-            except IngestError as exc:
+                return writer.finalize()
+            except FeatureIdError as exc:
+                err = id_error(exc, lambda i: f"line {lines.at(i)}", name)
+                if err is exc:  # a chromosome: the writer's message
+                    raise
                 hint = (
                     ""
                     if id_from == "position"
                     else " (id_from='position' builds ids from CHROM:POS:REF:ALT)"
                 )
-                raise IngestError(f"{exc}{hint}") from None
-            return writer.finalize()
+                raise IngestError(f"{err}{hint}") from None
     finally:
+        lines.close()
         source.close()
 
 

@@ -189,7 +189,7 @@ def inspect_dataset(path: str | os.PathLike, *, sample_blocks: int | None = None
         format_version=ds.attrs.format_version,
         creator=ds.attrs.creator,
         source=ds.attrs.source,
-        has_annotations=ds.annotations() is not None,
+        has_annotations=ds.has_annotations,
         integrity=(
             "CRC-32C per chunk, chunk positions recorded"
             if ds.checksummed
