@@ -18,7 +18,7 @@ from ._runfolder import RunFolder, RunFolderError, RunLock, atomic_write, diff_c
 from ._scheduler import Executor, WorkerAccessError, execute, n_cores, open_executor
 from ._source import ArraySource, BlockSource, StoreSource, as_source
 from ._spec import ENGINE_COLUMNS, FeatureFilter, PassResult, PassSpec
-from ._topk import TopK, block_topk, merge_all, merge_topk
+from ._topk import MultiTopK, TopK, block_topk, block_topk_multi, merge_all, merge_multi, merge_topk
 
 __all__ = [
     "ENGINE_COLUMNS",
@@ -30,6 +30,7 @@ __all__ = [
     "FeatureFilter",
     "MemoryBudgetError",
     "MemoryPlan",
+    "MultiTopK",
     "PassResult",
     "PassSpec",
     "RunFolder",
@@ -42,10 +43,12 @@ __all__ = [
     "as_source",
     "atomic_write",
     "block_topk",
+    "block_topk_multi",
     "build_pass",
     "diff_config",
     "execute",
     "merge_all",
+    "merge_multi",
     "merge_topk",
     "n_cores",
     "open_executor",

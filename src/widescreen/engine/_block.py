@@ -161,7 +161,8 @@ def write_stats(out_dir: str | Path, block: int, stats: dict[str, np.ndarray], w
     """
     layout = PassLayout(Path(out_dir))
     for c, v in stats.items():
-        atomic_write(layout.stats_chunk(c, block), stats_chunk_bytes(v, width), sync=False)
+        chunk = layout.stats_chunk(c, block, wide=v.ndim == 2)
+        atomic_write(chunk, stats_chunk_bytes(v, width), sync=False)
 
 
 def write_marker(out_dir: str | Path, record: dict) -> None:

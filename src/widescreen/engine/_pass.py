@@ -36,16 +36,20 @@ from ._memory import (
     plan_memory,
     process_baseline,
 )
+from ._multiblock import process_multi_block, read_multi_marker
 from ._reduce import add_tree
 from ._runfolder import RunFolder, atomic_write
 from ._scheduler import Executor, n_cores, open_executor
 from ._source import BlockSource
 from ._spec import ENGINE_COLUMNS, FeatureFilter, PassResult, PassSpec
-from ._topk import TopK, merge_all
+from ._topk import MultiTopK, TopK, merge_all, merge_multi
 
 
-def _merge_records(records: list[dict], *, k: int, n_nulls: int) -> dict:
-    top = merge_all([r["topk"] for r in records], k, n_nulls)
+def _merge_records(records: list[dict], *, k: int, n_nulls: int, n_responses: int = 0) -> dict:
+    if n_responses:
+        top = merge_multi([r["topk"] for r in records], k, n_responses)
+    else:
+        top = merge_all([r["topk"] for r in records], k, n_nulls)
     return {
         "topk": top,
         "n_filtered": sum(r["n_filtered"] for r in records),
@@ -80,14 +84,15 @@ def build_pass(
     src_key, spec_key = f"{name}-source", f"{name}-spec-{spec.sub_block}"
     graph: dict = {}
     block_keys = []
+    task = process_multi_block if spec.n_responses else process_block
     for i in blocks:
         key = (f"{name}-block", i)
-        graph[key] = (process_block, src_key, spec_key, i, out_dir)
+        graph[key] = (task, src_key, spec_key, i, out_dir)
         block_keys.append(key)
     if block_keys:
         graph[src_key] = source
         graph[spec_key] = spec
-    merge = partial(_merge_records, k=spec.keep, n_nulls=spec.n_nulls)
+    merge = partial(_merge_records, k=spec.keep, n_nulls=spec.n_nulls, n_responses=spec.n_responses)
     final = add_tree(graph, block_keys, merge, f"{name}-merge", split_every)
     return graph, block_keys, final
 
@@ -112,7 +117,14 @@ def _prepare_out_dir(run: RunFolder, source: BlockSource, spec: PassSpec) -> tup
     if d.exists():
         shutil.rmtree(d)
     d.mkdir(parents=True)
-    create_stats(layout, spec.all_columns, source.n_features, source.block_width)
+    create_stats(
+        layout,
+        spec.all_columns,
+        source.n_features,
+        source.block_width,
+        wide=spec.wide_columns,
+        n_responses=spec.n_responses,
+    )
     layout.done.mkdir()
     meta = PassMeta(
         token=token,
@@ -152,8 +164,8 @@ def _choose_sub_block(
         keep=spec.keep,
         max_threads=ex.threads_per_worker,
         max_sub_block=cap,
-        n_responses=spec.n_nulls + 1,
-        n_columns=len(spec.all_columns),
+        n_responses=spec.lhs_rows if spec.n_responses else spec.n_nulls + 1,
+        n_columns=len(spec.all_columns) + len(spec.wide_columns) * max(spec.n_responses - 1, 0),
         temporaries=spec.temporaries,
         prefer_sub_block=recorded,
         baseline=baseline,
@@ -243,7 +255,10 @@ def _reused_blocks(
         return reused
     for i in sorted(run.done_blocks(spec.name)):
         if 0 <= i < source.n_blocks:
-            rec = read_marker(out_dir, i, spec.keep, source.bounds(i), spec.all_columns)
+            if spec.n_responses:
+                rec = read_multi_marker(out_dir, i, spec, source.bounds(i))
+            else:
+                rec = read_marker(out_dir, i, spec.keep, source.bounds(i), spec.all_columns)
             if rec is not None:
                 reused.append(rec)
     return reused
@@ -308,7 +323,10 @@ def _finish(
     """Merge the computed and reused blocks' top lists, gather statistics and kept values."""
     spec = computed.spec
     merged = _merge_records(
-        [r for r in (computed.final, *reused) if r is not None], k=spec.keep, n_nulls=spec.n_nulls
+        [r for r in (computed.final, *reused) if r is not None],
+        k=spec.keep,
+        n_nulls=spec.n_nulls,
+        n_responses=spec.n_responses,
     )
     stats = None
     if out_dir is None:
@@ -320,7 +338,9 @@ def _finish(
         )
     t_fetch = time.perf_counter()
     top = merged["topk"]
-    if top.values is None and spec.keep_values and top.index.size:
+    if isinstance(top, MultiTopK):
+        pass  # the caller reads the columns its responses need (`widescreen.engine.read_columns`)
+    elif top.values is None and spec.keep_values and top.index.size:
         values = _kept_values(source, spec, top, computed.final, out_dir, computed.fetch_threads)
         top = replace(top, values=values)
     t_fetch = time.perf_counter() - t_fetch if reused else 0.0

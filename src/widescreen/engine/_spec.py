@@ -3,7 +3,7 @@
 from __future__ import annotations
 
 from collections.abc import Callable
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 from typing import Any
 
 import numpy as np
@@ -117,6 +117,22 @@ class PassSpec:
         return int(getattr(self.state, "n_nulls", 0))
 
     @property
+    def n_responses(self) -> int:
+        """K for a pass over a response matrix (statistics of shape (width, K)); 0 otherwise."""
+        return int(getattr(self.state, "n_responses", 0))
+
+    @property
+    def wide_columns(self) -> tuple[str, ...]:
+        """The statistics with one value per response (the kernel's, in a response-matrix pass)."""
+        return self.columns if self.n_responses else ()
+
+    @property
+    def lhs_rows(self) -> int:
+        """Rows of the kernel's left factor (products per feature), for the memory plan."""
+        lhs = getattr(self.state, "lhs_t", None)
+        return int(lhs.shape[0]) if lhs is not None else self.n_nulls + 1
+
+    @property
     def n_analysed(self) -> int | None:
         return None if self.rows is None else len(self.rows)
 
@@ -153,6 +169,10 @@ class PassResult:
         Time spent reading the kept values of features from reused blocks.
     notes : tuple of str
         Anything a reader of the results should know (for example mixed sub-block widths).
+    response : int, optional
+        In a pass over K responses: which response this result is about (`for_response`). The
+        merged result of such a pass has ``topk`` a `MultiTopK`, statistics of shape
+        (n_features, K) for the kernel's columns and ``n_degenerate``, ``n_nonfinite`` of shape (K,).
     """
 
     name: str
@@ -172,6 +192,32 @@ class PassResult:
     notes: tuple[str, ...] = ()
     n_degenerate: int = 0
     n_nonfinite: int = 0
+    response: int | None = None
+
+    @property
+    def n_responses(self) -> int:
+        """K for the merged result of a pass over K responses; 0 otherwise."""
+        return int(getattr(self.topk, "n_responses", 0)) if self.response is None else 0
+
+    def for_response(self, k: int) -> PassResult:
+        """The result of response ``k`` of a pass over K responses, shaped as a one-response result
+        (its top list, its statistics of shape (n_features,), its counts); statistics in a run folder
+        are read with ``response=k`` (`widescreen.schema.read_stats`)."""
+        if not self.n_responses:
+            raise ValueError(f"pass {self.name!r} scored one response, not a response matrix")
+        if not 0 <= k < self.n_responses:
+            raise IndexError(f"response {k} is outside 0..{self.n_responses - 1}")
+        stats = None
+        if self.stats is not None:
+            stats = {c: v[:, k] if v.ndim == 2 else v for c, v in self.stats.items()}
+        return replace(
+            self,
+            topk=self.topk.row(k),
+            stats=stats,
+            n_degenerate=int(np.asarray(self.n_degenerate).reshape(-1)[k]),
+            n_nonfinite=int(np.asarray(self.n_nonfinite).reshape(-1)[k]),
+            response=k,
+        )
 
     @property
     def left_out(self) -> dict[str, int]:
@@ -199,6 +245,13 @@ class PassResult:
             "sub_block": self.sub_block,
             "scheduler": self.scheduler,
         }
+        if self.n_responses:
+            out["n_degenerate"] = [int(v) for v in np.asarray(self.n_degenerate).reshape(-1)]
+            out["n_nonfinite"] = [int(v) for v in np.asarray(self.n_nonfinite).reshape(-1)]
+            out["n_responses"] = self.n_responses
+            out.pop("left_out")
+        if self.response is not None:
+            out["response"] = self.response
         if self.plan is not None:
             out["memory_plan"] = dict(self.plan)
         if self.notes:

@@ -112,3 +112,96 @@ def merge_all(parts: list[TopK], k: int, n_nulls: int = 0) -> TopK:
     for p in parts:
         out = merge_topk(out, p)
     return out
+
+
+# --------------------------------------------------------------------------------------------
+# K responses at once
+
+
+@dataclass(frozen=True)
+class MultiTopK:
+    """The k strongest features of each of K responses, strongest first, in one (K, k) array.
+
+    Rows shorter than k (fewer eligible features) are padded with index -1 and score -inf. Ties are
+    broken by feature index, as in `TopK`, so row r is the `TopK` a pass over response r alone keeps.
+
+    Attributes
+    ----------
+    k : int
+    index : ndarray of int64, shape (K, k)
+    score : ndarray of float64, shape (K, k)
+    """
+
+    k: int
+    index: np.ndarray
+    score: np.ndarray
+
+    @classmethod
+    def empty(cls, k: int, n_responses: int) -> MultiTopK:
+        return cls(
+            k=k,
+            index=np.full((n_responses, k), -1, np.int64),
+            score=np.full((n_responses, k), -np.inf),
+        )
+
+    @property
+    def n_responses(self) -> int:
+        return self.index.shape[0]
+
+    def row(self, r: int) -> TopK:
+        """Response r's list as a `TopK` (padding dropped)."""
+        ok = self.index[r] >= 0
+        return TopK(
+            k=self.k,
+            index=self.index[r][ok].copy(),
+            score=self.score[r][ok].copy(),
+            values=None,
+            null_max=np.empty(0),
+        )
+
+
+def _rows_topk(k: int, index: np.ndarray, score: np.ndarray) -> MultiTopK:
+    """Each row's k strongest of (K, m) candidates (score -inf: not a candidate), vectorised over rows.
+
+    A partition per row finds its k-th largest score; every candidate at or above it (ties included)
+    is sorted by (row, -score, index) and the first k of each row kept: exact and deterministic.
+    """
+    K, m = score.shape
+    keep = score > -np.inf
+    if m > k:
+        kth = np.partition(score, m - k, axis=1)[:, m - k]
+        keep &= score >= kth[:, None]
+    rows, cols = np.nonzero(keep)
+    s, ix = score[rows, cols], index[rows, cols]
+    order = np.lexsort((ix, -s, rows))
+    rows, s, ix = rows[order], s[order], ix[order]
+    rank = np.arange(rows.size) - np.searchsorted(rows, np.arange(K))[rows]
+    sel = rank < k
+    out = MultiTopK.empty(k, K)
+    out.index[rows[sel], rank[sel]] = ix[sel]
+    out.score[rows[sel], rank[sel]] = s[sel]
+    return out
+
+
+def block_topk_multi(k: int, start: int, score: np.ndarray, eligible: np.ndarray) -> MultiTopK:
+    """Per-response top-k of one block.
+
+    Parameters
+    ----------
+    k : int
+    start : int
+        Store index of the block's first feature.
+    score, eligible : ndarray of shape (width, K)
+    """
+    s = np.where(eligible, score, -np.inf).T
+    index = np.broadcast_to(np.arange(start, start + score.shape[0], dtype=np.int64), s.shape)
+    return _rows_topk(k, index, s)
+
+
+def merge_multi(parts: list[MultiTopK], k: int, n_responses: int) -> MultiTopK:
+    """Merge per-response top-k lists (order-independent)."""
+    if not parts:
+        return MultiTopK.empty(k, n_responses)
+    index = np.concatenate([p.index for p in parts], axis=1)
+    score = np.concatenate([p.score for p in parts], axis=1)
+    return _rows_topk(k, index, score)

@@ -169,6 +169,31 @@ class Family(ABC):
     def kernel(block, state) -> dict[str, np.ndarray]:
         """The pure statistics kernel (a module-level function)."""
 
+    # ---------------------------------------------------------------------------------------
+    # A response matrix: K responses in one pass
+
+    #: The kernel of a pass over a response matrix (statistics of shape (width, K)), or None when the
+    #: family has no vectorised form; set with ``staticmethod`` like `kernel`.
+    multi_kernel: ClassVar[Any] = None
+
+    def prepare_multi(self, Y: np.ndarray, covariates: np.ndarray | None) -> Any:
+        """The state of a pass over the K responses of ``Y`` (n, K), NaN where a sample is not part
+        of a response; each response's statistics are those of a pass over its own samples.
+
+        Raises
+        ------
+        ValueError
+            The family has no such pass (then run one response at a time).
+        """
+        raise ValueError(
+            f"the {self.name} family cannot score several responses in one pass; "
+            "screen one response at a time"
+        )
+
+    def multi_columns(self) -> tuple[str, ...]:
+        """Kernel outputs recorded by a response-matrix pass (each of shape (n_features, K))."""
+        return self.columns
+
 
 def _column(v, name: str) -> np.ndarray:
     a = np.asarray(v)

@@ -11,6 +11,8 @@ from ..kernels import (
     prepare_cox,
     prepare_logistic,
     prepare_poisson,
+    prepare_score_multi,
+    score_multi_statistics,
 )
 from ._base import Family
 from ._response import Where, binary, counts, survival
@@ -62,6 +64,17 @@ class _GLMFamily(Family):
 
     def pass_columns(self, state) -> tuple[str, ...]:
         return SCORE_COLUMNS if getattr(state, "test", "lr") == "score" else self.columns
+
+    #: Several responses in one pass: the score test (the exact likelihood fits are per feature and
+    #: response, iterative; they stay one response at a time).
+    multi_kernel = staticmethod(score_multi_statistics)
+    multi_dispersion = "fixed"
+
+    def prepare_multi(self, Y, covariates):
+        return prepare_score_multi(self.name, Y, covariates, dispersion=self.multi_dispersion)
+
+    def multi_columns(self) -> tuple[str, ...]:
+        return SCORE_COLUMNS
 
     def prepare(
         self, response, covariates, *, conditioning=None, offset=None, n_permutations=0, seed=0
@@ -116,6 +129,7 @@ class PoissonFamily(_GLMFamily):
         return prepare_poisson(response.y, covariates, offset, test="score", dispersion="quadratic")
 
     kernel = staticmethod(poisson_statistics)
+    multi_dispersion = "quadratic"
 
 
 class CoxFamily(_GLMFamily):
@@ -132,7 +146,17 @@ class CoxFamily(_GLMFamily):
     takes_event = True
     conditioning = "columns"
 
+    multi_kernel = None
+
     def pass_columns(self, state) -> tuple[str, ...]:
+        return self.columns
+
+    def prepare_multi(self, Y, covariates):
+        # The Cox score's information needs risk-set sums per response (sorted by each response's
+        # times), not one product with the block: no response-matrix pass yet.
+        return Family.prepare_multi(self, Y, covariates)
+
+    def multi_columns(self) -> tuple[str, ...]:
         return self.columns
 
     def prepare(

@@ -4,7 +4,12 @@ from __future__ import annotations
 
 import numpy as np
 
-from ..kernels import linear_statistics, prepare_linear
+from ..kernels import (
+    linear_multi_statistics,
+    linear_statistics,
+    prepare_linear,
+    prepare_linear_multi,
+)
 from ._base import Family
 from ._response import Response, Where, quantitative
 
@@ -39,3 +44,8 @@ class LinearFamily(Family):
         return prepare_linear(y, covariates, conditioning)
 
     kernel = staticmethod(linear_statistics)
+
+    def prepare_multi(self, Y, covariates):
+        return prepare_linear_multi(Y, covariates)
+
+    multi_kernel = staticmethod(linear_multi_statistics)

@@ -18,6 +18,15 @@ from ._glm import (
 )
 from ._holp import HolpState, check_holp_size, holp_gram, holp_statistics, prepare_holp
 from ._linear import LinearState, linear_statistics, prepare_linear
+from ._multi import (
+    MultiLinearState,
+    MultiScoreState,
+    linear_multi_statistics,
+    prepare_linear_multi,
+    prepare_score_multi,
+    response_masks,
+    score_multi_statistics,
+)
 from ._rank import (
     RankUtilityState,
     SpearmanState,
@@ -34,6 +43,8 @@ __all__ = [
     "HolpState",
     "LinearState",
     "LogisticState",
+    "MultiLinearState",
+    "MultiScoreState",
     "PoissonState",
     "RankUtilityState",
     "SpearmanState",
@@ -43,6 +54,7 @@ __all__ = [
     "dcor_statistics",
     "holp_gram",
     "holp_statistics",
+    "linear_multi_statistics",
     "linear_statistics",
     "logistic_statistics",
     "poisson_statistics",
@@ -50,12 +62,16 @@ __all__ = [
     "prepare_dcor",
     "prepare_holp",
     "prepare_linear",
+    "prepare_linear_multi",
     "prepare_logistic",
     "prepare_poisson",
     "prepare_rank_utility",
+    "prepare_score_multi",
     "prepare_spearman",
     "prepare_spline",
     "rank_utility_statistics",
+    "response_masks",
+    "score_multi_statistics",
     "spearman_statistics",
     "spline_statistics",
 ]

@@ -9,6 +9,8 @@ Layout::
       passes/NAME/stats/            Zarr v3 group: one (n_features,) float64 array per statistic,
                                     one uncompressed chunk per block, element j = the store's feature j
       passes/NAME/stats/COL/c/BLOCK the chunk file of one block of one statistic
+      passes/NAME/stats/COL/c/BLOCK/0  the same of a statistic of K responses (a response-matrix
+                                    pass: arrays of shape (n_features, K), one chunk per block)
       passes/NAME/done/BLOCK.json   completion marker of one block (`BlockMarker`), after its statistics
       passes/NAME/done/BLOCK.kept.npz  stored values of the block's top-k columns, before the marker
       passes/PASS-PRE/              checkpoints of a family's pre-pass (a tree reduction, `ReduceLayout`):
@@ -49,9 +51,11 @@ class PassLayout:
     def done(self) -> Path:
         return self.root / "done"
 
-    def stats_chunk(self, column: str, block: int) -> Path:
-        """File of one block's chunk of a statistic (arrays are made with '/'-separated chunk keys)."""
-        return self.stats / column / "c" / str(block)
+    def stats_chunk(self, column: str, block: int, wide: bool = False) -> Path:
+        """File of one block's chunk of a statistic (arrays are made with '/'-separated chunk keys;
+        ``wide``: a statistic of shape (n_features, K), whose chunks are (block, K))."""
+        path = self.stats / column / "c" / str(block)
+        return path / "0" if wide else path
 
     def marker(self, block: int) -> Path:
         return self.done / f"{block}.json"

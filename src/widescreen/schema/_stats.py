@@ -2,7 +2,9 @@
 
 One float64 array of shape (n_features,) per statistic, in store order, uncompressed with one chunk per
 block, so a block task writes its chunk file directly (`widescreen.engine`). Element j belongs to the
-store's feature j: `stats_frame` joins the ids.
+store's feature j: `stats_frame` joins the ids. A pass over K responses at once (a response matrix)
+records its kernel's statistics as arrays of shape (n_features, K), chunked (block, K) and stored row by
+row (feature-major), one column per response; the readers take ``response=k`` to read column k.
 """
 
 from __future__ import annotations
@@ -18,8 +20,18 @@ from ._layout import PassLayout, RunFolderError, RunLayout
 from ._records import PassMeta
 
 
-def create_stats(layout: PassLayout, columns, n_features: int, block_width: int) -> None:
+def create_stats(
+    layout: PassLayout,
+    columns,
+    n_features: int,
+    block_width: int,
+    *,
+    wide: tuple[str, ...] = (),
+    n_responses: int = 0,
+) -> None:
     """Make the statistics arrays of a new pass (NaN until a block writes its chunk).
+
+    ``wide`` columns (a pass over ``n_responses`` responses) get shape (n_features, n_responses).
 
     Raises
     ------
@@ -30,10 +42,11 @@ def create_stats(layout: PassLayout, columns, n_features: int, block_width: int)
 
     group = zarr.open_group(layout.stats, mode="w")
     for c in columns:
+        two = c in wide
         arr = group.create_array(
             c,
-            shape=(n_features,),
-            chunks=(block_width,),
+            shape=(n_features, n_responses) if two else (n_features,),
+            chunks=(block_width, n_responses) if two else (block_width,),
             dtype="<f8",
             fill_value=np.nan,
             # Uncompressed: block tasks write their chunk files directly (see `write_stats_chunk`).
@@ -58,9 +71,10 @@ def _codecs_ok(array) -> bool:
 
 
 def stats_chunk_bytes(values: np.ndarray, width: int) -> bytes:
-    """The bytes of one block's chunk file: little-endian float64, NaN-padded to the chunk length."""
-    buf = np.full(width, np.nan, dtype="<f8")
-    buf[: values.size] = values
+    """The bytes of one block's chunk file: little-endian float64, NaN-padded to the chunk length
+    (a statistic of K responses: (width, K) values, row by row)."""
+    buf = np.full((width, *values.shape[1:]), np.nan, dtype="<f8")
+    buf[: values.shape[0]] = values
     return buf.tobytes()
 
 
@@ -133,12 +147,24 @@ class PassStats:
             )
         return cols
 
-    def read(self, columns=None, start: int = 0, stop: int | None = None) -> dict[str, np.ndarray]:
-        """Statistics of features ``start:stop`` (store order): dict of float64 arrays."""
+    def read(
+        self, columns=None, start: int = 0, stop: int | None = None, response: int | None = None
+    ) -> dict[str, np.ndarray]:
+        """Statistics of features ``start:stop`` (store order): dict of float64 arrays.
+
+        ``response``: in a pass over several responses, the column of that response (statistics of
+        shape (n_features,) are shared by all responses and read as they are).
+        """
         return {
-            c: self._damaged(c, lambda c=c: self._group[c][start:stop])
+            c: self._damaged(c, lambda c=c: self._slice(c, slice(start, stop), response))
             for c in self._check(columns)
         }
+
+    def _slice(self, column: str, rows, response: int | None):
+        arr = self._group[column]
+        if arr.ndim == 2 and response is not None:
+            return arr[rows, response]
+        return arr[rows]
 
     def _damaged(self, column: str, read) -> np.ndarray:
         # A truncated chunk file (a machine crash) makes zarr fail to reshape it: name the array.
@@ -150,14 +176,15 @@ class PassStats:
                 "compute the damaged blocks again"
             ) from None
 
-    def read_at(self, index, columns=None) -> dict[str, np.ndarray]:
-        """Statistics of the given features only (memory independent of p), in the given order."""
+    def read_at(self, index, columns=None, response: int | None = None) -> dict[str, np.ndarray]:
+        """Statistics of the given features only (memory independent of p), in the given order
+        (``response``: as for `read`)."""
         index = np.asarray(index, dtype=np.int64)
         order = np.argsort(index, kind="stable")
         out = {}
         for c in self._check(columns):
             vals = (
-                self._damaged(c, lambda c=c: self._group[c].get_coordinate_selection(index[order]))
+                self._damaged(c, lambda c=c: self._coords(c, index[order], response))
                 if index.size
                 else np.empty(0)
             )
@@ -165,6 +192,15 @@ class PassStats:
             back[order] = vals
             out[c] = back
         return out
+
+    def _coords(self, column: str, index: np.ndarray, response: int | None):
+        arr = self._group[column]
+        if arr.ndim == 2:
+            cols = slice(None) if response is None else np.full(index.size, response)
+            if response is None:
+                return arr.get_orthogonal_selection((index, cols))
+            return arr.get_coordinate_selection((index, cols))
+        return arr.get_coordinate_selection(index)
 
     def blocks(self, columns=None, step: int = 1 << 20) -> Iterator[tuple[int, int, dict]]:
         """(start, stop, statistics) of consecutive ranges of whole chunks, about ``step`` features."""
@@ -182,14 +218,17 @@ def read_stats(
     columns: tuple[str, ...] | None = None,
     start: int = 0,
     stop: int | None = None,
+    response: int | None = None,
 ) -> dict[str, np.ndarray]:
     """Statistics of a finished pass by range (see `PassStats.read`)."""
-    return PassStats(getattr(run, "path", run), name).read(columns, start, stop)
+    return PassStats(getattr(run, "path", run), name).read(columns, start, stop, response)
 
 
-def read_stats_at(run, name: str, index, columns=None) -> dict[str, np.ndarray]:
+def read_stats_at(
+    run, name: str, index, columns=None, response: int | None = None
+) -> dict[str, np.ndarray]:
     """Statistics of a finished pass at the given features (see `PassStats.read_at`)."""
-    return PassStats(getattr(run, "path", run), name).read_at(index, columns)
+    return PassStats(getattr(run, "path", run), name).read_at(index, columns, response)
 
 
 def stats_frame(

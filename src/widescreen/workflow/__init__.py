@@ -21,6 +21,7 @@ from ..store import (
 from ._iterate import IterateConfig, IterativeResult, iterate
 from ._passes import PassContext
 from ._problem import Problem, load_problem, problem_from_arrays, shortlist_size
+from ._responses import response_names, screen_responses
 from ._run import run
 from ._screen import ScreenConfig, ScreenResult, screen, screen_problem
 from ._session import RunSession, open_session
@@ -56,9 +57,11 @@ __all__ = [
     "permutation_cutoff",
     "problem_from_arrays",
     "read_outcome_table",
+    "response_names",
     "run",
     "screen",
     "screen_problem",
+    "screen_responses",
     "shortlist_size",
     "split_halves",
 ]

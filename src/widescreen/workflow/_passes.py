@@ -121,6 +121,40 @@ class PassContext:
             sub_block=self.sub_block,
         )
 
+    def spec_multi(
+        self, name: str, Y: np.ndarray, *, keep: int, exclude: np.ndarray | None = None
+    ) -> PassSpec:
+        """A pass over the K responses of ``Y`` (n analysed samples, K): NaN leaves a sample out of
+        a response (`widescreen.families.Family.prepare_multi`).
+
+        Raises
+        ------
+        ValueError
+            The family has no response-matrix pass, or cannot prepare one of the responses.
+        """
+        problem, fam = self.problem, self.problem.family
+        Y = np.asarray(Y, dtype=np.float64)
+        Y = Y[:, None] if Y.ndim == 1 else Y
+        if Y.ndim != 2 or Y.shape[0] != problem.n:
+            raise ValueError(
+                f"the response matrix must have one row per analysed sample ({problem.n}); "
+                f"got shape {Y.shape}"
+            )
+        state = fam.prepare_multi(Y, problem.covariates)
+        return PassSpec(
+            name=name,
+            kernel=fam.multi_kernel,
+            state=state,
+            columns=fam.multi_columns(),
+            keep=keep,
+            rows=problem.rows,
+            exclude=np.empty(0, np.int64) if exclude is None else exclude,
+            filters=self.filters,
+            keep_values=False,
+            sub_block=self.sub_block,
+            temporaries=3.0,
+        )
+
     def run_spec(self, spec: PassSpec) -> PassResult:
         """Run a pass built by `spec` (resuming from the run folder's checkpoints)."""
         return run_pass(

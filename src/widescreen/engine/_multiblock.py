@@ -1,0 +1,144 @@
+"""The block task of a pass over K responses at once (a response matrix), and its completion marker.
+
+Like `process_block`, but the kernel's statistics have shape (width, K) and the block keeps each
+response's top k (`MultiTopK`, one vectorised selection for all K). The engine's own columns
+(``missing_rate``, ``mean``, ``filtered``) are per feature, over all analysed samples, so the filters
+are too. No values are kept in the block: the shortlists of K responses may together be wide, so the
+caller reads the columns it needs once the pass is merged (`widescreen.engine.read_columns`).
+"""
+
+from __future__ import annotations
+
+import json
+import os
+import time
+from pathlib import Path
+
+import numpy as np
+
+from ..schema import PassLayout
+from ..store import prepare_block
+from ._block import _filter_mask, write_stats
+from ._runfolder import atomic_write
+from ._source import BlockSource
+from ._spec import PassSpec
+from ._topk import MultiTopK, block_topk_multi, merge_multi
+
+
+def process_multi_block(source: BlockSource, spec: PassSpec, i: int, out_dir: str | None) -> dict:
+    """Read block ``i``, compute every response's statistics, record them, return its top lists.
+
+    Returns
+    -------
+    dict
+        As `process_block`'s, with ``topk`` a `MultiTopK` and ``n_degenerate``, ``n_nonfinite`` arrays
+        of shape (K,) (per response); ``stats`` holds (width, K) arrays for the kernel's columns.
+    """
+    t0 = time.perf_counter()
+    K = spec.n_responses
+    start, stop = source.bounds(i)
+    raw = source.read(i)
+    dosage = source.value_kind == "dosage"
+    cols: dict[str, list[np.ndarray]] = {c: [] for c in spec.all_columns}
+    parts: list[MultiTopK] = []
+    n_constant = 0
+    n_degenerate = np.zeros(K, np.int64)
+    n_nonfinite = np.zeros(K, np.int64)
+    for a in range(0, stop - start, spec.sub_block):
+        b = min(a + spec.sub_block, stop - start)
+        block = prepare_block(raw[:, a:b], start + a, spec.rows)
+        out = spec.kernel(block, spec.state)
+        filtered = _filter_mask(spec, block.missing_rate, block.mean, dosage)
+        off = (filtered | block.constant)[:, None]
+        score = np.where(off, 0.0, out["score"])
+        out["score"] = score
+        degenerate = np.asarray(out.get("degenerate", False)) & ~off
+        nonfinite = ~np.isfinite(score) & ~(off | degenerate)
+        eligible = ~(off | degenerate | nonfinite)
+        if spec.exclude.size:
+            eligible &= ~np.isin(np.arange(start + a, start + b), spec.exclude)[:, None]
+        n_degenerate += np.count_nonzero(degenerate, axis=0)
+        n_nonfinite += np.count_nonzero(nonfinite, axis=0)
+        n_constant += int(block.constant.sum())
+        for c in spec.columns:
+            cols[c].append(np.asarray(out[c], dtype=np.float64))
+        cols["missing_rate"].append(block.missing_rate)
+        cols["mean"].append(block.mean)
+        cols["filtered"].append(filtered.astype(np.float64))
+        parts.append(block_topk_multi(spec.keep, start + a, score, eligible))
+    stats = {c: np.concatenate(v) for c, v in cols.items()}
+    record = {
+        "block": i,
+        "start": start,
+        "stop": stop,
+        "topk": merge_multi(parts, spec.keep, K),
+        "n_filtered": int(stats["filtered"].sum()),
+        "n_constant": n_constant,
+        "n_degenerate": n_degenerate,
+        "n_nonfinite": n_nonfinite,
+        "sub_block": int(min(spec.sub_block, stop - start)),
+        "seconds": time.perf_counter() - t0,
+    }
+    if out_dir is None:
+        record["stats"] = stats
+        return record
+    write_stats(out_dir, i, stats, source.block_width)
+    record["seconds"] = time.perf_counter() - t0
+    write_multi_marker(out_dir, record)
+    return record
+
+
+def write_multi_marker(out_dir: str | Path, record: dict) -> None:
+    top: MultiTopK = record["topk"]
+    marker = {
+        "block": record["block"],
+        "start": record["start"],
+        "stop": record["stop"],
+        "n_responses": int(top.n_responses),
+        "index": top.index.tolist(),
+        # repr of floats round-trips exactly (-inf pads a short list), so a resumed merge is identical
+        "score": [[float(s) if np.isfinite(s) else None for s in row] for row in top.score],
+        "n_filtered": record["n_filtered"],
+        "n_constant": record["n_constant"],
+        "n_degenerate": [int(v) for v in record["n_degenerate"]],
+        "n_nonfinite": [int(v) for v in record["n_nonfinite"]],
+        "sub_block": record.get("sub_block"),
+        "seconds": record["seconds"],
+    }
+    atomic_write(PassLayout(Path(out_dir)).marker(record["block"]), json.dumps(marker))
+
+
+def read_multi_marker(
+    out_dir: str | Path, block: int, spec: PassSpec, bounds: tuple[int, int]
+) -> dict | None:
+    """The record of a finished block of a K-response pass, or None when it cannot be trusted
+    (the rule of `read_marker`: the marker parses and names the block, every chunk file is whole)."""
+    layout = PassLayout(Path(out_dir))
+    K, k = spec.n_responses, spec.keep
+    try:
+        m = json.loads(layout.marker(block).read_text())
+        if (int(m["start"]), int(m["stop"])) != tuple(bounds) or int(m["n_responses"]) != K:
+            return None
+        index = np.asarray(m["index"], dtype=np.int64).reshape(K, k)
+        score = np.array(
+            [[-np.inf if s is None else s for s in row] for row in m["score"]], dtype=np.float64
+        ).reshape(K, k)
+        top = MultiTopK(k=k, index=index, score=score)
+        n_degenerate = np.asarray(m["n_degenerate"], dtype=np.int64).reshape(K)
+        n_nonfinite = np.asarray(m["n_nonfinite"], dtype=np.int64).reshape(K)
+    except (OSError, ValueError, KeyError, TypeError):
+        return None
+    rows = int(bounds[1]) - int(bounds[0])
+    for c in spec.all_columns:
+        wide = c in spec.wide_columns
+        need = rows * 8 * (K if wide else 1)
+        try:
+            size = os.stat(layout.stats_chunk(c, block, wide)).st_size
+        except OSError:
+            return None
+        if size < need or size % 8:  # empty or truncated: what a machine crash can leave
+            return None
+    return {**m, "topk": top, "n_degenerate": n_degenerate, "n_nonfinite": n_nonfinite}
+
+
+__all__ = ["process_multi_block", "read_multi_marker", "write_multi_marker"]

@@ -1,0 +1,437 @@
+"""Statistics of many responses in one pass: a response matrix of width K, each with its own samples.
+
+A response matrix ``Y`` of shape (n, K) holds NaN where a sample is not part of response k (a trait's
+missing value, a sample outside a half-sample or a training fold); covariates are shared. Every
+statistic of response k equals what a one-response pass over the samples of response k alone gives (to
+rounding): the feature's missing values are imputed by its mean over those samples, its sum of squares
+and its covariate adjustment are taken over them.
+
+The block's values ``v`` are centred on the mean over all analysed samples (missing -> 0). For the
+samples ``S_k`` of response k (0/1 weights ``m_k``) the feature's own mean differs from it by
+``d_k = m_k' v / n_obs_k``, where ``n_obs_k = n_k - m_k' M`` and ``M`` is the block's missing-value
+indicator; the feature as the one-response pass sees it is ``v - d_k`` on the observed samples of
+``S_k`` and 0 on the missing ones. Every quantity of the test is then a product of the block with a
+column built once per pass, corrected by ``d_k`` times the same column's product with ``M`` (zero when
+nothing is missing):
+
+- linear: ``X' [m_k r_k | m_g | Q_g]`` and ``(v * v)' m_g``, with ``r_k`` the response residualised on
+  ``S_k`` and unit-normed, ``Q_g`` an orthonormal basis of the centred covariates on the samples of
+  mask ``g`` (responses with the same samples share ``m_g`` and ``Q_g``);
+- logistic and Poisson score test: ``X' [m_k (y_k - mu0_k) | m_k | G_k | D_k V_k]`` and
+  ``(v * v)' [w0_k | V_k | m_k]`` from each response's null fit on its own samples (`_glm_state`).
+
+One (or two) BLAS products per block serve all K responses; no loop over responses or features runs in
+the block task. The exact per-feature likelihood fits of the GLM and Cox families stay one response at a
+time (they are iterative per feature and response).
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+
+import numpy as np
+from scipy import special
+
+from ..store import MISSING_INT8, Block
+from ._glm_state import as_covariates, prepare_glm
+from ._linear import _orthonormal_basis
+
+
+def response_masks(Y: np.ndarray, name: str = "Y") -> np.ndarray:
+    """The (n, K) boolean mask of the samples of each response (finite entries of ``Y``)."""
+    mask = np.isfinite(Y)
+    bad = np.flatnonzero(~mask & ~np.isnan(Y))
+    if bad.size:
+        i, k = np.unravel_index(bad[0], Y.shape)
+        raise ValueError(f"{name}[{i}, {k}] is infinite; use NaN to leave a sample out")
+    return mask
+
+
+def _as_matrix(Y) -> np.ndarray:
+    Y = np.asarray(Y, dtype=np.float64)
+    if Y.ndim == 1:
+        Y = Y[:, None]
+    if Y.ndim != 2 or Y.shape[1] < 1:
+        raise ValueError(f"the response matrix must have shape (n, K) with K >= 1; got {Y.shape}")
+    return Y
+
+
+def _mask_groups(mask: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Distinct sample masks (n, G) and each response's group (K,)."""
+    packed = np.packbits(mask, axis=0)
+    _, first, group = np.unique(packed.T, axis=0, return_index=True, return_inverse=True)
+    return mask[:, first], np.asarray(group, dtype=np.intp).ravel()
+
+
+def missing_indicator(block: Block) -> tuple[np.ndarray, np.ndarray] | None:
+    """(columns with a missing value, their (n, c) float64 missing indicator), or None."""
+    if not block.any_missing:
+        return None
+    cols = np.flatnonzero(block.n_missing)
+    raw = np.take(block.raw, cols, axis=1)
+    miss = raw == MISSING_INT8 if raw.dtype == np.int8 else np.isnan(raw)
+    return cols, miss.astype(np.float64)
+
+
+def _with_missing(block: Block, lhs_t: np.ndarray, cross: np.ndarray) -> np.ndarray:
+    """``lhs_t @ M`` (zero where no value is missing), shape of ``cross``."""
+    out = np.zeros_like(cross)
+    got = missing_indicator(block)
+    if got is not None:
+        cols, miss = got
+        out[:, cols] = lhs_t @ miss
+    return out
+
+
+def _squares(block: Block, lhs_t: np.ndarray) -> np.ndarray:
+    """``lhs_t @ (v * v)`` for the block's centred values ``v``."""
+    v = block.values
+    return lhs_t @ (v * v)
+
+
+# --------------------------------------------------------------------------------------------
+# Linear family
+
+
+@dataclass(frozen=True)
+class MultiLinearState:
+    """Response state of a linear pass over K responses.
+
+    Attributes
+    ----------
+    r : ndarray of shape (n, K)
+        Each response residualised on the intercept and covariates over its own samples, unit-normed,
+        0 outside its samples.
+    groups : ndarray of shape (n, G)
+        The distinct sample masks (float 0/1).
+    group : ndarray of int of shape (K,)
+        Each response's mask.
+    basis : ndarray of shape (G, n, q)
+        Per mask, an orthonormal basis of the centred covariates on its samples (0 elsewhere; columns
+        beyond its rank are 0).
+    n_obs : ndarray of shape (G,)
+        Samples per mask.
+    df : ndarray of int of shape (K,)
+        Residual degrees of freedom of each response's t statistic.
+    lhs_t : ndarray of shape (K + G + G q, n)
+        ``[r, groups, basis]`` transposed: the left factor of the block's one product.
+    """
+
+    r: np.ndarray
+    groups: np.ndarray
+    group: np.ndarray
+    basis: np.ndarray
+    n_obs: np.ndarray
+    df: np.ndarray
+    lhs_t: np.ndarray = field(default=None, repr=False, compare=False)  # type: ignore[assignment]
+
+    def __post_init__(self) -> None:
+        if self.lhs_t is None:
+            G, n, q = self.basis.shape
+            parts = [self.r.T, self.groups.T, self.basis.transpose(0, 2, 1).reshape(G * q, n)]
+            object.__setattr__(self, "lhs_t", np.ascontiguousarray(np.vstack(parts)))
+
+    @property
+    def n_responses(self) -> int:
+        return self.r.shape[1]
+
+    @property
+    def n_nulls(self) -> int:
+        return 0
+
+
+def prepare_linear_multi(Y, covariates: np.ndarray | None = None) -> MultiLinearState:
+    """Build the state of a linear pass over the responses of ``Y`` (NaN: sample not in response k).
+
+    Parameters
+    ----------
+    Y : ndarray of shape (n, K)
+    covariates : ndarray of shape (n, q), optional
+        Shared by every response; each response is adjusted on its own samples.
+
+    Raises
+    ------
+    ValueError
+        A response with too few samples, or no variation left after the covariates (naming it).
+    """
+    Y = _as_matrix(Y)
+    n = Y.shape[0]
+    mask = response_masks(Y)
+    Z = as_covariates(covariates, n)
+    groups, group = _mask_groups(mask)
+    G = groups.shape[1]
+    bases = []
+    for g in range(G):  # once per pass, per distinct set of samples
+        rows = np.flatnonzero(groups[:, g])
+        bases.append((rows, _orthonormal_basis(Z[rows])))
+    q = max((b.shape[1] for _, b in bases), default=0)
+    basis = np.zeros((G, n, q))
+    rank = np.zeros(G, dtype=np.int64)
+    for g, (rows, b) in enumerate(bases):
+        basis[g][np.ix_(rows, np.arange(b.shape[1]))] = b
+        rank[g] = b.shape[1]
+    n_obs = groups.sum(axis=0).astype(np.float64)
+    df = (n_obs[group] - 1 - rank[group] - 1).astype(np.int64)
+    if (df < 1).any():
+        k = int(np.flatnonzero(df < 1)[0])
+        raise ValueError(
+            f"response {k} has too few samples ({int(n_obs[group[k]])}) for "
+            f"{int(rank[group[k]])} adjustment columns"
+        )
+    Yz = np.where(mask, Y, 0.0)
+    means = Yz.sum(axis=0) / n_obs[group]
+    r = np.where(mask, Y - means, 0.0)
+    if q:
+        B = basis[group]  # (K, n, q)
+        r = r - np.einsum("kiq,kq->ik", B, np.einsum("kiq,ik->kq", B, r))
+    norms = np.linalg.norm(r, axis=0)
+    scale = np.maximum(np.linalg.norm(Yz, axis=0), 1.0)
+    flat = np.flatnonzero(norms <= 1e-12 * scale)
+    if flat.size:
+        raise ValueError(
+            f"response {int(flat[0])} has no variation left after removing the intercept and "
+            "covariates"
+        )
+    return MultiLinearState(
+        r=r / norms, groups=groups.astype(np.float64), group=group, basis=basis, n_obs=n_obs, df=df
+    )
+
+
+def _shift(P: np.ndarray, ML: np.ndarray, rows: slice, n_obs: np.ndarray):
+    """Per mask (rows of the products with the 0/1 masks): the feature's observed count there and the
+    shift ``d`` of its mean there from the mean over all analysed samples."""
+    nob = n_obs[:, None] - ML[rows]
+    return nob, P[rows] / np.maximum(nob, 1.0)
+
+
+def linear_multi_statistics(block: Block, state: MultiLinearState) -> dict[str, np.ndarray]:
+    """Per-feature, per-response statistics of one block.
+
+    Returns
+    -------
+    dict of ndarray of shape (width, K)
+        ``score`` = |correlation|, ``correlation`` (partial, over the response's samples), ``t``,
+        ``p_value`` (two-sided), ``degenerate`` (constant on the response's samples, or explained by
+        the covariates there).
+    """
+    K, G = state.n_responses, state.groups.shape[1]
+    q = state.basis.shape[2]
+    lhs_t = state.lhs_t
+    P = block.cross(lhs_t)  # (K + G + G q, w)
+    ML = _with_missing(block, lhs_t, P)
+    gsl = slice(K, K + G)
+    nob, d = _shift(P, ML, gsl, state.n_obs)
+    sq = _squares(block, state.groups.T)  # (G, w): sum of v^2 over each mask's samples
+    ss = sq - nob * d * d  # centred on the mask's own mean
+    constant = (nob < 2) | (ss <= 1e-12 * np.maximum(sq, 1e-300))
+    ss_full = ss
+    if q:
+        Qx = (P[K + G :] + ML[K + G :] * np.repeat(d, q, axis=0)).reshape(G, q, -1)
+        ss = ss - np.einsum("gqw,gqw->gw", Qx, Qx)
+    degenerate_g = constant | (ss <= 1e-10 * np.maximum(ss_full, 1e-300))
+    g = state.group
+    a = P[:K] + d[g] * ML[:K]  # (K, w)
+    degenerate = degenerate_g[g]
+    denom = np.sqrt(np.where(degenerate, 1.0, ss[g]))
+    corr = np.where(degenerate, 0.0, a / denom)
+    np.clip(corr, -1.0, 1.0, out=corr)
+    df = state.df[:, None].astype(np.float64)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        t = corr * np.sqrt(df / np.maximum(1.0 - corr**2, 1e-300))
+    p = special.betainc(0.5 * df, 0.5, df / (df + t**2))
+    p = np.where(degenerate, 1.0, p)
+    return {
+        "score": np.abs(corr).T,
+        "correlation": corr.T,
+        "t": np.where(degenerate, 0.0, t).T,
+        "p_value": p.T,
+        "degenerate": degenerate.T,
+    }
+
+
+# --------------------------------------------------------------------------------------------
+# Logistic and Poisson families: the score test
+
+
+@dataclass(frozen=True)
+class MultiScoreState:
+    """Response state of a GLM score-test pass over K responses, each null fit on its own samples.
+
+    Attributes
+    ----------
+    family : {"logistic", "poisson"}
+    mask : ndarray of shape (n, K), float 0/1
+    resid : ndarray of shape (n, K)
+        ``y_k - mu0_k`` on the samples of response k, 0 elsewhere.
+    w0 : ndarray of shape (n, K)
+        Null working weights (0 outside the samples).
+    basis : ndarray of shape (K, n, c)
+        ``W0 C L^-T`` per response (`GLMState.score_basis`), 0 outside its samples.
+    variance : ndarray of shape (n, K)
+        Per-sample variance of the empirical score-variance rules (0 elsewhere).
+    dv : ndarray of shape (K, n, c)
+        Whitened design times that variance (``D V``), for the empirical rules.
+    dvd : ndarray of shape (K, c, c)
+        ``D' V D``.
+    dispersion : ndarray of shape (K,)
+    empirical : bool
+        The score's variance is estimated from the data (``"quadratic"``, ``"sandwich"``).
+    n_obs : ndarray of shape (K,)
+    """
+
+    family: str
+    mask: np.ndarray
+    resid: np.ndarray
+    w0: np.ndarray
+    basis: np.ndarray
+    variance: np.ndarray
+    dv: np.ndarray
+    dvd: np.ndarray
+    dispersion: np.ndarray
+    empirical: bool
+    n_obs: np.ndarray
+    lhs_t: np.ndarray = field(default=None, repr=False, compare=False)  # type: ignore[assignment]
+    sq_t: np.ndarray = field(default=None, repr=False, compare=False)  # type: ignore[assignment]
+
+    def __post_init__(self) -> None:
+        if self.lhs_t is None:
+            K, n, c = self.basis.shape
+            parts = [self.resid.T, self.mask.T, self.basis.transpose(0, 2, 1).reshape(K * c, n)]
+            sq = [self.w0.T, self.mask.T]
+            if self.empirical:
+                parts.append(self.dv.transpose(0, 2, 1).reshape(K * c, n))
+                sq.append(self.variance.T)
+            object.__setattr__(self, "lhs_t", np.ascontiguousarray(np.vstack(parts)))
+            object.__setattr__(self, "sq_t", np.ascontiguousarray(np.vstack(sq)))
+
+    @property
+    def n_responses(self) -> int:
+        return self.mask.shape[1]
+
+    @property
+    def n_nulls(self) -> int:
+        return 0
+
+
+def prepare_score_multi(
+    family: str, Y, covariates: np.ndarray | None = None, *, dispersion: str = "fixed"
+) -> MultiScoreState:
+    """Null fits of the K responses of ``Y`` (NaN: sample not in response k), each on its own samples.
+
+    Parameters
+    ----------
+    family : {"logistic", "poisson"}
+    Y : ndarray of shape (n, K)
+    covariates : ndarray of shape (n, q), optional
+    dispersion : {"fixed", "pearson", "quadratic", "sandwich"}
+        As for `prepare_poisson` (logistic: "fixed").
+    """
+    Y = _as_matrix(Y)
+    n, K = Y.shape
+    mask = response_masks(Y)
+    Z = as_covariates(covariates, n)
+    c = 1 + Z.shape[1]
+    resid, w0, var = np.zeros((n, K)), np.zeros((n, K)), np.zeros((n, K))
+    basis, dv = np.zeros((K, n, c)), np.zeros((K, n, c))
+    dvd, phi, n_obs = np.zeros((K, c, c)), np.ones(K), np.zeros(K)
+    empirical = dispersion in ("quadratic", "sandwich")
+    for k in range(K):  # once per pass: each response's null fit on its own samples
+        rows = np.flatnonzero(mask[:, k])
+        try:
+            st = prepare_glm(
+                family, Y[rows, k], Z[rows], None, test="score", dispersion=dispersion,
+                max_iter=25, tol=1e-10,
+            )  # fmt: skip
+        except ValueError as exc:
+            raise ValueError(f"response {k}: {exc}") from None
+        resid[rows, k] = st.y - st.mu0
+        w0[rows, k] = st.w0
+        basis[k][rows] = st.score_basis
+        phi[k] = st.dispersion
+        n_obs[k] = rows.size
+        if empirical:
+            D = st.score_basis / st.w0[:, None]
+            var[rows, k] = st.variance
+            dv[k][rows] = D * st.variance[:, None]
+            dvd[k] = D.T @ (D * st.variance[:, None])
+    return MultiScoreState(
+        family=family,
+        mask=mask.astype(np.float64),
+        resid=resid,
+        w0=w0,
+        basis=basis,
+        variance=var,
+        dv=dv,
+        dvd=dvd,
+        dispersion=phi,
+        empirical=empirical,
+        n_obs=n_obs,
+    )
+
+
+def score_multi_statistics(block: Block, state: MultiScoreState) -> dict[str, np.ndarray]:
+    """Rao score test of ``b_j = 0`` in ``y_k ~ 1 + covariates + x_j`` for every feature and response.
+
+    Returns
+    -------
+    dict of ndarray of shape (width, K)
+        The columns of the one-response score test (`logistic_statistics` with ``test="score"``):
+        ``score`` = score_chi2 / 2, ``score_chi2``, ``z``, ``p_value``, ``beta``, ``std_error``,
+        ``std_beta``, ``degenerate``.
+    """
+    K, _, c = state.basis.shape
+    lhs_t = state.lhs_t
+    P = block.cross(lhs_t)
+    ML = _with_missing(block, lhs_t, P)
+    S = _squares(block, state.sq_t)
+    MS = _with_missing(block, state.sq_t, S)
+    # Missing values of the feature are imputed by its mean over the response's samples: in the frame
+    # of v that is d on the missing entries (a shift on the observed ones is absorbed by the intercept).
+    nob, d = _shift(P, ML, slice(K, 2 * K), state.n_obs)
+    u = P[:K] + d * ML[:K]
+    dc = np.repeat(d, c, axis=0)
+    gx = (P[2 * K : 2 * K + K * c] + dc * ML[2 * K : 2 * K + K * c]).reshape(K, c, -1)
+    w0xx = S[:K] + d * d * MS[:K]
+    msq = S[K : 2 * K]
+    sumsq = msq - nob * d * d
+    constant = (nob < 2) | (sumsq <= 1e-12 * np.maximum(msq, 1e-300))
+    info = w0xx - np.einsum("kcw,kcw->kw", gx, gx)
+    dead = constant | ~(info > 1e-10 * w0xx)
+    info = np.where(dead, 1.0, info)
+    if state.empirical:
+        lo = 2 * K + K * c
+        dvx = (P[lo:] + dc * ML[lo:]).reshape(K, c, -1)
+        xvx = S[2 * K :] + d * d * MS[2 * K :]
+        var_u = (
+            xvx
+            - 2.0 * np.einsum("kcw,kcw->kw", gx, dvx)
+            + np.einsum("kcw,kce,kew->kw", gx, state.dvd, gx)
+        )
+        var_u = np.where(dead, 1.0, var_u)
+        dead = dead | ~(var_u > 0)
+        var_u = np.where(dead, 1.0, var_u)
+    else:
+        var_u = state.dispersion[:, None] * info
+    chi2 = np.where(dead, 0.0, u * u / var_u)
+    beta = np.where(dead, 0.0, u / info)
+    return {
+        "score": (0.5 * chi2).T,
+        "score_chi2": chi2.T,
+        "z": np.where(dead, 0.0, u / np.sqrt(var_u)).T,
+        "p_value": np.where(dead, 1.0, special.chdtrc(1, chi2)).T,
+        "beta": beta.T,
+        "std_error": np.where(dead, np.inf, np.sqrt(var_u) / info).T,
+        "std_beta": (beta * np.sqrt(np.maximum(sumsq, 0.0) / state.n_obs[:, None])).T,
+        "degenerate": dead.T,
+    }
+
+
+__all__ = [
+    "MultiLinearState",
+    "MultiScoreState",
+    "linear_multi_statistics",
+    "prepare_linear_multi",
+    "prepare_score_multi",
+    "response_masks",
+    "score_multi_statistics",
+]
