@@ -2,8 +2,9 @@
 
 Like `process_block`, but the kernel's statistics have shape (width, K) and the block keeps each
 response's top k (`MultiTopK`, one vectorised selection for all K). The engine's own columns
-(``missing_rate``, ``mean``, ``filtered``) are per feature, over all analysed samples, so the filters
-are too. No values are kept in the block: the shortlists of K responses may together be wide, so the
+(``missing_rate``, ``mean``, ``filtered``) are per response too: the kernel gives each feature's mean and
+missing rate over each response's samples, and the filters apply to those, as a one-response pass over
+those samples would. No values are kept in the block: the shortlists of K responses may together be wide, so the
 caller reads the columns it needs once the pass is merged (`widescreen.engine.read_columns`).
 """
 
@@ -41,15 +42,20 @@ def process_multi_block(source: BlockSource, spec: PassSpec, i: int, out_dir: st
     dosage = source.value_kind == "dosage"
     cols: dict[str, list[np.ndarray]] = {c: [] for c in spec.all_columns}
     parts: list[MultiTopK] = []
-    n_constant = 0
+    n_constant = np.zeros(K, np.int64)
+    n_filtered = np.zeros(K, np.int64)
     n_degenerate = np.zeros(K, np.int64)
     n_nonfinite = np.zeros(K, np.int64)
     for a in range(0, stop - start, spec.sub_block):
         b = min(a + spec.sub_block, stop - start)
         block = prepare_block(raw[:, a:b], start + a, spec.rows)
         out = spec.kernel(block, spec.state)
-        filtered = _filter_mask(spec, block.missing_rate, block.mean, dosage)
-        off = (filtered | block.constant)[:, None]
+        shape = (block.width, K)
+        mean = out.get("mean", np.broadcast_to(block.mean[:, None], shape))
+        missing = out.get("missing_rate", np.broadcast_to(block.missing_rate[:, None], shape))
+        constant = out.get("constant", np.broadcast_to(block.constant[:, None], shape))
+        filtered = _filter_mask(spec, missing, mean, dosage)
+        off = filtered | constant
         score = np.where(off, 0.0, out["score"])
         out["score"] = score
         degenerate = np.asarray(out.get("degenerate", False)) & ~off
@@ -57,13 +63,14 @@ def process_multi_block(source: BlockSource, spec: PassSpec, i: int, out_dir: st
         eligible = ~(off | degenerate | nonfinite)
         if spec.exclude.size:
             eligible &= ~np.isin(np.arange(start + a, start + b), spec.exclude)[:, None]
+        n_filtered += np.count_nonzero(filtered, axis=0)
         n_degenerate += np.count_nonzero(degenerate, axis=0)
         n_nonfinite += np.count_nonzero(nonfinite, axis=0)
-        n_constant += int(block.constant.sum())
+        n_constant += np.count_nonzero(constant, axis=0)
         for c in spec.columns:
             cols[c].append(np.asarray(out[c], dtype=np.float64))
-        cols["missing_rate"].append(block.missing_rate)
-        cols["mean"].append(block.mean)
+        cols["missing_rate"].append(np.asarray(missing, dtype=np.float64))
+        cols["mean"].append(np.asarray(mean, dtype=np.float64))
         cols["filtered"].append(filtered.astype(np.float64))
         parts.append(block_topk_multi(spec.keep, start + a, score, eligible))
     stats = {c: np.concatenate(v) for c, v in cols.items()}
@@ -72,7 +79,7 @@ def process_multi_block(source: BlockSource, spec: PassSpec, i: int, out_dir: st
         "start": start,
         "stop": stop,
         "topk": merge_multi(parts, spec.keep, K),
-        "n_filtered": int(stats["filtered"].sum()),
+        "n_filtered": n_filtered,
         "n_constant": n_constant,
         "n_degenerate": n_degenerate,
         "n_nonfinite": n_nonfinite,
@@ -98,8 +105,8 @@ def write_multi_marker(out_dir: str | Path, record: dict) -> None:
         "index": top.index.tolist(),
         # repr of floats round-trips exactly (-inf pads a short list), so a resumed merge is identical
         "score": [[float(s) if np.isfinite(s) else None for s in row] for row in top.score],
-        "n_filtered": record["n_filtered"],
-        "n_constant": record["n_constant"],
+        "n_filtered": [int(v) for v in record["n_filtered"]],
+        "n_constant": [int(v) for v in record["n_constant"]],
         "n_degenerate": [int(v) for v in record["n_degenerate"]],
         "n_nonfinite": [int(v) for v in record["n_nonfinite"]],
         "sub_block": record.get("sub_block"),
@@ -126,19 +133,26 @@ def read_multi_marker(
         top = MultiTopK(k=k, index=index, score=score)
         n_degenerate = np.asarray(m["n_degenerate"], dtype=np.int64).reshape(K)
         n_nonfinite = np.asarray(m["n_nonfinite"], dtype=np.int64).reshape(K)
+        n_filtered = np.asarray(m["n_filtered"], dtype=np.int64).reshape(K)
+        n_constant = np.asarray(m["n_constant"], dtype=np.int64).reshape(K)
     except (OSError, ValueError, KeyError, TypeError):
         return None
     rows = int(bounds[1]) - int(bounds[0])
     for c in spec.all_columns:
-        wide = c in spec.wide_columns
-        need = rows * 8 * (K if wide else 1)
         try:
-            size = os.stat(layout.stats_chunk(c, block, wide)).st_size
+            size = os.stat(layout.stats_chunk(c, block, wide=True)).st_size
         except OSError:
             return None
-        if size < need or size % 8:  # empty or truncated: what a machine crash can leave
+        if size < rows * 8 * K or size % 8:  # empty or truncated: what a machine crash can leave
             return None
-    return {**m, "topk": top, "n_degenerate": n_degenerate, "n_nonfinite": n_nonfinite}
+    return {
+        **m,
+        "topk": top,
+        "n_filtered": n_filtered,
+        "n_constant": n_constant,
+        "n_degenerate": n_degenerate,
+        "n_nonfinite": n_nonfinite,
+    }
 
 
 __all__ = ["process_multi_block", "read_multi_marker", "write_multi_marker"]

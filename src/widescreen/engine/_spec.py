@@ -123,8 +123,8 @@ class PassSpec:
 
     @property
     def wide_columns(self) -> tuple[str, ...]:
-        """The statistics with one value per response (the kernel's, in a response-matrix pass)."""
-        return self.columns if self.n_responses else ()
+        """The statistics with one value per response (all of them, in a response-matrix pass)."""
+        return self.all_columns if self.n_responses else ()
 
     @property
     def lhs_rows(self) -> int:
@@ -172,7 +172,7 @@ class PassResult:
     response : int, optional
         In a pass over K responses: which response this result is about (`for_response`). The
         merged result of such a pass has ``topk`` a `MultiTopK`, statistics of shape
-        (n_features, K) for the kernel's columns and ``n_degenerate``, ``n_nonfinite`` of shape (K,).
+        (n_features, K) and ``n_filtered``, ``n_constant``, ``n_degenerate``, ``n_nonfinite`` of shape (K,).
     """
 
     name: str
@@ -214,6 +214,8 @@ class PassResult:
             self,
             topk=self.topk.row(k),
             stats=stats,
+            n_filtered=int(np.asarray(self.n_filtered).reshape(-1)[k]),
+            n_constant=int(np.asarray(self.n_constant).reshape(-1)[k]),
             n_degenerate=int(np.asarray(self.n_degenerate).reshape(-1)[k]),
             n_nonfinite=int(np.asarray(self.n_nonfinite).reshape(-1)[k]),
             response=k,
@@ -246,6 +248,8 @@ class PassResult:
             "scheduler": self.scheduler,
         }
         if self.n_responses:
+            out["n_filtered"] = [int(v) for v in np.asarray(self.n_filtered).reshape(-1)]
+            out["n_constant"] = [int(v) for v in np.asarray(self.n_constant).reshape(-1)]
             out["n_degenerate"] = [int(v) for v in np.asarray(self.n_degenerate).reshape(-1)]
             out["n_nonfinite"] = [int(v) for v in np.asarray(self.n_nonfinite).reshape(-1)]
             out["n_responses"] = self.n_responses

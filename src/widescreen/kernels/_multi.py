@@ -204,6 +204,19 @@ def _shift(P: np.ndarray, ML: np.ndarray, rows: slice, n_obs: np.ndarray):
     return nob, P[rows] / np.maximum(nob, 1.0)
 
 
+def _summaries(block: Block, sums_v: np.ndarray, nob: np.ndarray, n: np.ndarray):
+    """Each response's observed mean and missing rate of the features, as its own pass gives them.
+
+    ``sums_v`` (R, w) are sums of the centred values over each response's samples; adding back the
+    overall mean gives the sums of the stored values, exact integers for int8 (so rounded to them, the
+    mean is the correctly rounded quotient a one-response pass computes).
+    """
+    sums = sums_v + nob * block.mean
+    if block.raw.dtype == np.int8:
+        sums = np.rint(sums)
+    return sums / np.maximum(nob, 1.0), (n[:, None] - nob) / np.maximum(n[:, None], 1.0)
+
+
 def linear_multi_statistics(block: Block, state: MultiLinearState) -> dict[str, np.ndarray]:
     """Per-feature, per-response statistics of one block.
 
@@ -212,7 +225,8 @@ def linear_multi_statistics(block: Block, state: MultiLinearState) -> dict[str, 
     dict of ndarray of shape (width, K)
         ``score`` = |correlation|, ``correlation`` (partial, over the response's samples), ``t``,
         ``p_value`` (two-sided), ``degenerate`` (constant on the response's samples, or explained by
-        the covariates there).
+        the covariates there); and the engine's ``mean`` and ``missing_rate`` of each feature over
+        each response's samples, and ``constant`` (no variation on them).
     """
     K, G = state.n_responses, state.groups.shape[1]
     q = state.basis.shape[2]
@@ -240,12 +254,16 @@ def linear_multi_statistics(block: Block, state: MultiLinearState) -> dict[str, 
         t = corr * np.sqrt(df / np.maximum(1.0 - corr**2, 1e-300))
     p = special.betainc(0.5 * df, 0.5, df / (df + t**2))
     p = np.where(degenerate, 1.0, p)
+    mean, missing = _summaries(block, P[gsl], nob, state.n_obs)
     return {
         "score": np.abs(corr).T,
         "correlation": corr.T,
         "t": np.where(degenerate, 0.0, t).T,
         "p_value": p.T,
         "degenerate": degenerate.T,
+        "mean": mean[g].T,
+        "missing_rate": missing[g].T,
+        "constant": (constant[g] | block.constant).T,
     }
 
 
@@ -377,7 +395,8 @@ def score_multi_statistics(block: Block, state: MultiScoreState) -> dict[str, np
     dict of ndarray of shape (width, K)
         The columns of the one-response score test (`logistic_statistics` with ``test="score"``):
         ``score`` = score_chi2 / 2, ``score_chi2``, ``z``, ``p_value``, ``beta``, ``std_error``,
-        ``std_beta``, ``degenerate``.
+        ``std_beta``, ``degenerate``; ``mean``, ``missing_rate``, ``constant`` as in
+        `linear_multi_statistics`.
     """
     K, _, c = state.basis.shape
     lhs_t = state.lhs_t
@@ -414,7 +433,11 @@ def score_multi_statistics(block: Block, state: MultiScoreState) -> dict[str, np
         var_u = state.dispersion[:, None] * info
     chi2 = np.where(dead, 0.0, u * u / var_u)
     beta = np.where(dead, 0.0, u / info)
+    mean, missing = _summaries(block, P[K : 2 * K], nob, state.n_obs)
     return {
+        "mean": mean.T,
+        "missing_rate": missing.T,
+        "constant": (constant | block.constant).T,
         "score": (0.5 * chi2).T,
         "score_chi2": chi2.T,
         "z": np.where(dead, 0.0, u / np.sqrt(var_u)).T,

@@ -63,7 +63,7 @@ def screen_responses(
     list_top : int, optional
         Length of each response's top list when longer than its shortlist.
     filters : FeatureFilter, optional
-        Applied per feature over all analysed samples (the same features for every response).
+        Applied per response, to the features' missing rate and mean over its samples.
     sub_block : int
     keep_values : bool
         Fill each result's ``values``: the shortlist's values, read once for all responses after the
@@ -85,8 +85,7 @@ def screen_responses(
         ``pass_result`` (its view of the pass, `PassResult.for_response`; ``statistics`` of shape
         (n_features,) without a run folder), ``extra`` = {"name", "response" (its column), "n"
         (its samples), "pass" (the merged `PassResult` of the whole pass)}. Every statistic equals
-        that of `screen_problem` on a problem of the response's samples alone (to rounding), except
-        that the filters look at all analysed samples.
+        that of `screen_problem` on a problem of the response's samples alone (to rounding).
 
     Raises
     ------
