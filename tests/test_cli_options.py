@@ -55,6 +55,9 @@ REFUSED = [
     ([*RUN, "--alpha", "1.5"], "--alpha", "between 0 and 1 (exclusive); got 1.5"),
     ([*RUN, "--alpha", "0"], "--alpha", "between 0 and 1 (exclusive); got 0"),
     ([*RUN, "--seed", "-2"], "--seed", "at least 0; got -2"),
+    ([*RUN, "--stability", "-1"], "--stability", "at least 0; got -1"),
+    ([*RUN, "--stability-threshold", "0.5"], "--stability-threshold", "above 0.5 and at most 1"),
+    ([*RUN, "--cv-folds", "1"], "--cv-folds", "0 (off) or at least 2; got 1"),
     (
         ["simulate", "x.zarr", "--family", "binary"],
         "--family",

@@ -175,7 +175,14 @@ def test_a_table_that_does_not_match_its_schema_is_refused():
     good["coefficient"] = [0.1]
     with pytest.raises(ValueError, match=r"column 'index', row 1: not an integer"):
         format_table(ENTRIES, good)
-    assert set(TABLES) == {"ranking.tsv", "model.tsv", "iterations.tsv", "entries.tsv"}
+    assert set(TABLES) == {
+        "ranking.tsv",
+        "model.tsv",
+        "iterations.tsv",
+        "entries.tsv",
+        "stability.tsv",
+        "cv.tsv",
+    }
 
 
 def test_the_readme_documents_every_column_with_its_dtype():

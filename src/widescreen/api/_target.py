@@ -18,6 +18,7 @@ from sklearn.utils.multiclass import check_classification_targets, type_of_targe
 from sklearn.utils.validation import check_array, column_or_1d
 
 from ..families import Family
+from ..workflow import concordance_index
 
 
 def no_target(estimator) -> ValueError:
@@ -117,37 +118,6 @@ def survival_target(y) -> tuple[np.ndarray, np.ndarray]:
 
 def target_length(y) -> int:
     return len(y) if hasattr(y, "__len__") else np.asarray(y).shape[0]
-
-
-def concordance_index(time: np.ndarray, event: np.ndarray, risk: np.ndarray) -> float:
-    """Harrell's C: among usable pairs (the shorter time is an event), the share where the shorter
-    time has the higher risk; risk ties count one half (Harrell et al. 1982, JAMA 247:2543).
-
-    Vectorised over pairs through sorting: for each event time t_i, the samples still at risk
-    (time > t_i) are counted by their risk relative to risk_i with two searchsorted calls per
-    distinct event, so the cost is O(n log n) per event, without an n x n matrix.
-    """
-    time = np.asarray(time, dtype=np.float64)
-    event = np.asarray(event, dtype=bool)
-    risk = np.asarray(risk, dtype=np.float64)
-    order = np.argsort(time, kind="stable")
-    time, event, risk = time[order], event[order], risk[order]
-    # Suffix sorted risks: samples with a strictly longer time than t_i are those after the last
-    # index with time == t_i.
-    after = np.searchsorted(time, time, side="right")
-    concordant = 0.0
-    usable = 0.0
-    for start in np.unique(after[event]):
-        later = np.sort(risk[start:])
-        here = event & (after == start)
-        r = risk[here]
-        lo = np.searchsorted(later, r, side="left")
-        hi = np.searchsorted(later, r, side="right")
-        concordant += float(np.sum(lo) + 0.5 * np.sum(hi - lo))
-        usable += float(r.size * later.size)
-    if usable == 0:
-        raise ValueError("no usable pairs for the concordance index (no event before a later time)")
-    return concordant / usable
 
 
 __all__ = ["Target", "binary_target", "concordance_index", "read_target", "survival_target"]

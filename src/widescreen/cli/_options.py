@@ -94,6 +94,20 @@ def level(value: float) -> float:
     return value
 
 
+def stability_share(value: float) -> float:
+    """A share of half-samples above one half, at most 1 (the stability threshold)."""
+    if not 0.5 < value <= 1.0:
+        raise typer.BadParameter(f"must be above 0.5 and at most 1; got {value:g}")
+    return value
+
+
+def cv_folds_check(value: int) -> int:
+    """0 (off) or at least 2 folds."""
+    if value == 1 or value < 0:
+        raise typer.BadParameter(f"must be 0 (off) or at least 2; got {value}")
+    return value
+
+
 # ------------------------------------------------------------------------------------------------
 # options shared by `screen` and `run`
 

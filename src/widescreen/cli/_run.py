@@ -25,12 +25,15 @@ from ._options import (
     StoreArg,
     WorkersOpt,
     at_least,
+    cv_folds_check,
     level,
+    stability_share,
 )
 from ._progress import progress_display
 
 _MODEL = "Model and tuning"
 _THRESH = "Thresholds"
+_TRUST = "Stability and validation"
 
 
 @command("run")
@@ -120,6 +123,39 @@ def run_cmd(
             rich_help_panel=_THRESH,
         ),
     ] = 0.05,
+    stability: Annotated[
+        int,
+        typer.Option(
+            "--stability",
+            metavar="B",
+            help="Stability selection: screen and refit on B complementary pairs of half-samples; "
+            "per feature its selection frequency (0: off).",
+            callback=at_least(0),
+            rich_help_panel=_TRUST,
+        ),
+    ] = 0,
+    stability_threshold: Annotated[
+        float,
+        typer.Option(
+            "--stability-threshold",
+            metavar="PI",
+            help="Stable set: features selected in at least this share of the 2B halves "
+            "(above 0.5, at most 1).",
+            callback=stability_share,
+            rich_help_panel=_TRUST,
+        ),
+    ] = 0.6,
+    cv_folds: Annotated[
+        int,
+        typer.Option(
+            "--cv-folds",
+            metavar="K",
+            help="Held-out accuracy: K-fold cross-validation of screen and refit, screening "
+            "inside each fold (0: off).",
+            callback=cv_folds_check,
+            rich_help_panel=_TRUST,
+        ),
+    ] = 0,
     workers: WorkersOpt = None,
     scheduler: SchedulerOpt = None,
     restart: RestartOpt = False,
@@ -151,6 +187,9 @@ def run_cmd(
         seed=seed,
         drop_missing=drop_missing,
         drop_rare=drop_rare,
+        stability=stability,
+        stability_threshold=stability_threshold,
+        cv_folds=cv_folds,
     )
     result = run(
         store,
@@ -174,6 +213,18 @@ def run_cmd(
     lam = first[0].get("lambda_gc") if first else None
     if lam is not None:
         typer.echo(lambda_gc_line(lam))
+    stab = result.extra.get("stability")
+    if stab is not None:
+        ss = "" if stab.bound_ss is None else f", {stab.bound_ss:.3g} if unimodal (Shah-Samworth)"
+        typer.echo(
+            f"stability selection over {2 * stab.n_pairs} half-samples: {stab.stable.size} "
+            f"feature(s) selected in at least {stab.threshold:g} of them; expected false "
+            f"selections <= {stab.bound_mb:.3g} (Meinshausen-Buhlmann){ss}; "
+            f"in {out / 'stability.tsv'}"
+        )
+    cv = result.extra.get("cv")
+    if cv is not None:
+        typer.echo(f"{cv.text()}; per fold in {out / 'cv.tsv'}")
     for warning in result.warnings:
         typer.echo(f"warning: {warning}", err=True)
     if report:

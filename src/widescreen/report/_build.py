@@ -16,8 +16,10 @@ import numpy as np
 
 from ..engine._runfolder import RunFolder, atomic_write
 from ..schema import (
+    CV,
     MODEL,
     RANKING,
+    STABILITY,
     FitRecord,
     IterationRecord,
     ManifestRecord,
@@ -37,6 +39,7 @@ FIGURE_NAMES = (
     "selection_trace",
     "iterations",
     "criterion",
+    "stability",
 )
 
 #: Features labelled in the Manhattan plot of a screen (the strongest of the shortlist).
@@ -100,6 +103,8 @@ class RunSummary:
     notes: list[str] = field(default_factory=list)
     cautions: list[str] = field(default_factory=list)
     model_rows: object | None = None
+    stability: object | None = None
+    cv: object | None = None
 
 
 # --------------------------------------------------------------------------------------------
@@ -493,6 +498,45 @@ def _iteration_figures(summary: RunSummary) -> None:
 
 
 # --------------------------------------------------------------------------------------------
+# The figure of stability selection
+
+
+def _stability_figure(summary: RunSummary) -> None:
+    t = summary.stability
+    if t is None or not len(t):
+        return
+    rec = summary.record.extra.get("stability") or {}
+    pi = float(rec.get("threshold", summary.record.config.get("stability_threshold", 0.6)))
+    halves = 2 * int(rec.get("n_pairs", summary.record.config.get("stability", 0)))
+    freq = t["selection_frequency"].to_numpy(np.float64)
+    names = [str(f) for f in t["feature"]]
+    stable = int(t["stable"].sum())
+    fig = _plots.stability_plot(freq, pi, in_model=t["in_model"].to_numpy(bool), names=names)
+    bound = rec.get("bound_mb")
+    summary.figures.append(
+        FigureRecord(
+            "stability",
+            "Stability selection",
+            f"Selection frequency of every feature selected in at least one of the {halves} "
+            f"half-samples (screen and refit on each half), against its rank; blue diamonds: the "
+            f"final model's features; dashed line: the threshold {pi:g}. The {stable} features on "
+            "or above it are the stable set"
+            + (
+                f"; the expected number of false selections among them is at most {bound:.3g} "
+                "(Meinshausen & Buhlmann 2010)."
+                if bound is not None
+                else "."
+            )
+            + " The ten most frequent are labelled.",
+            _plots.png_bytes(fig),
+            f"Scatter plot of the selection frequencies of {len(t)} features against rank, "
+            f"threshold {pi:g}; {stable} features at or above it: "
+            f"{', '.join(names[:stable])[:300]}.",
+        )
+    )
+
+
+# --------------------------------------------------------------------------------------------
 # Cautions that depend on the run
 
 
@@ -565,12 +609,15 @@ def make_report(
         iterations=_table(layout, "iterations.tsv"),
         entries=_table(layout, "entries.tsv"),
         top=int(top),
+        stability=_table(layout, STABILITY.file),
+        cv=_table(layout, CV.file),
     )
     if summary.pass_name is not None:
         _stats_figures(summary, run, threshold=threshold, max_points=max_points)
     else:
         summary.notes.append("The run folder holds no per-feature statistics; no pictures of them.")
     _iteration_figures(summary)
+    _stability_figure(summary)
     summary.cautions = run_cautions(summary)
     written = []
     for rec in summary.figures:

@@ -246,6 +246,43 @@ def _shortlist_table(summary) -> str:
     )
 
 
+def _stability_line(summary) -> str | None:
+    """The stable set and its error bounds, from the manifest's ``stability``."""
+    rec = summary.record.extra.get("stability")
+    if not rec:
+        return None
+    ss = rec.get("bound_ss_unimodal")
+    return (
+        f"{len(rec.get('stable', []))} features selected in at least {rec['threshold']:g} of "
+        f"{2 * rec['n_pairs']} half-samples (screen and refit on each); expected false selections "
+        f"<= {rec['bound_mb']:.3g} (Meinshausen & Buhlmann 2010)"
+        + (f", <= {ss:.3g} if unimodal (Shah & Samworth 2013)" if ss is not None else "")
+    )
+
+
+#: Names of the held-out metrics on the page.
+METRIC_NAMES = {"r2": "R^2", "auc": "AUC", "deviance": "mean deviance", "concordance": "C-index"}
+
+
+def _cv_line(summary) -> str | None:
+    """The cross-validated accuracy (mean +- sd over the folds), from the manifest's ``cv``."""
+    rec = summary.record.extra.get("cv")
+    if not rec:
+        return None
+
+    def num(v):
+        return "NA" if v is None else f"{v:.3f}"
+
+    parts = [
+        f"{METRIC_NAMES.get(m, m)} {num(v.get('mean'))} +- {num(v.get('sd'))}"
+        for m, v in rec.get("metrics", {}).items()
+    ]
+    return (
+        ", ".join(parts) + f" (mean +- sd over {rec['n_folds']} folds; screen and refit on the "
+        "training folds only, so the held-out samples never chose the features)"
+    )
+
+
 def _summary(summary) -> str:
     rec = summary.record
     cfg = rec.config
@@ -287,6 +324,8 @@ def _summary(summary) -> str:
             else None,
         ),
         ("lambda_GC", f"{lam:.3f}" if lam is not None and np.isfinite(lam) else None),
+        ("stability selection", _stability_line(summary)),
+        ("cross-validation", _cv_line(summary)),
     ]
     parts = [
         '<section id="summary"><h2>Summary</h2>',
@@ -354,6 +393,23 @@ def _tables(summary) -> str:
                 summary.model,
                 skip=(*_redundant(summary.model), "missing_rate", "mean", "allele_freq"),
             ),
+        ]
+    st = summary.stability
+    if st is not None:
+        shown = min(summary.top, len(st))
+        parts += [
+            "<h3>Stability selection</h3>",
+            f"<p>The {shown} most frequently selected of {len(st)} features selected in at least "
+            "one half-sample (stability.tsv); <i>stable</i>: at or above the threshold.</p>",
+            html_table(st, rows=summary.top),
+        ]
+    if summary.cv is not None:
+        parts += [
+            "<h3>Cross-validation</h3>",
+            "<p>Held-out accuracy per fold (cv.tsv): each fold's screen and refit saw only the "
+            "other folds. Screening on all samples and then cross-validating only the refit would "
+            "be optimistic (Ambroise & McLachlan 2002).</p>",
+            html_table(summary.cv, skip=_redundant(summary.cv)[:-1]),
         ]
     if summary.iterations is not None:
         parts += [

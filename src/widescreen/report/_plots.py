@@ -22,7 +22,7 @@ import numpy as np
 from matplotlib import rc_context
 from matplotlib.backends.backend_agg import FigureCanvasAgg
 from matplotlib.figure import Figure
-from matplotlib.ticker import EngFormatter, MaxNLocator
+from matplotlib.ticker import EngFormatter, FuncFormatter, MaxNLocator
 
 from ._stats import GENOME_WIDE
 
@@ -606,6 +606,60 @@ def selection_trace_plot(
     ax.set_xlabel("iteration (0 = the marginal screen)")
     ax.set_title("Entries and exits of the selected set")
     ax.grid(axis="x", color="#e5e5e5", lw=0.6)
+    ax.legend(fontsize=8, frameon=False, loc="upper left", bbox_to_anchor=(1.0, 1.0))
+    ax.spines[["top", "right"]].set_visible(False)
+    return fig
+
+
+@plain_text
+def stability_plot(
+    frequency: np.ndarray,
+    threshold: float,
+    *,
+    in_model: np.ndarray | None = None,
+    names: list[str] | None = None,
+    label: int = 10,
+) -> Figure:
+    """Selection frequency against its rank (most frequent first), the threshold as a dashed line.
+
+    Parameters
+    ----------
+    frequency : ndarray of shape (m,)
+        Selection frequencies, in decreasing order.
+    threshold : float
+        The stable set's threshold pi_thr.
+    in_model : ndarray of bool of shape (m,), optional
+        In the run's final model (blue diamonds; others sky-blue circles).
+    names : list of str, optional
+        Feature ids; the first ``label`` are written beside their points.
+    """
+    f = np.asarray(frequency, float)
+    rank = np.arange(1, f.size + 1)
+    model = np.zeros(f.size, bool) if in_model is None else np.asarray(in_model, bool)
+    fig = _figure(7.0, 4.0)
+    ax = fig.add_subplot()
+    if (~model).any():
+        ax.plot(rank[~model], f[~model], "o", ms=4, color=OI_SKY, label="other features")
+    if model.any():
+        ax.plot(rank[model], f[model], "D", ms=6, color=MODEL, label="in the final model")
+    ax.axhline(threshold, ls="--", lw=1.2, color=LINE_GW, label=f"threshold {threshold:g}")
+    if names:
+        texts = [
+            ax.annotate(
+                str(n), (r, v), xytext=(4, 3), textcoords="offset points", fontsize=7, rotation=30
+            )
+            for n, r, v in zip(names[:label], rank[:label], f[:label], strict=False)
+        ]
+        _plain_labels(texts)
+    if f.size > 50:  # a long tail of rarely selected features: spread the top ranks out
+        ax.set_xscale("log")
+        ax.xaxis.set_major_formatter(FuncFormatter(lambda v, _: f"{v:g}"))
+    else:
+        ax.xaxis.set_major_locator(MaxNLocator(integer=True))
+    ax.set_ylim(-0.02, 1.12)
+    ax.set_xlabel("rank by selection frequency" + (" (log scale)" if f.size > 50 else ""))
+    ax.set_ylabel("selection frequency")
+    ax.set_title("Stability selection")
     ax.legend(fontsize=8, frameon=False, loc="upper left", bbox_to_anchor=(1.0, 1.0))
     ax.spines[["top", "right"]].set_visible(False)
     return fig

@@ -35,12 +35,14 @@ from ._stats import (
     stats_frame,
 )
 from ._tables import (
+    CV,
     ENTRIES,
     FIT_SLOT,
     ITERATION_SLOT,
     ITERATIONS,
     MODEL,
     RANKING,
+    STABILITY,
     STATISTICS,
     STATISTICS_SLOT,
     STATS,
@@ -59,12 +61,14 @@ from ._tables import (
 )
 
 __all__ = [
+    "CV",
     "ENTRIES",
     "FIT_SLOT",
     "ITERATIONS",
     "ITERATION_SLOT",
     "MODEL",
     "RANKING",
+    "STABILITY",
     "STATISTICS",
     "STATISTICS_SLOT",
     "STATS",

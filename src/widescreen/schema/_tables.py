@@ -130,6 +130,12 @@ ALLELE_FREQ = Column(
 )
 CHROM = Column("chrom", "string", "chromosome from the store's annotations; NA without them")
 POS = Column("pos", "Int64", "position from the store's annotations; NA without them")
+SELECTION_FREQUENCY = Column(
+    "selection_frequency",
+    "float64",
+    "share of the 2B half-samples whose screen and refit selected the feature (`run --stability "
+    "B`); NA without stability selection",
+)
 
 #: Where a family's statistics go (all float64; see `STATISTICS`).
 STATISTICS_SLOT = Slot("statistics", "the family's statistics other than score, in its order")
@@ -153,6 +159,7 @@ RANKING = TableSpec(
             "bool",
             "on the shortlist: among the top d and, in `run` with --threshold, kept by the threshold",
         ),
+        SELECTION_FREQUENCY,
     ),
 )
 
@@ -187,6 +194,11 @@ MODEL = TableSpec(
             "inference (the same data chose the features)",
         ),
         FIT_SLOT,
+        Column(
+            "selection_frequency",
+            "float64",
+            SELECTION_FREQUENCY.meaning + "; NA for the intercept and covariate rows",
+        ),
         Column(
             "entered",
             "Int64",
@@ -264,7 +276,51 @@ STATS = TableSpec(
     ),
 )
 
-TABLES: dict[str, TableSpec] = {t.file: t for t in (RANKING, MODEL, ITERATIONS, ENTRIES)}
+STABILITY = TableSpec(
+    "stability.tsv",
+    "`run --stability B`: every feature selected in at least one of the 2B half-samples, most "
+    "frequent first.",
+    (
+        FEATURE,
+        Column("rank", "int64", "1 = most frequently selected (ties by store position)"),
+        Column(
+            "selection_frequency",
+            "float64",
+            "share of the 2B half-samples whose screen and refit selected the feature",
+        ),
+        Column("stable", "bool", "selection frequency at or above --stability-threshold"),
+        Column("in_model", "bool", "in the final model of the run (model.tsv)"),
+        INDEX,
+    ),
+)
+
+CV = TableSpec(
+    "cv.tsv",
+    "`run --cv-folds K`: the held-out accuracy of the screen -> refit pipeline, one row per fold "
+    "(screening done on the training folds only).",
+    (
+        Column("fold", "int64", "fold number, 1..K"),
+        Column("n_train", "int64", "samples the fold's screen and refit saw"),
+        Column("n_test", "int64", "held-out samples the model predicted"),
+        Column("selected", "int64", "features in the fold's model"),
+        Column("r2", "float64", "held-out R^2 (linear and model-free families); else NA"),
+        Column("auc", "float64", "held-out area under the ROC curve (logistic); else NA"),
+        Column(
+            "deviance",
+            "float64",
+            "held-out mean deviance per sample (logistic: binomial, poisson: Poisson); else NA",
+        ),
+        Column(
+            "concordance",
+            "float64",
+            "held-out Harrell's concordance index of the linear predictor (cox); else NA",
+        ),
+    ),
+)
+
+TABLES: dict[str, TableSpec] = {
+    t.file: t for t in (RANKING, MODEL, ITERATIONS, ENTRIES, STABILITY, CV)
+}
 
 
 # --------------------------------------------------------------------------------------------
@@ -415,10 +471,12 @@ def read_table(path: str | os.PathLike, spec: TableSpec | None = None):
 
 
 __all__ = [
+    "CV",
     "ENTRIES",
     "ITERATIONS",
     "MODEL",
     "RANKING",
+    "STABILITY",
     "STATISTICS",
     "STATS",
     "TABLES",

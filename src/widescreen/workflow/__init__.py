@@ -18,14 +18,25 @@ from ..store import (
     join_outcome,
     read_outcome_table,
 )
+from ._crossval import CVResult, cross_validate
 from ._iterate import IterateConfig, IterativeResult, iterate
+from ._metrics import (
+    binomial_deviance,
+    concordance_index,
+    held_out_metrics,
+    poisson_deviance,
+    r2_score,
+    roc_auc,
+)
 from ._passes import PassContext
 from ._problem import Problem, load_problem, problem_from_arrays, shortlist_size
+from ._resample import complementary_pairs, cv_folds, strata_of
 from ._responses import response_names, screen_responses
 from ._run import run
 from ._screen import ScreenConfig, ScreenResult, screen, screen_problem
 from ._session import RunSession, open_session
 from ._split import intersect_ranked, split_halves
+from ._stability import StabilityResult, mb_bound, ss_unimodal_bound, stability_selection
 from ._thresholds import (
     ThresholdRule,
     bh_cutoff,
@@ -35,6 +46,7 @@ from ._thresholds import (
 )
 
 __all__ = [
+    "CVResult",
     "IterateConfig",
     "IterativeResult",
     "JoinedOutcome",
@@ -45,23 +57,37 @@ __all__ = [
     "RunSession",
     "ScreenConfig",
     "ScreenResult",
+    "StabilityResult",
     "ThresholdRule",
     "bh_cutoff",
     "bh_cutoff_blocks",
+    "binomial_deviance",
     "bonferroni_cutoff",
+    "complementary_pairs",
+    "concordance_index",
+    "cross_validate",
+    "cv_folds",
+    "held_out_metrics",
     "intersect_ranked",
     "iterate",
     "join_outcome",
     "load_problem",
+    "mb_bound",
     "open_session",
     "permutation_cutoff",
+    "poisson_deviance",
     "problem_from_arrays",
+    "r2_score",
     "read_outcome_table",
     "response_names",
+    "roc_auc",
     "run",
     "screen",
     "screen_problem",
     "screen_responses",
     "shortlist_size",
     "split_halves",
+    "ss_unimodal_bound",
+    "stability_selection",
+    "strata_of",
 ]

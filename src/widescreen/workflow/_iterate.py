@@ -20,7 +20,7 @@ from dataclasses import asdict, dataclass, field, fields
 
 import numpy as np
 
-from .._config import ConfigError, check_int, check_keep
+from .._config import ConfigError, check_int, check_keep, check_number
 from ..engine import FeatureFilter, PassResult, RunFolder, read_columns
 from ..schema import FitRecord, IterationRecord
 from ..store import prepare_block
@@ -70,6 +70,13 @@ class IterateConfig:
         Seeds the halves, the permutations and the cross-validation folds.
     drop_missing, drop_rare : float, optional
     sub_block : int
+    stability : int
+        B complementary pairs of half-samples for stability selection (0: off; ``run`` only).
+    stability_threshold : float
+        pi_thr in (1/2, 1]: the stable set is the features selected in at least this share of the
+        halves.
+    cv_folds : int
+        K-fold cross-validation of the screen -> refit pipeline (0: off; ``run`` only).
     """
 
     response: str = "y"
@@ -91,11 +98,19 @@ class IterateConfig:
     drop_missing: float | None = None
     drop_rare: float | None = None
     sub_block: int = 1024
+    stability: int = 0
+    stability_threshold: float = 0.6
+    cv_folds: int = 0
 
     def __post_init__(self) -> None:
         check_problem_fields(self)
         check_keep("shortlist", self.shortlist)
         check_int("max_iter", self.max_iter, 0)
+        check_int("stability", self.stability, 0)
+        check_number("stability_threshold", self.stability_threshold, 0.5, 1.0, open_low=True)
+        check_int("cv_folds", self.cv_folds, 0)
+        if self.cv_folds == 1:
+            raise ConfigError("cv_folds", "0 (off) or at least 2", self.cv_folds)
         check_int("seed", self.seed, 0)
         if not isinstance(self.split, bool):
             raise ConfigError("split", "True or False", self.split)
@@ -119,6 +134,12 @@ class IterateConfig:
     def to_dict(self) -> dict:
         d = asdict(self)
         d["covariates"] = list(self.covariates)
+        # Off, these settings are left out of the record: run folders made before they existed
+        # still resume.
+        if not self.stability:
+            del d["stability"], d["stability_threshold"]
+        if not self.cv_folds:
+            del d["cv_folds"]
         return d
 
     @classmethod

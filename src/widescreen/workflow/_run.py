@@ -3,7 +3,8 @@
 Writes into the run folder, besides ``manifest.json`` (with the final ``model``, the same numbers as
 model.tsv) and ``passes/NAME/`` (``screen``, ``iter1``, ...; ``screen_a`` / ``screen_b``, ... after
 sample splitting): ``model.tsv``, ``iterations.tsv``, ``entries.tsv`` and (without splitting)
-``ranking.tsv``. Their columns are specified in `widescreen.schema` and documented in the README.
+``ranking.tsv``; with ``stability`` (`_stability`) ``stability.tsv`` and the manifest's ``stability``,
+with ``cv_folds`` (`_crossval`) ``cv.tsv`` and the manifest's ``cv``. Their columns are specified in `widescreen.schema` and documented in the README.
 """
 
 from __future__ import annotations
@@ -13,12 +14,23 @@ import time
 
 import numpy as np
 
-from ..schema import ENTRIES, ITERATIONS, MODEL, RANKING, IterationRecord
+from ..schema import CV, ENTRIES, ITERATIONS, MODEL, RANKING, STABILITY, IterationRecord
+from ._crossval import cross_validate
 from ._iterate import IterateConfig, IterativeResult, iterate
 from ._problem import load_problem
 from ._screen import dataset_record
-from ._session import open_session
-from ._tables import entries_text, iterations_text, model_record, model_text, ranking_text
+from ._session import RunSession, open_session
+from ._stability import stability_selection
+from ._subsets import SubsetScreen
+from ._tables import (
+    cv_text,
+    entries_text,
+    iterations_text,
+    model_record,
+    model_text,
+    ranking_text,
+    stability_text,
+)
 
 
 def run(
@@ -80,15 +92,27 @@ def run(
         session.manifest["size_budget"] = result.budget
         session.manifest["selected"] = [str(f) for f in result.feature_ids]
         session.manifest["model"] = model_record(result).to_dict()
+        _trust(result, config, session, scheduler, progress, memory_budget)
         records = [IterationRecord.from_dict(r) for r in result.iterations]
         write = session.run.write_table
+        stab = result.extra.get("stability")
+        if stab is not None:
+            write(STABILITY.file, stability_text(problem, stab, result.index))
+        if result.extra.get("cv") is not None:
+            write(CV.file, cv_text(result.extra["cv"]))
         if not config.split:
             top = result.screen[0].topk
             shortlisted = np.isin(top.index, records[0].candidates)
             write(
                 RANKING.file,
                 ranking_text(
-                    problem, session.run, result.screen[0], top.index, top.score, shortlisted
+                    problem,
+                    session.run,
+                    result.screen[0],
+                    top.index,
+                    top.score,
+                    shortlisted,
+                    None if stab is None else stab.frequency_of(top.index),
                 ),
             )
         write(ITERATIONS.file, iterations_text(records, config.criterion))
@@ -96,6 +120,56 @@ def run(
         write(MODEL.file, model_text(result))
         session.finish(seconds_total=round(time.perf_counter() - t0, 3))
         return result
+
+
+def _trust(
+    result: IterativeResult,
+    config: IterateConfig,
+    session: RunSession,
+    scheduler,
+    progress,
+    memory_budget,
+) -> None:
+    """Stability selection and cross-validation of the pipeline, when asked for (into result.extra).
+
+    Each keeps its per-subset progress in the manifest (``stability_state``, ``cv_state``), saved
+    after every step, so an interrupted run resumes where it stopped.
+    """
+    if not config.stability and not config.cv_folds:
+        return
+    where = SubsetScreen(
+        result.problem,
+        config.filters,
+        config.sub_block,
+        scheduler,
+        progress,
+        memory_budget,
+    )
+    common = {
+        "shortlist": config.shortlist,
+        "settings": config.fit,
+        "seed": config.seed,
+        "n_candidates": result.n_screened,
+        "save": session.save,
+    }
+    m = session.manifest
+    if config.stability:
+        stab = stability_selection(
+            where,
+            n_pairs=config.stability,
+            threshold=config.stability_threshold,
+            state=m.setdefault("stability_state", {}),
+            **common,
+        )
+        result.extra["stability"] = stab
+        m["stability"] = stab.record(result.problem)
+    if config.cv_folds:
+        cv = cross_validate(
+            where, n_folds=config.cv_folds, state=m.setdefault("cv_state", {}), **common
+        )
+        result.extra["cv"] = cv
+        m["cv"] = cv.record()
+    session.save()
 
 
 __all__ = ["run"]

@@ -10,10 +10,12 @@ from __future__ import annotations
 import numpy as np
 
 from ..schema import (
+    CV,
     ENTRIES,
     ITERATIONS,
     MODEL,
     RANKING,
+    STABILITY,
     FitRecord,
     IterationRecord,
     ModelRecord,
@@ -50,6 +52,7 @@ def ranking_columns(
     index: np.ndarray,
     score: np.ndarray,
     shortlisted: np.ndarray,
+    frequency: np.ndarray | None = None,
 ) -> dict[str, object]:
     """The columns of ``ranking.tsv`` for the given features, strongest first.
 
@@ -61,6 +64,8 @@ def ranking_columns(
     index : ndarray of int of shape (k,)
     score : ndarray of shape (k,)
     shortlisted : ndarray of bool of shape (k,)
+    frequency : ndarray of shape (k,), optional
+        Selection frequencies (stability selection); NA without them.
     """
     fam = problem.family
     chrom, pos = _annotations(problem, index)
@@ -79,6 +84,7 @@ def ranking_columns(
         pos=pos,
         index=index,
         shortlisted=np.asarray(shortlisted, dtype=bool),
+        selection_frequency=np.full(index.size, np.nan) if frequency is None else frequency,
     )
     return cols
 
@@ -90,13 +96,14 @@ def ranking_text(
     index: np.ndarray,
     score: np.ndarray,
     shortlisted: np.ndarray,
+    frequency: np.ndarray | None = None,
 ) -> str:
     """``ranking.tsv`` of a pass (statistics from the run folder, or in memory without one)."""
     if run is not None:
         stats = read_stats_at(run, pass_result.name, index)
     else:
         stats = {c: v[index] for c, v in pass_result.stats.items()}
-    cols = ranking_columns(problem, stats, index, score, shortlisted)
+    cols = ranking_columns(problem, stats, index, score, shortlisted, frequency)
     return format_table(RANKING, cols, statistics=statistic_columns(problem.family.columns))
 
 
@@ -164,6 +171,9 @@ def model_columns(result) -> dict[str, object]:
     for col, values in MODEL_FIT_COLUMNS:
         v = list(values(result))
         cols[col.name] = v[:h] + list(np.asarray(v[h:])[order])
+    stab = getattr(result, "extra", {}).get("stability")
+    freq = stab.frequency_of(index) if stab is not None else np.full(index.size, np.nan)
+    cols["selection_frequency"] = nan + freq.tolist()
     cols["entered"] = na + result.entered[order].tolist()
     cols["score"] = nan + result.marginal["score"][order].tolist()
     for c in statistic_columns(problem.family.columns):
@@ -240,8 +250,37 @@ def entries_text(problem: Problem, records: list[IterationRecord]) -> str:
     return format_table(ENTRIES, entries_columns(problem, records))
 
 
+def stability_text(problem: Problem, stab, in_model: np.ndarray) -> str:
+    """``stability.tsv``: every feature selected in some half, most frequent first (then by index)."""
+    order = np.lexsort((stab.index, -stab.frequency))
+    index, freq = stab.index[order], stab.frequency[order]
+    return format_table(
+        STABILITY,
+        {
+            "feature": problem.feature_ids(index),
+            "rank": np.arange(1, index.size + 1),
+            "selection_frequency": freq,
+            "stable": freq >= stab.threshold - 1e-12,
+            "in_model": np.isin(index, in_model),
+            "index": index,
+        },
+    )
+
+
+def cv_text(cv) -> str:
+    """``cv.tsv``: one row per fold; the metrics that are not the family's are NA."""
+    rows = cv.folds
+    cols: dict[str, list] = {
+        c: [r[c] for r in rows] for c in ("fold", "n_train", "n_test", "selected")
+    }
+    for m in ("r2", "auc", "deviance", "concordance"):
+        cols[m] = [r.get(m, float("nan")) for r in rows]
+    return format_table(CV, cols)
+
+
 __all__ = [
     "MODEL_FIT_COLUMNS",
+    "cv_text",
     "entries_columns",
     "entries_text",
     "iterations_columns",
@@ -251,4 +290,5 @@ __all__ = [
     "model_text",
     "ranking_columns",
     "ranking_text",
+    "stability_text",
 ]

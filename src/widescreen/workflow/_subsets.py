@@ -1,0 +1,197 @@
+"""The screen -> refit pipeline on many subsets of the samples at once (stability halves, CV folds).
+
+Three phases, each resumable from the manifest record it keeps per subset:
+
+1. **Screen**: every subset's top ``d`` features (`screen_subsets`). The subsets are the columns of a
+   response matrix Y of shape (n, K) (NaN = the sample is not in that subset), screened by
+   `screen_responses`.
+2. **Read**: the union of all the subsets' shortlists, once, on every analysed sample (float64 with
+   NaN for a missing value; `widescreen.engine.read_columns`).
+3. **Refit**: per subset, its shortlist's columns on its samples (missing values imputed with the
+   subset's own means, then centred) and the run's penalised refit (`fit_union`, the same penalty,
+   tuning and EBIC candidate count as the run's).
+
+The rule per subset is the pipeline of ``run --max-iter 0``: one marginal screen and one refit. The
+conditional passes of the iterative screen are not rerun per subset (each would be one more pass over
+the store per subset and iteration); with ``--max-iter 0`` the frequencies and the cross-validated
+accuracy describe exactly the pipeline that made the model, otherwise its first step and refit.
+"""
+
+from __future__ import annotations
+
+import time
+from collections.abc import Callable
+from dataclasses import dataclass, replace
+from typing import Any
+
+import numpy as np
+
+from ..engine import FeatureFilter, read_columns
+from ._passes import PassContext
+from ._problem import Problem
+from ._refit import FitSettings, FittedModel, fit_union
+
+
+@dataclass(frozen=True)
+class SubsetScreen:
+    """Where and how the subsets are screened (what every pass of the run shares).
+
+    Attributes
+    ----------
+    problem : Problem
+    filters : FeatureFilter
+    sub_block : int
+    scheduler, progress, memory_budget : optional
+        As for `PassContext`.
+    """
+
+    problem: Problem
+    filters: FeatureFilter
+    sub_block: int = 1024
+    scheduler: Any = None
+    progress: Callable[[str], Any] | None = None
+    memory_budget: int | str | None = None
+
+
+def response_matrix(problem: Problem, masks: np.ndarray) -> np.ndarray:
+    """Y of shape (n, K): the response where ``masks`` (n, K) is true, NaN elsewhere."""
+    y = np.asarray(problem.response.y, dtype=np.float64)
+    return np.where(masks, y[:, None], np.nan)
+
+
+def screen_responses(
+    where: SubsetScreen, Y: np.ndarray, *, shortlist: int, names: list[str]
+) -> tuple[list[np.ndarray], int]:
+    """Top ``shortlist`` features of each column of Y (strongest first), and the features tested.
+
+    Column k of Y is the problem's response on the samples where it is finite (NaN: not in the
+    subset); the event indicator and the covariates are the problem's, restricted to those samples.
+
+    One pass per column through the run's pass builder (the fallback until passes take a response
+    matrix): each pass reads and decodes the store again, so K columns cost K passes.
+    """
+    problem = where.problem
+    ctx = PassContext(
+        problem,
+        filters=where.filters,
+        sub_block=where.sub_block,
+        run=None,  # the statistics of a subset's pass are not kept: only its shortlist
+        scheduler=where.scheduler,
+        progress=where.progress,
+        memory_budget=where.memory_budget,
+    )
+    out: list[np.ndarray] = []
+    n_tested = problem.n_features
+    for k, name in enumerate(names):
+        sel = np.flatnonzero(np.isfinite(Y[:, k]))
+        result = ctx.run_spec(ctx.spec(name, keep=shortlist, sel=sel, keep_values=False))
+        out.append(np.asarray(result.topk.index[:shortlist], dtype=np.int64))
+        n_tested = min(n_tested, int(result.n_features - result.n_filtered))
+    return out, n_tested
+
+
+def subproblem(problem: Problem, sel: np.ndarray) -> Problem:
+    """The problem restricted to the analysed samples at positions ``sel`` (for a refit)."""
+    Z = problem.covariates
+    return replace(
+        problem,
+        response=problem.response.subset(sel),
+        covariates=None if Z is None else Z[sel],
+        rows=sel if problem.rows is None else problem.rows[sel],
+        sample_ids=None if problem.sample_ids is None else problem.sample_ids[sel],
+    )
+
+
+def impute_centre(raw: np.ndarray, sel: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Columns of ``raw`` (n, m; NaN missing) on the rows ``sel``, imputed with their mean over those
+    rows and centred; and the means (0 for a column missing on every row)."""
+    sub = raw[sel]
+    seen = np.isfinite(sub)
+    count = seen.sum(axis=0)
+    mean = np.where(seen, sub, 0.0).sum(axis=0) / np.maximum(count, 1)
+    centred = np.where(seen, sub - mean, 0.0)
+    return centred, mean
+
+
+def centre_with(raw: np.ndarray, mean: np.ndarray) -> np.ndarray:
+    """Columns centred by given means, missing values at the mean (centred: 0)."""
+    return np.where(np.isfinite(raw), raw - mean, 0.0)
+
+
+@dataclass
+class SubsetFit:
+    """The refit on one subset.
+
+    Attributes
+    ----------
+    model : FittedModel
+        Its ``index`` is the selected set (store indices, increasing).
+    mean : ndarray of shape (k,)
+        Imputation means of the selected features over the subset.
+    """
+
+    model: FittedModel
+    mean: np.ndarray
+
+
+def fit_subset(
+    problem: Problem,
+    sel: np.ndarray,
+    shortlist: np.ndarray,
+    union: np.ndarray,
+    raw: np.ndarray,
+    settings: FitSettings,
+    n_candidates: int,
+) -> SubsetFit:
+    """The run's penalised refit on the samples ``sel`` and the features ``shortlist``.
+
+    Parameters
+    ----------
+    problem : Problem
+    sel : ndarray of int
+        Positions among the analysed samples.
+    shortlist : ndarray of int
+        Store indices (any order).
+    union : ndarray of int of shape (u,)
+        Store indices of the columns of ``raw``, increasing.
+    raw : ndarray of shape (n, u)
+        Their values on every analysed sample (NaN missing).
+    settings : FitSettings
+    n_candidates : int
+        Features screened (the EBIC's p).
+    """
+    idx = np.sort(np.asarray(shortlist, dtype=np.int64))
+    pos = np.searchsorted(union, idx)
+    values, mean = impute_centre(raw[:, pos], sel)
+    model = fit_union(subproblem(problem, sel), idx, values, settings, n_candidates)
+    return SubsetFit(model=model, mean=mean[np.searchsorted(idx, model.index)])
+
+
+def read_union(problem: Problem, shortlists: list[np.ndarray], sub_block: int):
+    """The union of the shortlists (increasing) and its values on every analysed sample (NaN missing)."""
+    union = np.unique(np.concatenate(shortlists)) if shortlists else np.empty(0, dtype=np.int64)
+    if union.size == 0:
+        return union, np.empty((problem.n, 0))
+    raw = read_columns(problem.source, union, rows=problem.rows, kind="float", sub_block=sub_block)
+    return union, np.asarray(raw, dtype=np.float64)
+
+
+def timed(fn, *args, **kwargs):
+    """fn(*args, **kwargs) and its wall time in seconds."""
+    t0 = time.perf_counter()
+    out = fn(*args, **kwargs)
+    return out, time.perf_counter() - t0
+
+
+__all__ = [
+    "SubsetFit",
+    "SubsetScreen",
+    "centre_with",
+    "fit_subset",
+    "impute_centre",
+    "read_union",
+    "response_matrix",
+    "screen_responses",
+    "subproblem",
+    "timed",
+]
