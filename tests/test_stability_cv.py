@@ -37,7 +37,7 @@ from widescreen.workflow import (
 )
 from widescreen.workflow import r2_score as ws_r2
 from widescreen.workflow._refit import FitSettings
-from widescreen.workflow._subsets import SubsetScreen
+from widescreen.workflow._subsets import SubsetScreen, screen_responses
 
 CLI = [sys.executable, "-c", "from widescreen.cli import main; main()"]
 FIT = FitSettings(n_lambda=30)
@@ -192,6 +192,28 @@ def test_selection_frequencies_are_reproducible_and_single_out_the_signal():
     c = _stability(problem, seed=1)  # other halves: other frequencies for the noise features
     assert {3, 10, 42} <= set(c.stable.tolist())
     assert not (np.array_equal(a.index, c.index) and np.array_equal(a.frequency, c.frequency))
+
+
+@pytest.mark.parametrize("family", ["linear", "logistic"])
+def test_one_pass_for_all_halves_gives_the_shortlists_of_one_pass_per_half(monkeypatch, family):
+    # The response-matrix pass (all halves at once) against the single-response pass of each half:
+    # the same order for the linear family; the logistic matrix pass ranks by the score test, the
+    # single pass by the likelihood-ratio test of the ML fit, so the lists agree but for near ties.
+    problem = _problem(family, 1.0, seed=6)
+    rng = np.random.default_rng(0)
+    Y = np.where(rng.random((problem.n, 6)) < 0.5, problem.response.y[:, None], np.nan)
+    where = SubsetScreen(problem, FeatureFilter())
+    names = [f"h{k}" for k in range(6)]
+    matrix = list(screen_responses(where, Y, shortlist=20, names=names))
+    assert len(matrix) == 1 and matrix[0][0] == list(range(6))  # one pass for the six
+    monkeypatch.setattr(type(problem.family), "multi_kernel", None)
+    single = list(screen_responses(where, Y, shortlist=20, names=names))
+    assert [cols for cols, _ in single] == [[k] for k in range(6)]
+    for k, (_, lists) in enumerate(single):
+        if family == "linear":
+            np.testing.assert_array_equal(matrix[0][1][k], lists[0])
+        else:
+            assert np.intersect1d(matrix[0][1][k], lists[0]).size >= 18
 
 
 def _cv(problem, folds=5, seed=0, settings=FIT):

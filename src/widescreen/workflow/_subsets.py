@@ -2,9 +2,9 @@
 
 Three phases, each resumable from the manifest record it keeps per subset:
 
-1. **Screen**: every subset's top ``d`` features (`screen_subsets`). The subsets are the columns of a
-   response matrix Y of shape (n, K) (NaN = the sample is not in that subset), screened by
-   `screen_responses`.
+1. **Screen**: every subset's top ``d`` features. The subsets are the columns of a response matrix Y
+   of shape (n, K) (NaN = the sample is not in that subset), screened by `screen_responses`: one pass
+   over the store per group of subsets where the family has a response-matrix pass.
 2. **Read**: the union of all the subsets' shortlists, once, on every analysed sample (float64 with
    NaN for a missing value; `widescreen.engine.read_columns`).
 3. **Refit**: per subset, its shortlist's columns on its samples (missing values imputed with the
@@ -20,7 +20,7 @@ accuracy describe exactly the pipeline that made the model, otherwise its first 
 from __future__ import annotations
 
 import time
-from collections.abc import Callable
+from collections.abc import Callable, Iterator
 from dataclasses import dataclass, replace
 from typing import Any
 
@@ -30,6 +30,7 @@ from ..engine import FeatureFilter, read_columns
 from ._passes import PassContext
 from ._problem import Problem
 from ._refit import FitSettings, FittedModel, fit_union
+from ._responses import screen_responses as multi_screen
 
 
 @dataclass(frozen=True)
@@ -59,35 +60,68 @@ def response_matrix(problem: Problem, masks: np.ndarray) -> np.ndarray:
     return np.where(masks, y[:, None], np.nan)
 
 
+#: Memory for the in-memory statistics of one response-matrix pass (every feature x the group's
+#: responses x about 8 columns of float64): the subsets are screened in groups that fit it.
+STATS_BUDGET = 256 << 20
+
+
+def group_size(n_features: int, K: int, budget: int = STATS_BUDGET) -> int:
+    """Responses per response-matrix pass so that its statistics fit ``budget`` bytes."""
+    return int(max(1, min(K, budget // max(1, n_features * 8 * 8))))
+
+
 def screen_responses(
     where: SubsetScreen, Y: np.ndarray, *, shortlist: int, names: list[str]
-) -> tuple[list[np.ndarray], int]:
-    """Top ``shortlist`` features of each column of Y (strongest first), and the features tested.
+) -> Iterator[tuple[list[int], list[np.ndarray]]]:
+    """Top ``shortlist`` features of each column of Y (strongest first), a group of columns at a time.
 
     Column k of Y is the problem's response on the samples where it is finite (NaN: not in the
     subset); the event indicator and the covariates are the problem's, restricted to those samples.
+    Yields (the group's column numbers, their shortlists) after each pass, so the caller can record
+    them (resume).
 
-    One pass per column through the run's pass builder (the fallback until passes take a response
-    matrix): each pass reads and decodes the store again, so K columns cost K passes.
+    Families with a response-matrix pass (`Family.multi_kernel`: linear, logistic, Poisson) screen
+    a group of columns in one pass over the store (`widescreen.workflow.screen_responses`), as many
+    columns per pass as `group_size` allows (the pass's statistics are kept in memory, not in the run
+    folder). The others (Cox, the model-free families) fall back to one single-response pass per
+    column through the run's pass builder: each reads and decodes the store again.
     """
     problem = where.problem
+    K = Y.shape[1]
+    if problem.family.multi_kernel is not None:
+        G = group_size(problem.n_features, K)
+        for a in range(0, K, G):
+            cols = list(range(a, min(a + G, K)))
+            found = multi_screen(
+                problem,
+                Y[:, cols],
+                shortlist=shortlist,
+                names=[names[k] for k in cols],
+                filters=where.filters,
+                sub_block=where.sub_block,
+                keep_values=False,
+                run=None,  # the subsets' statistics are not kept: only their shortlists
+                name=names[cols[0]],
+                scheduler=where.scheduler,
+                # screen_responses takes the pass's own callable(done, total)
+                progress=None if where.progress is None else where.progress(names[cols[0]]),
+                memory_budget=where.memory_budget,
+            )
+            yield cols, [np.asarray(r.index, dtype=np.int64) for r in found]
+        return
     ctx = PassContext(
         problem,
         filters=where.filters,
         sub_block=where.sub_block,
-        run=None,  # the statistics of a subset's pass are not kept: only its shortlist
+        run=None,
         scheduler=where.scheduler,
         progress=where.progress,
         memory_budget=where.memory_budget,
     )
-    out: list[np.ndarray] = []
-    n_tested = problem.n_features
     for k, name in enumerate(names):
         sel = np.flatnonzero(np.isfinite(Y[:, k]))
         result = ctx.run_spec(ctx.spec(name, keep=shortlist, sel=sel, keep_values=False))
-        out.append(np.asarray(result.topk.index[:shortlist], dtype=np.int64))
-        n_tested = min(n_tested, int(result.n_features - result.n_filtered))
-    return out, n_tested
+        yield [k], [np.asarray(result.topk.index[:shortlist], dtype=np.int64)]
 
 
 def subproblem(problem: Problem, sel: np.ndarray) -> Problem:
@@ -184,10 +218,12 @@ def timed(fn, *args, **kwargs):
 
 
 __all__ = [
+    "STATS_BUDGET",
     "SubsetFit",
     "SubsetScreen",
     "centre_with",
     "fit_subset",
+    "group_size",
     "impute_centre",
     "read_union",
     "response_matrix",
