@@ -7,6 +7,8 @@ whose ids sit in one chunk.
 
 from __future__ import annotations
 
+import json
+
 import numpy as np
 import pytest
 import zarr
@@ -164,3 +166,37 @@ def test_ranking_ids_read_by_coordinate(tmp_path, monkeypatch):
         tables.append((out / "ranking.tsv").read_text())
     assert tables[0] == tables[1]
     assert "rs" in tables[0]
+    # lambda_GC from exact order statistics over blocks: median(chi2.isf(p, 1)) / chi2.ppf(0.5, 1)
+    # computed whole with scipy (common practice).
+    from scipy import stats
+
+    from widescreen.engine import RunFolder, read_stats
+
+    pv = read_stats(RunFolder(out), "screen")["p_value"]
+    want = np.median(stats.chi2.isf(pv[np.isfinite(pv)], 1)) / stats.chi2.ppf(0.5, 1)
+    got = json.loads((out / "manifest.json").read_text())["lambda_gc"]["screen"]
+    assert got == pytest.approx(want, abs=1e-6)
+
+
+def test_npy_feature_ids_file_streamed(tmp_path, monkeypatch):
+    from widescreen.store import import_npy
+
+    monkeypatch.setattr(ids_mod, "ID_CHUNK", 4)
+    x = np.random.default_rng(1).integers(0, 3, (3, 10), dtype=np.int8)
+    np.save(tmp_path / "x.npy", x)
+    names = [f"v{j}" for j in range(10)]
+    (tmp_path / "ids.txt").write_text("\n".join(names) + "\n")
+    ds = import_npy(tmp_path / "x.npy", tmp_path / "a.zarr", feature_ids=tmp_path / "ids.txt")
+    np.testing.assert_array_equal(ds.feature_ids(), names)
+    names[8] = "v1"
+    (tmp_path / "ids.txt").write_text("\n".join(names))  # no newline at the end
+    with pytest.raises(
+        IngestError, match=r"ids\.txt: duplicate feature id 'v1' at line 2 and line 9"
+    ):
+        import_npy(tmp_path / "x.npy", tmp_path / "b.zarr", feature_ids=tmp_path / "ids.txt")
+    (tmp_path / "ids.txt").write_text("\n".join(names[:9]) + "\n")
+    with pytest.raises(IngestError, match=r"ids\.txt: 9 feature ids for 10 features"):
+        import_npy(tmp_path / "x.npy", tmp_path / "c.zarr", feature_ids=tmp_path / "ids.txt")
+    # Default ids f1..fp made block by block.
+    ds = import_npy(tmp_path / "x.npy", tmp_path / "d.zarr", chunk_features=3)
+    np.testing.assert_array_equal(ds.feature_ids(), [f"f{j}" for j in range(1, 11)])

@@ -97,6 +97,8 @@ def screen_cmd(
     )
     if result.lambda_gc is not None:
         typer.echo(lambda_gc_line(result.lambda_gc))
+    if result.notice:
+        typer.echo(f"note: {result.notice}", err=True)
     if report:
         from ..report import build_report
 

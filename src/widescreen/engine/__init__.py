@@ -4,6 +4,7 @@ memory plans."""
 from ._block import process_block, read_marker
 from ._columns import Columns, read_columns
 from ._memory import (
+    BASELINE_BYTES,
     BlockShape,
     MemoryBudgetError,
     MemoryPlan,
@@ -21,6 +22,7 @@ from ._spec import ENGINE_COLUMNS, FeatureFilter, PassResult, PassSpec
 from ._topk import MultiTopK, TopK, block_topk, block_topk_multi, merge_all, merge_multi, merge_topk
 
 __all__ = [
+    "BASELINE_BYTES",
     "ENGINE_COLUMNS",
     "ArraySource",
     "BlockShape",

@@ -161,7 +161,7 @@ def _choose_sub_block(
     plan = plan_memory(
         budget,
         source.block_shape(spec.n_analysed),
-        keep=spec.keep,
+        keep=spec.keep if spec.keep_values else 0,  # no values kept: the top list is indices only
         max_threads=ex.threads_per_worker,
         max_sub_block=cap,
         n_responses=spec.lhs_rows if spec.n_responses else spec.n_nulls + 1,

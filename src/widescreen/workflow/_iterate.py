@@ -25,12 +25,13 @@ from ..engine import FeatureFilter, PassResult, RunFolder, read_columns
 from ..schema import FitRecord, IterationRecord
 from ..store import prepare_block
 from ._candidates import Candidates, ConditioningError, StepContext, screen_step, stats_at
-from ._problem import Problem, check_problem_fields, shortlist_size
+from ._problem import Problem, check_problem_fields, shortlist_notice, shortlist_size
 from ._refit import (
     FitSettings,
     FittedModel,
     Refit,
     budget_warning,
+    check_refit_memory,
     final_refit,
     fit_token,
     fit_union,
@@ -259,7 +260,9 @@ def iterate(
     """
     n, p = problem.n, problem.source.n_features
     config.filters.check(problem.source.value_kind)
-    d = shortlist_size(config.shortlist, n, p)
+    d = shortlist_size(config.shortlist, n, p, memory_budget)
+    capped = shortlist_notice(config.shortlist, n, memory_budget)
+    capped = capped if capped is not None and capped["size"] == d else None
     ctx = StepContext(
         problem,
         config.rule,
@@ -275,6 +278,7 @@ def iterate(
         pool=_Pool(n),
         old=list(session.manifest.get("iterations", [])) if session is not None else [],
         n_screened=p,
+        memory_budget=memory_budget,
     )
     for k in range(config.max_iter + 1):
         stop = _iteration(ctx, config, session, loop, k, d)
@@ -284,7 +288,11 @@ def iterate(
     result = _result(ctx, loop, d)
     warn = budget_warning(config.fit, result.index.size, d)
     result.warnings = [warn] if warn else []
+    if capped is not None:
+        result.warnings.insert(0, capped["notice"])
     if session is not None:
+        if capped is not None:
+            session.manifest["shortlist_cap"] = capped
         session.manifest["iterations"] = loop.records
         session.manifest["stop_reason"] = loop.stop
         session.manifest["warnings"] = result.warnings
@@ -305,6 +313,7 @@ class _Loop:
     seen: list[tuple[int, ...]] = field(default_factory=list)
     screen_passes: list[PassResult] = field(default_factory=list)
     stop: str = "iteration limit"
+    memory_budget: int | str | None = None  # the refit is refused when its values cannot fit
 
     @property
     def selected(self) -> np.ndarray:
@@ -392,6 +401,7 @@ def _refit(
         new = FittedModel.from_record(prev["model"])
         rec = prev
     else:
+        check_refit_memory(problem.n, loop.pool.index.size, loop.memory_budget)
         new = fit_union(problem, loop.pool.index, loop.pool.values, config.fit, loop.n_screened)
         rec = _record(problem, k, cands, new, loop.model)
         rec["fit_token"] = token

@@ -43,8 +43,68 @@ def check_problem_fields(config) -> None:
     _ = config.filters  # validates drop_missing and drop_rare (`FeatureFilter`)
 
 
-def shortlist_size(shortlist: int | str, n: int, n_features: int | None = None) -> int:
-    """Shortlist size: an int, or ``"auto"`` = floor(n / log n) (Fan & Lv 2008), capped at the features."""
+#: Largest shortlist ``"auto"`` gives, whatever n: floor(n / log n) reaches it at n of about 20,000,
+#: where a penalised path over 2000 columns already takes minutes per iteration on a few cores.
+MAX_AUTO_SHORTLIST = 2000
+#: Copies of the shortlist's n x d float64 values the refit holds at its peak: the values and about
+#: 6.3 working copies of the path and its tuning (measured with tracemalloc on SCAD paths, Gaussian
+#: and binomial, EBIC and 5-fold CV, n = 3000, d = 300), rounded up. (At large n x d the passes keep
+#: no values: the candidates' columns are read after the pass, one copy.)
+REFIT_COPIES = 8
+
+
+def shortlist_cap(n: int, memory_budget: int | str | None = None) -> tuple[int, str]:
+    """The largest automatic shortlist at n samples and why: the fixed maximum, or the budget.
+
+    With a memory budget B, the refit's copies of the shortlist's values (8 n d bytes each,
+    `REFIT_COPIES` = 8 of them) may take half of it: d <= B / (2 x 8 n x 8). Without a budget only the
+    fixed maximum applies (the cap must not depend on the machine, so a run resumes to the same size
+    anywhere).
+    """
+    from ..engine import parse_budget
+
+    cap, why = MAX_AUTO_SHORTLIST, f"the fixed maximum of {MAX_AUTO_SHORTLIST}"
+    budget = parse_budget(memory_budget)
+    if budget is not None:
+        by_budget = max(1, budget // (2 * 8 * max(n, 1) * REFIT_COPIES))
+        if by_budget < cap:
+            cap = int(by_budget)
+            why = (
+                f"half of the memory budget ({budget / 2**30:.3g} GiB) holds the refit's "
+                f"{REFIT_COPIES} copies of {n} x {cap} float64 values"
+            )
+    return cap, why
+
+
+def shortlist_notice(
+    shortlist: int | str, n: int, memory_budget: int | str | None = None
+) -> dict | None:
+    """The record of a capped ``"auto"`` shortlist (for the manifest and a one-line notice), or None."""
+    if shortlist != "auto" or n <= 2:
+        return None
+    auto = max(1, math.floor(n / math.log(n)))
+    cap, why = shortlist_cap(n, memory_budget)
+    if auto <= cap:
+        return None
+    return {
+        "auto": auto,
+        "size": cap,
+        "reason": why,
+        "notice": (
+            f"shortlist capped at {cap} features (floor(n / log n) = {auto} at n = {n}): {why}; "
+            "--shortlist N sets another size"
+        ),
+    }
+
+
+def shortlist_size(
+    shortlist: int | str,
+    n: int,
+    n_features: int | None = None,
+    memory_budget: int | str | None = None,
+) -> int:
+    """Shortlist size: an int, or ``"auto"`` = floor(n / log n) (Fan & Lv 2008), capped by
+    `shortlist_cap` (a fixed maximum and the memory budget) and at the features."""
     if isinstance(shortlist, str):
         if shortlist != "auto":
             try:
@@ -55,6 +115,7 @@ def shortlist_size(shortlist: int | str, n: int, n_features: int | None = None) 
                 ) from None
         else:
             shortlist = max(1, math.floor(n / math.log(n))) if n > 2 else 1
+            shortlist = min(shortlist, shortlist_cap(n, memory_budget)[0])
     if isinstance(shortlist, bool) or not isinstance(shortlist, int | np.integer) or shortlist < 1:
         raise ValueError(
             f"The 'shortlist' must be a positive integer or 'auto'; got {shortlist!r}."

@@ -20,9 +20,34 @@ from dask.base import tokenize
 from .._config import check_choice, check_int, check_number
 from ..fit import Refit, fit_path, make_penalty, refit, select_model
 from ..schema import FitRecord, PathRecord
-from ._problem import Problem
+from ._problem import REFIT_COPIES, Problem
 
 CRITERIA = ("ebic", "bic", "cv")
+
+
+def check_refit_memory(n: int, u: int, memory_budget: int | str | None) -> None:
+    """Refuse a refit whose values cannot fit the memory budget, naming the numbers.
+
+    The refit is in memory (coordinate descent on the n x u values); a budget that cannot hold
+    `REFIT_COPIES` copies of them beside the process itself is refused before the fit starts, with the
+    remedies, rather than let the process run out of memory.
+
+    Raises
+    ------
+    MemoryBudgetError
+    """
+    from ..engine import BASELINE_BYTES, MemoryBudgetError, parse_budget
+
+    budget = parse_budget(memory_budget)
+    need = REFIT_COPIES * 8 * int(n) * int(u)
+    if budget is None or need + BASELINE_BYTES <= budget:
+        return
+    raise MemoryBudgetError(
+        f"the refit of {u} features on {n} samples needs about {need / 2**30:.2f} GiB "
+        f"({REFIT_COPIES} copies of the n x u float64 values) beside the process's own "
+        f"{BASELINE_BYTES / 2**20:.0f} MiB, more than the memory budget of {budget / 2**30:.2f} GiB; "
+        "give a larger --memory-budget or a smaller --shortlist"
+    )
 
 
 @dataclass(frozen=True)

@@ -13,7 +13,13 @@ from ..engine import FeatureFilter, PassResult, RunFolder, read_stats
 from ..schema import RANKING
 from ._candidates import pass_lambda_gc
 from ._passes import PassContext
-from ._problem import Problem, check_problem_fields, load_problem, shortlist_size
+from ._problem import (
+    Problem,
+    check_problem_fields,
+    load_problem,
+    shortlist_notice,
+    shortlist_size,
+)
 from ._session import open_session
 from ._tables import ranking_text
 
@@ -95,6 +101,7 @@ class ScreenResult:
     run: RunFolder | None
     extra: dict = field(default_factory=dict)
     lambda_gc: float | None = None
+    notice: str | None = None
 
     @property
     def statistics(self) -> dict[str, np.ndarray] | None:
@@ -151,7 +158,7 @@ def screen_problem(
     -------
     ScreenResult
     """
-    k = shortlist_size(shortlist, problem.n, problem.source.n_features)
+    k = shortlist_size(shortlist, problem.n, problem.source.n_features, memory_budget)
     listed = max(k, list_top or 0)
     ctx = PassContext(
         problem,
@@ -210,8 +217,11 @@ def screen(
         session.manifest["covariates"] = problem.covariate_coding
         if problem.response.mapping:
             session.manifest["response_coding"] = problem.response.mapping
-        keep = shortlist_size(config.shortlist, problem.n, problem.source.n_features)
+        keep = shortlist_size(config.shortlist, problem.n, problem.source.n_features, memory_budget)
         session.manifest["shortlist_size"] = keep
+        capped = shortlist_notice(config.shortlist, problem.n, memory_budget)
+        if capped is not None and capped["size"] == keep:
+            session.manifest["shortlist_cap"] = capped
         session.manifest["memory_budget"] = memory_budget
         found = screen_problem(
             problem,
@@ -219,6 +229,9 @@ def screen(
             list_top=config.list_top,
             filters=config.filters,
             sub_block=config.sub_block,
+            # The ranking needs no values: none are carried through the merges (at large n and d
+            # they cost more than the pass: n x d float64 per block and merge).
+            keep_values=False,
             run=session.run,
             scheduler=scheduler,
             progress=progress,
@@ -233,6 +246,8 @@ def screen(
         shortlisted = np.arange(top.index.size) < keep
         text = ranking_text(problem, session.run, result, top.index, top.score, shortlisted)
         session.run.write_table(RANKING.file, text)
+        if "shortlist_cap" in session.manifest:
+            found.notice = session.manifest["shortlist_cap"]["notice"]
         session.finish(seconds_total=round(time.perf_counter() - t0, 3))
         return found
 
