@@ -113,7 +113,9 @@ def main(argv: list[str] | None = None) -> None:
     ap.add_argument("--json", type=Path, default=None)
     args = ap.parse_args(argv)
     wide = args.case == "wide"
-    samples = [int(float(s)) for s in (args.samples or ("500" if wide else "10000,50000")).split(",")]
+    samples = [
+        int(float(s)) for s in (args.samples or ("500" if wide else "10000,50000")).split(",")
+    ]
     features = [
         int(float(s)) for s in (args.features or ("1e6,1e7" if wide else "200000")).split(",")
     ]
@@ -125,8 +127,10 @@ def main(argv: list[str] | None = None) -> None:
         flush=True,
     )
     rows = [measure(args.workdir, n, p, budget, args.keep) for n in samples for p in features]
-    print("\n| n | p | build s | build peak RSS MiB | screen s | pass s | us/feature | ns/value "
-          "| screen peak RSS MiB |")
+    print(
+        "\n| n | p | build s | build peak RSS MiB | screen s | pass s | us/feature | ns/value "
+        "| screen peak RSS MiB |"
+    )
     print("|---:|---:|---:|---:|---:|---:|---:|---:|---:|")
     for r in rows:
         print(
