@@ -81,6 +81,11 @@ def kkt_violation(
     return max(viol, 0.0)
 
 
+#: IRLS iterations per lambda before a point that has not settled is taken as running away (the path
+#: ends there; R's ``glm.control(maxit = 25)``, common practice). Below saturation a concave working
+#: problem settles in a handful; the iterations of a point that does not are the costliest of the path.
+_IRLS_PATIENCE = 25
+
 #: Coordinate descent sweeps between attempts of the Newton polish.
 _BURST = 5
 #: Polish attempts per solve: where a pattern's quadratic is not convex (a GLM's small working weights
@@ -277,7 +282,7 @@ def concave_path(
         stop = False
         obj = st.objective(pen, st.beta, st.eta, level)
         settled = False
-        for _ in range(1 if loss.quadratic else opts.outer_max_iter):
+        for _ in range(1 if loss.quadratic else min(opts.outer_max_iter, _IRLS_PATIENCE)):
             if not loss.quadratic:
                 z, w = loss.working(problem.y, st.eta)
             beta_old = st.beta.copy()
@@ -294,6 +299,11 @@ def concave_path(
                 st.eta = st.linear_predictor(st.beta)
                 new_obj = st.objective(pen, st.beta, st.eta, level)
             if not np.all(np.isfinite(st.eta)):
+                stop = True
+                break
+            if 1.0 - loss.deviance(problem.y, st.eta) / null_dev > opts.max_deviance_ratio:
+                # Saturating (separation in a binary outcome): the point would be dropped below, and
+                # its IRLS iterations are the costliest of the path (coefficients running away).
                 stop = True
                 break
             step = np.abs(st.beta - beta_old).max()

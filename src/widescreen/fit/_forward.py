@@ -46,7 +46,9 @@ class _Scorer:
         key = support.tobytes()
         if key not in self.cache:
             D = _design(self.p, support)
-            coef, _, loglik, exists, _ = refit_columns(D, self.p.y, self.p.loss, self.p.offset)
+            coef, _, loglik, exists, _ = refit_columns(
+                D, self.p.y, self.p.loss, self.p.offset, with_se=False
+            )
             value = -2.0 * loglik + self.pen(support.size) if exists else np.inf
             self.cache[key] = (value, coef if exists else None)
         return self.cache[key]

@@ -80,10 +80,14 @@ def cross_validate(
     return mean, np.where(np.isfinite(mean), se, np.inf)
 
 
-def refit_support(path: PathResult, support: np.ndarray) -> Refit:
-    """Unpenalised refit of ``path``'s data on the features ``support`` (original scale)."""
+def refit_support(path: PathResult, support: np.ndarray, *, with_se: bool = False) -> Refit:
+    """Unpenalised refit of ``path``'s data on the features ``support`` (original scale).
+
+    Tuning needs only its likelihood: standard errors (NaN) only with ``with_se``.
+    """
     pr = path.problem
-    return refit(pr.X[:, support], pr.y, pr.loss, pr.Z if pr.Z.shape[1] else None, pr.offset)
+    Z = pr.Z if pr.Z.shape[1] else None
+    return refit(pr.X[:, support], pr.y, pr.loss, Z, pr.offset, with_se=with_se)
 
 
 def _supports(path: PathResult) -> tuple[list[np.ndarray], np.ndarray]:
@@ -339,7 +343,7 @@ def select_model(
     support = np.flatnonzero(coef)
     if extra is not None:
         support, value = extra
-    fit = refit_support(path, support)
+    fit = refit_support(path, support, with_se=True)
     if extra is not None:
         # A support off the path: no penalised estimate belongs to it, so its refit stands in.
         index, lambda_ = None, float("nan")
