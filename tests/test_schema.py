@@ -182,6 +182,7 @@ def test_a_table_that_does_not_match_its_schema_is_refused():
         "entries.tsv",
         "stability.tsv",
         "cv.tsv",
+        "traits.tsv",
     }
 
 

@@ -124,7 +124,10 @@ OutcomeOpt = Annotated[
 ResponseOpt = Annotated[
     str,
     typer.Option(
-        "--response", metavar="COLUMN", help="Column of the response (survival: the time)."
+        "--response",
+        metavar="COLUMN",
+        help="Column of the response (survival: the time). Several traits: a,b,c (one pass over the "
+        "store for all; each trait's results in OUT/traits/NAME/, a summary in OUT/traits.tsv).",
     ),
 ]
 OutOpt = Annotated[

@@ -201,6 +201,11 @@ def run_cmd(
         restart=restart,
         memory_budget=budget_of(memory_budget),
     )
+    if hasattr(result, "names"):  # several traits
+        from ._traits import echo_traits
+
+        echo_traits(result, out, report)
+        return
     rep = result.problem.samples
     shown = ", ".join(str(f) for f in result.feature_ids[:10])
     more = f" and {result.index.size - 10} more" if result.index.size > 10 else ""

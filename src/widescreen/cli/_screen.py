@@ -81,6 +81,11 @@ def screen_cmd(
         restart=restart,
         memory_budget=budget_of(memory_budget),
     )
+    if hasattr(result, "names"):  # several traits
+        from ._traits import echo_traits
+
+        echo_traits(result, out, report)
+        return
     s = result.pass_result
     rep = result.problem.samples
     typer.echo(

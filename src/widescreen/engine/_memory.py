@@ -36,6 +36,11 @@ exceeded), else the largest power of two below it. If one thread with a one-feat
 fit, the budget is refused with the numbers: the chunk column alone must fit, since a chunk is decoded
 whole; the remedy is a larger budget or a store with fewer features per chunk.
 
+A pass over a response matrix of K responses (several traits, half-samples, folds) counts m = the rows
+of its kernel's left factor (K plus the sample masks and their covariate bases) and c = its statistics
+times K (each has one value per response), and keeps no values (k = 0 in ``topk``); its K top lists
+(16 K k bytes a block) are small beside the statistics. So its memory grows with K, not with p.
+
 No term grows with the number of features p, so the peak memory of a pass is flat in p. On a cluster
 the plan is made for one worker process, with 3/4 of its memory limit (below the share at which
 distributed pauses a worker, 80%): for ``processes:N`` that limit is the budget / N, for an existing

@@ -29,7 +29,7 @@ TMP_MARK = ".tmp-"
 #: temporaries) is recognisably a run folder, which ``--restart`` may empty. The tables come from
 #: the schema, so a new table joins by itself.
 RUN_FOLDER_ENTRIES = frozenset(
-    {"manifest.json", ".lock", ".reserve", "passes", "report.html", "figures", *TABLES}
+    {"manifest.json", ".lock", ".reserve", "passes", "report.html", "figures", "traits", *TABLES}
 )
 #: Bytes set aside while a session runs, released to save the final manifest on a full disk.
 RESERVE_BYTES = 1 << 20

@@ -14,7 +14,7 @@ The one place the engine, the workflow and the report learn the run folder from:
 Imports only numpy here; zarr and pandas load when statistics or typed tables are read.
 """
 
-from ._layout import PassLayout, ReduceLayout, RunFolderError, RunLayout
+from ._layout import PassLayout, ReduceLayout, RunFolderError, RunLayout, check_trait_name
 from ._records import (
     FitRecord,
     IterationRecord,
@@ -31,6 +31,7 @@ from ._stats import (
     read_pass_meta,
     read_stats,
     read_stats_at,
+    shared_record,
     stats_chunk_bytes,
     stats_frame,
 )
@@ -47,6 +48,7 @@ from ._tables import (
     STATISTICS_SLOT,
     STATS,
     TABLES,
+    TRAITS,
     Column,
     Slot,
     TableSpec,
@@ -73,6 +75,7 @@ __all__ = [
     "STATISTICS_SLOT",
     "STATS",
     "TABLES",
+    "TRAITS",
     "Column",
     "FitRecord",
     "IterationRecord",
@@ -89,6 +92,7 @@ __all__ = [
     "SessionRecord",
     "Slot",
     "TableSpec",
+    "check_trait_name",
     "create_stats",
     "format_table",
     "format_value",
@@ -98,6 +102,7 @@ __all__ = [
     "read_stats_at",
     "read_table",
     "read_tsv",
+    "shared_record",
     "statistic_column",
     "statistic_columns",
     "stats_chunk_bytes",

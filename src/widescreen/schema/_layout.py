@@ -18,6 +18,17 @@ Layout::
       ranking.tsv, model.tsv, iterations.tsv, entries.tsv   the tables (`widescreen.schema.TABLES`)
       report.html, figures/NAME.png the report
 
+    Several traits (``--response a,b,c``) in one run folder:
+
+      passes/screen/                the one pass over the store for all K traits (statistics of
+                                    shape (n_features, K), column k = trait k)
+      traits.tsv                    one row per trait (`widescreen.schema.TRAITS`)
+      traits/NAME/                  a run folder per trait: manifest.json, ranking.tsv (and for run
+                                    model.tsv, iterations.tsv, entries.tsv, its own passes iter1, ...,
+                                    report.html)
+      traits/NAME/passes/screen/shared.json   its screening pass is the shared one: {"run": the
+                                    folder holding it, relative ("../.."), "response": its column}
+
 Only this module spells these paths; the engine, the workflow and the report ask it.
 """
 
@@ -62,6 +73,11 @@ class PassLayout:
 
     def kept(self, block: int) -> Path:
         return self.done / f"{block}.kept.npz"
+
+    @property
+    def shared(self) -> Path:
+        """``shared.json``: this pass is column ``response`` of another run folder's pass."""
+        return self.root / "shared.json"
 
     def done_blocks(self) -> set[int]:
         if not self.done.is_dir():
@@ -132,11 +148,34 @@ class RunLayout:
     def report(self) -> Path:
         return self.root / "report.html"
 
+    @property
+    def traits(self) -> Path:
+        """The folder of the per-trait run folders (several traits in one run)."""
+        return self.root / "traits"
+
+    def trait(self, name: str) -> Path:
+        """The run folder of one trait (``traits/NAME``); names are checked by `check_trait_name`."""
+        return self.traits / check_trait_name(name)
+
     def pass_names(self) -> list[str]:
-        """Passes that hold a statistics group, sorted by name."""
+        """Passes that hold a statistics group (or share another folder's), sorted by name."""
         if not self.passes.is_dir():
             return []
-        return sorted(p.name for p in self.passes.iterdir() if PassLayout(p).has_stats())
+        return sorted(
+            p.name
+            for p in self.passes.iterdir()
+            if PassLayout(p).has_stats() or PassLayout(p).shared.is_file()
+        )
 
 
-__all__ = ["PassLayout", "ReduceLayout", "RunFolderError", "RunLayout"]
+def check_trait_name(name: str) -> str:
+    """A trait's name as a folder name: refuse one that is empty, hidden or holds a path separator."""
+    if not name or name.startswith(".") or "/" in name or "\\" in name or "\0" in name:
+        raise ValueError(
+            f"trait {name!r} cannot name a folder (empty, starting with '.', or holding '/' or "
+            "'\\'); rename the column of the outcome table"
+        )
+    return name
+
+
+__all__ = ["PassLayout", "ReduceLayout", "RunFolderError", "RunLayout", "check_trait_name"]

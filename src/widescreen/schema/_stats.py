@@ -111,6 +111,10 @@ class PassStats:
             raise RunFolderError(f"{layout.root}: no such run folder")
         self.layout = layout.pass_(name)
         self.name = name
+        #: The column read by default in a pass over several responses (a trait's shared pass).
+        self.response: int | None = None
+        if self.layout.shared.is_file():
+            self.layout, self.response = _shared(layout, self.layout)
         if not self.layout.meta.is_file():
             raise RunFolderError(f"{layout.root}: has no pass {name!r}")
         meta = read_pass_meta(self.layout)
@@ -161,6 +165,7 @@ class PassStats:
         }
 
     def _slice(self, column: str, rows, response: int | None):
+        response = self.response if response is None else response
         arr = self._group[column]
         if arr.ndim == 2 and response is not None:
             return arr[rows, response]
@@ -194,6 +199,7 @@ class PassStats:
         return out
 
     def _coords(self, column: str, index: np.ndarray, response: int | None):
+        response = self.response if response is None else response
         arr = self._group[column]
         if arr.ndim == 2:
             cols = slice(None) if response is None else np.full(index.size, response)
@@ -210,6 +216,22 @@ class PassStats:
         for start in range(0, self.n_features, step):
             stop = min(start + step, self.n_features)
             yield start, stop, self.read(cols, start, stop)
+
+
+def _shared(layout: RunLayout, own: PassLayout) -> tuple[PassLayout, int]:
+    """The pass a ``shared.json`` points to (another run folder's, one response of it)."""
+    try:
+        rec = json.loads(own.shared.read_text())
+        target = RunLayout((layout.root / rec["run"]).resolve()).pass_(own.root.name)
+        return target, int(rec["response"])
+    except (OSError, ValueError, KeyError, TypeError) as exc:
+        raise RunFolderError(f"{own.shared}: unreadable ({exc})") from None
+
+
+def shared_record(run: str, response: int) -> str:
+    """The text of a ``shared.json``: the pass is column ``response`` of the pass of the same name in
+    the run folder ``run`` (a path relative to the sharing run folder)."""
+    return json.dumps({"run": run, "response": int(response)})
 
 
 def read_stats(
@@ -266,6 +288,7 @@ __all__ = [
     "read_pass_meta",
     "read_stats",
     "read_stats_at",
+    "shared_record",
     "stats_chunk_bytes",
     "stats_frame",
 ]

@@ -318,8 +318,27 @@ CV = TableSpec(
     ),
 )
 
+TRAITS = TableSpec(
+    "traits.tsv",
+    "Several traits in one run: one row per trait, in the order of --response; each trait's own "
+    "tables are in traits/NAME/.",
+    (
+        Column("trait", "string", "the trait (its column in the outcome table)"),
+        Column("n", "int64", "analysed samples of the trait (those with a value)"),
+        Column("shortlist_size", "int64", "its shortlist size d"),
+        Column("selected_size", "Int64", "features in its final model (run); NA for screen"),
+        Column("top_feature", "string", "its strongest feature of the screen; NA when none"),
+        Column("top_score", "float64", "that feature's score"),
+        Column(
+            "lambda_gc",
+            "float64",
+            "genomic inflation factor of its screen's p-values; NA without p-values",
+        ),
+    ),
+)
+
 TABLES: dict[str, TableSpec] = {
-    t.file: t for t in (RANKING, MODEL, ITERATIONS, ENTRIES, STABILITY, CV)
+    t.file: t for t in (RANKING, MODEL, ITERATIONS, ENTRIES, STABILITY, CV, TRAITS)
 }
 
 
@@ -480,6 +499,7 @@ __all__ = [
     "STATISTICS",
     "STATS",
     "TABLES",
+    "TRAITS",
     "Column",
     "Slot",
     "TableSpec",

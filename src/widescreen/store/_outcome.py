@@ -198,9 +198,12 @@ class JoinedOutcome:
         }
 
 
-def join_outcome(store_ids: np.ndarray, table: OutcomeTable, needed: list[str]) -> JoinedOutcome:
-    """Join the table to the store's sample ids, keeping samples with every needed column present."""
-    for name in needed:
+def join_outcome(
+    store_ids: np.ndarray, table: OutcomeTable, needed: list[str], any_of: list[str] = ()
+) -> JoinedOutcome:
+    """Join the table to the store's sample ids, keeping samples with every needed column present
+    (and, with ``any_of``, at least one of those columns: several traits, each with its own gaps)."""
+    for name in [*needed, *any_of]:
         table.column(name)
     store_ids = np.asarray(store_ids, dtype=str)
     order = np.argsort(store_ids)
@@ -211,6 +214,8 @@ def join_outcome(store_ids: np.ndarray, table: OutcomeTable, needed: list[str]) 
     present = np.ones(table.ids.size, dtype=bool)
     for name in needed:
         present &= ~is_missing(table.columns[name])
+    if any_of:
+        present &= np.any([~is_missing(table.columns[name]) for name in any_of], axis=0)
     keep = found & present
     if not keep.any():
         if not found.any():
@@ -218,7 +223,8 @@ def join_outcome(store_ids: np.ndarray, table: OutcomeTable, needed: list[str]) 
                 f"{table.path}: none of its {table.ids.size} sample ids are in the store "
                 f"(first table id {table.ids[0]!r}, first store id {store_ids[0]!r})"
             )
-        raise OutcomeError(f"{table.path}: every matched sample lacks one of {needed}")
+        what = needed if not any_of else f"{needed} or all of {list(any_of)}"
+        raise OutcomeError(f"{table.path}: every matched sample lacks one of {what}")
     # Analyse samples in store order: reads stay sequential and results do not depend on table order.
     idx = np.flatnonzero(keep)
     idx = idx[np.argsort(store_row[idx], kind="stable")]
@@ -226,7 +232,7 @@ def join_outcome(store_ids: np.ndarray, table: OutcomeTable, needed: list[str]) 
         table=table,
         rows=store_row[idx].astype(np.int64),
         sample_ids=table.ids[idx],
-        values={name: table.columns[name][idx] for name in needed},
+        values={name: table.columns[name][idx] for name in [*needed, *any_of]},
         lines=idx + 2,
         n_table=int(table.ids.size),
         n_store=int(store_ids.size),

@@ -44,6 +44,7 @@ from ._thresholds import (
     bonferroni_cutoff,
     permutation_cutoff,
 )
+from ._traits import Traits, TraitsResult, load_traits, run_traits, screen_traits
 
 __all__ = [
     "CVResult",
@@ -59,6 +60,8 @@ __all__ = [
     "ScreenResult",
     "StabilityResult",
     "ThresholdRule",
+    "Traits",
+    "TraitsResult",
     "bh_cutoff",
     "bh_cutoff_blocks",
     "binomial_deviance",
@@ -72,6 +75,7 @@ __all__ = [
     "iterate",
     "join_outcome",
     "load_problem",
+    "load_traits",
     "mb_bound",
     "open_session",
     "permutation_cutoff",
@@ -82,9 +86,11 @@ __all__ = [
     "response_names",
     "roc_auc",
     "run",
+    "run_traits",
     "screen",
     "screen_problem",
     "screen_responses",
+    "screen_traits",
     "shortlist_size",
     "split_halves",
     "ss_unimodal_bound",

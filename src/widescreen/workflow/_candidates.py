@@ -46,6 +46,9 @@ class StepContext:
     progress : callable(pass name) -> callable(done, total) or None, optional
     memory_budget : int or str, optional
         Memory the passes may use (see `widescreen.engine.plan_memory`).
+    first : PassResult, optional
+        The marginal screen, already run (several traits share one pass over the store): the first
+        step uses it instead of running its own pass. Its top list carries the values.
     """
 
     problem: Problem
@@ -57,6 +60,7 @@ class StepContext:
     scheduler: Any = None
     progress: Callable[[str], Any] | None = None
     memory_budget: int | str | None = None
+    first: PassResult | None = None
     passes: PassContext = field(init=False, repr=False, compare=False)
 
     def __post_init__(self) -> None:
@@ -128,6 +132,9 @@ def _one_pass(
 ) -> tuple[PassResult, np.ndarray, dict]:
     fam = ctx.problem.family
     conditional = exclude.size > 0
+    if ctx.first is not None and name == "screen" and sel is None and not conditional:
+        kept, info = apply_threshold(ctx, ctx.first, exclude)
+        return ctx.first, kept, info
     try:
         spec = ctx.passes.spec(
             name,

@@ -243,6 +243,7 @@ def iterate(
     scheduler=None,
     progress=None,
     memory_budget: int | str | None = None,
+    first: PassResult | None = None,
 ) -> IterativeResult:
     """Run the iterative workflow on a problem (the array-level core of `run`).
 
@@ -257,6 +258,10 @@ def iterate(
         Where the passes run (see `widescreen.engine.execute`).
     progress : callable(pass name) -> callable(done, total), optional
     memory_budget : int or str, optional
+    first : PassResult, optional
+        The marginal screen of this problem already run (a trait's view of a pass shared by several
+        traits, with its top list's values): used instead of a first pass of its own. Ignored with
+        ``split`` and the permutation threshold, which need passes of their own.
     """
     n, p = problem.n, problem.source.n_features
     config.filters.check(problem.source.value_kind)
@@ -273,6 +278,7 @@ def iterate(
         scheduler,
         progress,
         memory_budget,
+        None if config.split or config.rule.kind == "permutation" else first,
     )
     loop = _Loop(
         pool=_Pool(n),

@@ -16,7 +16,7 @@ from typing import Any
 
 import numpy as np
 
-from .._config import check_choice, check_int, check_names, check_text
+from .._config import ConfigError, check_choice, check_int, check_names, check_text
 from ..engine import BlockSource, as_source
 from ..families import FAMILY_NAMES, Family, Response, get_family
 from ..store import (
@@ -36,11 +36,32 @@ def check_problem_fields(config) -> None:
     ``covariates`` given as a list becomes a tuple.
     """
     check_text("response", config.response)
+    trait_names(config.response)
     check_choice("family", config.family, FAMILY_NAMES)
     object.__setattr__(config, "covariates", check_names("covariates", config.covariates))
     check_text("event", config.event, optional=True)
     check_int("sub_block", config.sub_block, 1)
     _ = config.filters  # validates drop_missing and drop_rare (`FeatureFilter`)
+
+
+def trait_names(response: str) -> tuple[str, ...]:
+    """The response column(s) named by ``response``: one name, or several separated by commas (many
+    traits in one run, `widescreen.workflow.screen_traits`); each stripped of spaces, distinct, and
+    usable as a folder name (each trait gets ``traits/NAME/``)."""
+    from ..schema import check_trait_name
+
+    names = tuple(v.strip() for v in str(response).split(","))
+    if len(names) > 1:
+        if not all(names) or len(set(names)) < len(names):
+            raise ConfigError(
+                "response", "one column, or distinct columns separated by commas", response
+            )
+        for v in names:
+            try:
+                check_trait_name(v)
+            except ValueError as exc:
+                raise ConfigError("response", str(exc), response) from None
+    return names
 
 
 #: Largest shortlist ``"auto"`` gives, whatever n: floor(n / log n) reaches it at n of about 20,000,
@@ -421,4 +442,5 @@ __all__ = [
     "load_problem",
     "problem_from_arrays",
     "shortlist_size",
+    "trait_names",
 ]

@@ -14,6 +14,7 @@ from dataclasses import replace
 import numpy as np
 
 from ..engine import FeatureFilter, RunFolder, read_columns
+from ..schema import read_stats_at
 from ._passes import PassContext
 from ._problem import Problem, shortlist_size
 from ._screen import ScreenResult
@@ -101,7 +102,7 @@ def screen_responses(
     labels = response_names(names, K)
     n_obs = np.isfinite(Y).sum(axis=0)
     p = problem.source.n_features
-    ks = [shortlist_size(shortlist, int(n_k), p) for n_k in n_obs]
+    ks = [shortlist_size(shortlist, int(n_k), p, memory_budget) for n_k in n_obs]
     listed = max(max(ks), list_top or 0)
     ctx = PassContext(
         problem,
@@ -132,7 +133,7 @@ def screen_responses(
             )
         )
     if keep_values:
-        _fill_values(problem, Y, results, sub_block)
+        _fill_values(problem, results, sub_block)
     return results
 
 
@@ -140,15 +141,32 @@ def _trim(top, k: int):
     return replace(top, index=top.index[:k], score=top.score[:k])
 
 
-def _fill_values(problem: Problem, Y: np.ndarray, results: list[ScreenResult], sub_block) -> None:
-    """Each shortlist's values, from one read of the union of the shortlists (each block read once)."""
+def _fill_values(problem: Problem, results: list[ScreenResult], sub_block: int) -> None:
+    """Each shortlist's values, from one read of the union of the shortlists (each block read once),
+    centred on the pass's mean of each feature over the response's samples (missing values -> 0)."""
     union = np.unique(np.concatenate([r.index for r in results] + [np.empty(0, np.int64)]))
     x = read_columns(problem.source, union, rows=problem.rows, kind="float", sub_block=sub_block)
-    for k, r in enumerate(results):
+    for r in results:
         cols = x[:, np.searchsorted(union, r.index)]
-        own = np.isfinite(Y[:, k])[:, None] & np.isfinite(cols)
-        mean = np.where(own, cols, 0.0).sum(axis=0) / np.maximum(own.sum(axis=0), 1)
+        mean = response_means(r)
         r.values = np.asfortranarray(np.where(np.isfinite(cols), cols - mean, 0.0))
 
 
-__all__ = ["response_names", "screen_responses"]
+def response_means(result: ScreenResult) -> np.ndarray:
+    """The pass's mean of each shortlisted feature over the response's samples."""
+    view = result.pass_result
+    if view.stats is not None:
+        return view.stats["mean"][result.index]
+    return read_stats_at(result.run, view.name, result.index, ("mean",), response=view.response)[
+        "mean"
+    ]
+
+
+def shortlist_values(problem: Problem, result: ScreenResult, sub_block: int = 1024) -> np.ndarray:
+    """One response's shortlist values (n analysed samples x shortlist), read after the pass; as
+    ``screen_responses(..., keep_values=True)`` gives them, for one response at a time."""
+    _fill_values(problem, [result], sub_block)
+    return result.values
+
+
+__all__ = ["response_names", "screen_responses", "shortlist_values"]

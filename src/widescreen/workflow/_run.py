@@ -17,7 +17,7 @@ import numpy as np
 from ..schema import CV, ENTRIES, ITERATIONS, MODEL, RANKING, STABILITY, IterationRecord
 from ._crossval import cross_validate
 from ._iterate import IterateConfig, IterativeResult, iterate
-from ._problem import load_problem
+from ._problem import load_problem, trait_names
 from ._screen import dataset_record
 from ._session import RunSession, open_session
 from ._stability import stability_selection
@@ -62,7 +62,22 @@ def run(
     Returns
     -------
     IterativeResult
+        Or, for several traits (``config.response`` = "a,b,c"), a `TraitsResult`: the first pass shared
+        by all traits, then each trait's iteration in ``traits/NAME/`` (`run_traits`).
     """
+    if len(trait_names(config.response)) > 1:
+        from ._traits import run_traits
+
+        return run_traits(
+            store,
+            outcome,
+            config,
+            out,
+            scheduler=scheduler,
+            progress=progress,
+            restart=restart,
+            memory_budget=memory_budget,
+        )
     t0 = time.perf_counter()
     problem = load_problem(
         store,
@@ -89,35 +104,7 @@ def run(
             progress=progress,
             memory_budget=memory_budget,
         )
-        session.manifest["size_budget"] = result.budget
-        session.manifest["selected"] = [str(f) for f in result.feature_ids]
-        session.manifest["model"] = model_record(result).to_dict()
-        _trust(result, config, session, scheduler, progress, memory_budget)
-        records = [IterationRecord.from_dict(r) for r in result.iterations]
-        write = session.run.write_table
-        stab = result.extra.get("stability")
-        if stab is not None:
-            write(STABILITY.file, stability_text(problem, stab, result.index))
-        if result.extra.get("cv") is not None:
-            write(CV.file, cv_text(result.extra["cv"]))
-        if not config.split:
-            top = result.screen[0].topk
-            shortlisted = np.isin(top.index, records[0].candidates)
-            write(
-                RANKING.file,
-                ranking_text(
-                    problem,
-                    session.run,
-                    result.screen[0],
-                    top.index,
-                    top.score,
-                    shortlisted,
-                    None if stab is None else stab.frequency_of(top.index),
-                ),
-            )
-        write(ITERATIONS.file, iterations_text(records, config.criterion))
-        write(ENTRIES.file, entries_text(problem, records))
-        write(MODEL.file, model_text(result))
+        finish_run(session, problem, config, result, scheduler, progress, memory_budget)
         session.finish(seconds_total=round(time.perf_counter() - t0, 3))
         return result
 
@@ -172,4 +159,52 @@ def _trust(
     session.save()
 
 
-__all__ = ["run"]
+def finish_run(
+    session: RunSession,
+    problem,
+    config: IterateConfig,
+    result: IterativeResult,
+    scheduler=None,
+    progress=None,
+    memory_budget=None,
+) -> None:
+    """After the iteration: record the model in the manifest, run stability selection and
+    cross-validation when asked for, and write the tables into the session's run folder."""
+    session.manifest["size_budget"] = result.budget
+    session.manifest["selected"] = [str(f) for f in result.feature_ids]
+    session.manifest["model"] = model_record(result).to_dict()
+    _trust(result, config, session, scheduler, progress, memory_budget)
+    write_run_tables(session, problem, config, result)
+
+
+def write_run_tables(session, problem, config: IterateConfig, result: IterativeResult) -> None:
+    """Write ranking.tsv (without splitting), iterations.tsv, entries.tsv, model.tsv and, when asked
+    for, stability.tsv and cv.tsv into the session's run folder."""
+    records = [IterationRecord.from_dict(r) for r in result.iterations]
+    write = session.run.write_table
+    stab = result.extra.get("stability")
+    if stab is not None:
+        write(STABILITY.file, stability_text(problem, stab, result.index))
+    if result.extra.get("cv") is not None:
+        write(CV.file, cv_text(result.extra["cv"]))
+    if not config.split:
+        top = result.screen[0].topk
+        shortlisted = np.isin(top.index, records[0].candidates)
+        write(
+            RANKING.file,
+            ranking_text(
+                problem,
+                session.run,
+                result.screen[0],
+                top.index,
+                top.score,
+                shortlisted,
+                None if stab is None else stab.frequency_of(top.index),
+            ),
+        )
+    write(ITERATIONS.file, iterations_text(records, config.criterion))
+    write(ENTRIES.file, entries_text(problem, records))
+    write(MODEL.file, model_text(result))
+
+
+__all__ = ["finish_run", "run", "write_run_tables"]

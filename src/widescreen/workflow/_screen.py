@@ -19,6 +19,7 @@ from ._problem import (
     load_problem,
     shortlist_notice,
     shortlist_size,
+    trait_names,
 )
 from ._session import open_session
 from ._tables import ranking_text
@@ -196,10 +197,25 @@ def screen(
     """Screen every feature of ``store`` for association with the outcome; write the run folder.
 
     Writes ``manifest.json``, ``ranking.tsv`` (the shortlist, or ``list_top`` rows, in rank order) and
-    the statistics of every feature under ``passes/screen/``. ``memory_budget`` (bytes or a text such
+    the statistics of every feature under ``passes/screen/``. Several traits (``config.response`` =
+    "a,b,c") are screened in one pass into ``traits/NAME/`` folders with a summary ``traits.tsv``
+    (`widescreen.workflow.screen_traits`; returns a `TraitsResult`). ``memory_budget`` (bytes or a text such
     as "4GB") plans the pass's memory; it is recorded outside the configuration, so a rerun with a
     smaller budget resumes.
     """
+    if len(trait_names(config.response)) > 1:
+        from ._traits import screen_traits
+
+        return screen_traits(
+            store,
+            outcome,
+            config,
+            out,
+            scheduler=scheduler,
+            progress=progress,
+            restart=restart,
+            memory_budget=memory_budget,
+        )
     t0 = time.perf_counter()
     problem = load_problem(
         store,
