@@ -197,7 +197,9 @@ def run_cmd(
         config,
         out,
         scheduler=scheduler_of(workers, scheduler),
-        progress=lambda name: progress_display(name, quiet),
+        progress=lambda name: progress_display(
+            name, quiet, unit="refits" if name.endswith("refits") else "blocks"
+        ),
         restart=restart,
         memory_budget=budget_of(memory_budget),
     )

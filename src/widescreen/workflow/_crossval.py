@@ -29,6 +29,7 @@ from ._subsets import (
     centre_with,
     fit_subset,
     read_union,
+    refit_progress,
     response_matrix,
     screen_responses,
     timed,
@@ -159,6 +160,7 @@ def cross_validate(
             response_matrix(problem, masks),
             shortlist=d,
             names=[f"cv_fold{k + 1}" for k in todo],
+            label="cv training folds",
         )
         for cols, lists in groups:
             for j, top in zip(cols, lists, strict=True):
@@ -172,6 +174,7 @@ def cross_validate(
         lists = [np.asarray(recs[k]["shortlist"], dtype=np.int64) for k in tofit]
         (union, raw), seconds["read"] = timed(read_union, problem, lists, where.sub_block)
         fit_seconds = 0.0
+        tick = refit_progress(where, "cv refits", len(tofit))
         for k, top in zip(tofit, lists, strict=True):
             fit, s = timed(fit_subset, problem, train[k], top, union, raw, settings, n_candidates)
             fit_seconds += s
@@ -193,6 +196,7 @@ def cross_validate(
             }
             if save is not None:
                 save()
+            tick()
         seconds["fit"] = fit_seconds
 
     folds = [

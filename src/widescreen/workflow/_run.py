@@ -149,12 +149,15 @@ def _trust(
             **common,
         )
         result.extra["stability"] = stab
+        # Phases a resumed session did not rerun keep the timings of the session that ran them.
+        stab.seconds = {**(m.get("stability") or {}).get("seconds", {}), **stab.seconds}
         m["stability"] = stab.record(result.problem)
     if config.cv_folds:
         cv = cross_validate(
             where, n_folds=config.cv_folds, state=m.setdefault("cv_state", {}), **common
         )
         result.extra["cv"] = cv
+        cv.seconds = {**(m.get("cv") or {}).get("seconds", {}), **cv.seconds}
         m["cv"] = cv.record()
     session.save()
 

@@ -37,6 +37,7 @@ from ._subsets import (
     SubsetScreen,
     fit_subset,
     read_union,
+    refit_progress,
     response_matrix,
     screen_responses,
     timed,
@@ -196,7 +197,11 @@ def stability_selection(
             masks[halves[i], j] = True
         t0 = time.perf_counter()
         groups = screen_responses(
-            where, response_matrix(problem, masks), shortlist=d, names=[names[i] for i in todo]
+            where,
+            response_matrix(problem, masks),
+            shortlist=d,
+            names=[names[i] for i in todo],
+            label="stability halves",
         )
         for cols, lists in groups:
             for j, top in zip(cols, lists, strict=True):
@@ -210,12 +215,14 @@ def stability_selection(
         lists = [np.asarray(recs[i]["shortlist"], dtype=np.int64) for i in tofit]
         (union, raw), seconds["read"] = timed(read_union, problem, lists, where.sub_block)
         fit_seconds = 0.0
+        tick = refit_progress(where, "stability refits", len(tofit))
         for i, top in zip(tofit, lists, strict=True):
             fit, s = timed(fit_subset, problem, halves[i], top, union, raw, settings, n_candidates)
             fit_seconds += s
             recs[i]["selected"] = [int(j) for j in fit.model.index]
             if save is not None:
                 save()
+            tick()
         seconds["fit"] = fit_seconds
 
     selected = [np.asarray(r["selected"], dtype=np.int64) for r in recs]

@@ -71,14 +71,20 @@ def group_size(n_features: int, K: int, budget: int = STATS_BUDGET) -> int:
 
 
 def screen_responses(
-    where: SubsetScreen, Y: np.ndarray, *, shortlist: int, names: list[str]
+    where: SubsetScreen,
+    Y: np.ndarray,
+    *,
+    shortlist: int,
+    names: list[str],
+    label: str = "subsets",
 ) -> Iterator[tuple[list[int], list[np.ndarray]]]:
     """Top ``shortlist`` features of each column of Y (strongest first), a group of columns at a time.
 
     Column k of Y is the problem's response on the samples where it is finite (NaN: not in the
     subset); the event indicator and the covariates are the problem's, restricted to those samples.
     Yields (the group's column numbers, their shortlists) after each pass, so the caller can record
-    them (resume).
+    them (resume). ``label`` names a response-matrix pass in the progress display ("LABEL 1-41 of
+    100"); a single-response pass shows its column's name.
 
     Families with a response-matrix pass (`Family.multi_kernel`: linear, logistic, Poisson) screen
     a group of columns in one pass over the store (`widescreen.workflow.screen_responses`), as many
@@ -92,6 +98,7 @@ def screen_responses(
         G = group_size(problem.n_features, K)
         for a in range(0, K, G):
             cols = list(range(a, min(a + G, K)))
+            pass_name = f"{label} {a + 1}-{cols[-1] + 1} of {K}"
             found = multi_screen(
                 problem,
                 Y[:, cols],
@@ -101,10 +108,10 @@ def screen_responses(
                 sub_block=where.sub_block,
                 keep_values=False,
                 run=None,  # the subsets' statistics are not kept: only their shortlists
-                name=names[cols[0]],
+                name=pass_name,
                 scheduler=where.scheduler,
                 # screen_responses takes the pass's own callable(done, total)
-                progress=None if where.progress is None else where.progress(names[cols[0]]),
+                progress=None if where.progress is None else where.progress(pass_name),
                 memory_budget=where.memory_budget,
             )
             yield cols, [np.asarray(r.index, dtype=np.int64) for r in found]
@@ -210,6 +217,22 @@ def read_union(problem: Problem, shortlists: list[np.ndarray], sub_block: int):
     return union, np.asarray(raw, dtype=np.float64)
 
 
+def refit_progress(where: SubsetScreen, label: str, total: int) -> Callable[[], None]:
+    """A counter of finished refits, shown through the run's progress display (``label``)."""
+    show = where.progress(label) if where.progress is not None else None
+    done = 0
+    if show is not None:
+        show(0, total)
+
+    def tick() -> None:
+        nonlocal done
+        done += 1
+        if show is not None:
+            show(done, total)
+
+    return tick
+
+
 def timed(fn, *args, **kwargs):
     """fn(*args, **kwargs) and its wall time in seconds."""
     t0 = time.perf_counter()
@@ -226,6 +249,7 @@ __all__ = [
     "group_size",
     "impute_centre",
     "read_union",
+    "refit_progress",
     "response_matrix",
     "screen_responses",
     "subproblem",
