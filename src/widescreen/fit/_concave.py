@@ -81,9 +81,11 @@ def kkt_violation(
     return max(viol, 0.0)
 
 
-#: IRLS iterations per lambda before a point that has not settled is taken as running away (the path
-#: ends there; R's ``glm.control(maxit = 25)``, common practice). Below saturation a concave working
-#: problem settles in a handful; the iterations of a point that does not are the costliest of the path.
+#: IRLS iterations per lambda before a GLM point (binomial, Poisson) that has not settled is taken as
+#: running away (the path ends there; R's ``glm.control(maxit = 25)``, common practice). Below saturation
+#: a concave working problem settles in a handful; the iterations of a point that does not are the
+#: costliest of the path. The Cox loss keeps ``SolverOptions.outer_max_iter``: with strong effects its
+#: Newton steps legitimately take longer to settle.
 _IRLS_PATIENCE = 25
 
 #: Coordinate descent sweeps between attempts of the Newton polish.
@@ -274,6 +276,9 @@ def concave_path(
     grad = np.abs(problem.Xs.T @ (w * (z - st.eta))) / n
     lam_prev = float(lam[0])
     kkt_scale = opts.kkt_tol * float(lam[0])
+    outer_max = opts.outer_max_iter
+    if loss.name in ("binomial", "poisson"):
+        outer_max = min(outer_max, _IRLS_PATIENCE)
     for level in lam:
         level = float(level)
         b = st.beta[:d]
@@ -282,7 +287,7 @@ def concave_path(
         stop = False
         obj = st.objective(pen, st.beta, st.eta, level)
         settled = False
-        for _ in range(1 if loss.quadratic else min(opts.outer_max_iter, _IRLS_PATIENCE)):
+        for _ in range(1 if loss.quadratic else outer_max):
             if not loss.quadratic:
                 z, w = loss.working(problem.y, st.eta)
             beta_old = st.beta.copy()
