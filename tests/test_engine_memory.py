@@ -89,8 +89,8 @@ def test_rule_bounds_the_measured_peak_of_a_block_task(store, sub_block, keep, h
     bound = thread_bytes(shape, sub_block, keep=keep, n_columns=len(spec.all_columns))
     assert shape.column_bytes <= peak <= bound
     # and the rule is not absurdly loose (the linear kernel never builds the float64 sub-block the
-    # rule allows for, so it stays somewhat below it)
-    assert bound < 5 * peak
+    # rule allows for, and a block keeps its top k as stored bytes, so it stays somewhat below it)
+    assert bound < 6 * peak
 
 
 def test_plan_fits_the_budget_and_prefers_threads(store):

@@ -25,7 +25,7 @@ from ._runfolder import atomic_write
 from ._scheduler import WorkerAccessError
 from ._source import BlockSource
 from ._spec import PassSpec
-from ._topk import TopK, block_topk, merge_all
+from ._topk import TopK, block_topk, floor_of, merge_all, raise_floor
 
 
 def _filter_mask(
@@ -85,16 +85,19 @@ def process_block(source: BlockSource, spec: PassSpec, i: int, out_dir: str | No
         cols["missing_rate"].append(block.missing_rate)
         cols["mean"].append(block.mean)
         cols["filtered"].append(filtered.astype(np.float64))
-        part = block_topk(spec.keep, start + a, score, None, eligible, out.get("null_score"))
+        # Features below the pass's running floor (or this block's own k-th score) cannot enter.
+        floor = max(floor_of(spec.floor_key, spec.keep), best.kth)
+        part = block_topk(spec.keep, start + a, score, None, eligible, out.get("null_score"), floor)
         best = merge_all([best, part], spec.keep, part.null_max.size)
     stats = {c: np.concatenate(v) for c, v in cols.items()}
     kept_raw = None
+    raise_floor(spec.floor_key, best.score, spec.keep)
     if spec.keep_values and best.index.size:
-        # The values of the block's final top k only, made once per block from the stored values and
-        # the pass's means (elementwise, so equal to what the sub-block would have given).
+        # The stored values of the block's final top k only (a byte a value for int8); the pass makes
+        # the float64 values once, for its final list (`TopK.raw`).
         local = best.index - start
         kept_raw = _kept_raw(raw, local, spec.rows)
-        best = replace(best, values=kept_values(kept_raw, stats["mean"][local]))
+        best = replace(best, raw=kept_raw, mean=stats["mean"][local])
     record = {
         "block": i,
         "start": start,

@@ -14,17 +14,18 @@ What one worker thread holds at its peak while it processes one block::
     sub(w)     = n * w * (s + 8 * (1 + t))        the analysed rows of one sub-block, its float64
                  + 2 * m * w * 8                  values and the kernel's temporaries; the
                                                   cross-products and null scores of the m responses
-    topk       = n * min(k, C) * (8 + 2 * s + 1)  the block's final top-k values, made once
-                                                  per block from their stored values
+    topk       = 2 * n * min(k, C) * s            the stored values of the block's final top k
+                                                  (gathered, then kept: a byte a value for int8)
     stats      = 2 * c * C * 8                    the block's statistics
     thread(w)  = column + encoded + sub(w) + topk + stats
 
 and what the process holds besides the threads::
 
-    shared(T)  = baseline + (f + T + 4) * 8 * n * k   the process itself, the top-k records
-                                                  waiting for a merge, and a pairwise merge's own
-                                                  three (the two lists stacked, the kept columns
-                                                  gathered); baseline = 320 MiB (interpreter and
+    shared(T)  = baseline + (f + T + 4) * s * n * k   the process itself, the top-k records
+                 + 8 * n * k                      waiting for a merge (stored values), a pairwise
+                                                  merge's own three (the two lists stacked, the kept
+                                                  columns gathered) and the final list's float64
+                                                  values; baseline = 320 MiB (interpreter and
                                                   libraries), or the resident memory of the calling
                                                   process when larger; k = 0 when the pass keeps no
                                                   values
@@ -191,9 +192,9 @@ def thread_bytes(
     w = min(sub_block, shape.chunk_cols)
     n = shape.n_analysed
     sub = n * w * (shape.itemsize + 8 * (1.0 + temporaries)) + 2 * n_responses * w * 8
-    # The block's final top-k values, made once from their stored values (a gathered copy, the kept
-    # copy and a missing mask beside the float64 result).
-    top = n * min(keep, shape.chunk_cols) * (8 + 2 * shape.itemsize + 1)
+    # The stored values of the block's final top k (a gathered copy and the kept one); the float64
+    # values are made once, for the pass's final list (`shared_bytes`).
+    top = 2 * n * min(keep, shape.chunk_cols) * shape.itemsize
     stats = 2 * n_columns * shape.chunk_cols * 8
     return int(shape.column_bytes + shape.encoded_bytes + sub + top + stats)
 
@@ -202,7 +203,8 @@ def shared_bytes(
     shape: BlockShape, n_threads: int, *, keep: int, split_every: int = 8, baseline: int
 ) -> int:
     copies = split_every + n_threads + 1 + MERGE_COPIES
-    return int(baseline + copies * shape.n_analysed * keep * 8)
+    n = shape.n_analysed
+    return int(baseline + copies * n * keep * shape.itemsize + 8 * n * keep)
 
 
 def _widths(max_sub_block: int) -> list[int]:
@@ -303,7 +305,7 @@ def plan_memory(
         f"needs at least {format_bytes(per)} (a chunk column of {n_row_chunks * shape.chunk_rows} x "
         f"{shape.chunk_cols} values of {shape.itemsize} byte(s), {format_bytes(shape.column_bytes)}, "
         f"is decoded whole; its chunk file takes up to {format_bytes(shape.encoded_bytes)}; the "
-        f"top-{keep} values {format_bytes(2 * shape.n_analysed * min(keep, shape.chunk_cols) * 8)}) on top of "
+        f"top-{keep} values {format_bytes(2 * shape.n_analysed * min(keep, shape.chunk_cols) * shape.itemsize)}) on top of "
         f"{format_bytes(shared)} for the process ({format_bytes(baseline)} of its own) and pending "
         "merges; give at least "
         f"{format_bytes(per + shared)}, or store X with fewer features per chunk"

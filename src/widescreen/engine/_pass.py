@@ -16,6 +16,7 @@ from __future__ import annotations
 import json
 import shutil
 import time
+import uuid
 from collections.abc import Callable
 from dataclasses import dataclass, replace
 from functools import partial
@@ -25,7 +26,7 @@ from typing import Any
 import numpy as np
 
 from ..schema import PassLayout, PassMeta, create_stats, read_pass_meta, read_stats
-from ._block import process_block, read_kept, read_marker
+from ._block import kept_values, process_block, read_kept, read_marker
 from ._columns import read_columns
 from ._memory import (
     BASELINE_BYTES,
@@ -81,6 +82,8 @@ def build_pass(
     """
     token = spec.token(source)
     name = f"widescreen-{spec.name}-{token[:12]}"
+    # A fresh running floor per build: the blocks of this call share it (`raise_floor`).
+    spec = replace(spec, floor_key=f"{name}-{uuid.uuid4().hex}")
     src_key, spec_key = f"{name}-source", f"{name}-spec-{spec.sub_block}"
     graph: dict = {}
     block_keys = []
@@ -342,7 +345,7 @@ def _finish(
         pass  # the caller reads the columns its responses need (`widescreen.engine.read_columns`)
     elif top.values is None and spec.keep_values and top.index.size:
         values = _kept_values(source, spec, top, computed.final, out_dir, computed.fetch_threads)
-        top = replace(top, values=values)
+        top = replace(top, values=values, raw=None, mean=None)
     t_fetch = time.perf_counter() - t_fetch if reused else 0.0
     return PassResult(
         name=spec.name,
@@ -394,12 +397,13 @@ def _kept_values(
     values = np.empty((n, top.index.size), dtype=np.float64, order="F")
     have = np.zeros(top.index.size, dtype=bool)
     ctop = None if computed is None else computed["topk"]
-    if ctop is not None and ctop.values is not None and ctop.index.size:
+    if ctop is not None and ctop.raw is not None and ctop.index.size:
         order = np.argsort(ctop.index)
         pos = np.searchsorted(ctop.index[order], top.index)
         pos = np.minimum(pos, ctop.index.size - 1)
         have = ctop.index[order][pos] == top.index
-        values[:, have] = ctop.values[:, order[pos[have]]]
+        src = order[pos[have]]
+        values[:, have] = kept_values(ctop.raw[:, src], ctop.mean[src])
     if out_dir is not None and not have.all():
         for b in np.unique(top.index[~have] // source.block_width):
             got = read_kept(out_dir, int(b))

@@ -75,6 +75,9 @@ class PassSpec:
         thread. A memory budget may lower it (`widescreen.engine.plan_memory`).
     temporaries : float
         Float64 (n, sub_block) temporaries the kernel makes at its peak, for the memory plan.
+    floor_key : str
+        Names the running floor the pass's blocks share in a process (`widescreen.engine._topk`);
+        set by `build_pass`, not part of the pass's inputs.
     """
 
     name: str
@@ -88,6 +91,7 @@ class PassSpec:
     keep_values: bool = True
     sub_block: int = 1024
     temporaries: float = 2.0
+    floor_key: str = ""
 
     def token(self, source: BlockSource) -> str:
         """Deterministic name of the pass's inputs: the checkpoints of another token are not reused.

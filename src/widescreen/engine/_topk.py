@@ -1,13 +1,40 @@
 """Running top-k of feature scores, merged across blocks without sorting all features.
 
 Ties are broken by feature index (lower first) so that every merge order gives the same list.
+
+A pass's blocks share a running floor (`raise_floor`, `floor_of`): the k-th largest score among the
+lists of the blocks finished so far is a lower bound of the pass's final k-th score, so no later block
+needs to keep a feature scoring below it (late blocks keep almost nothing). Ties stay (a tie may enter by its lower index), so the merged list is the same
+whatever the order the blocks ran in; only the blocks' own lists (and their markers) get shorter.
 """
 
 from __future__ import annotations
 
+import threading
 from dataclasses import dataclass
 
 import numpy as np
+
+_FLOORS: dict[str, np.ndarray] = {}
+_FLOORS_LOCK = threading.Lock()
+
+
+def floor_of(key: str, k: int) -> float:
+    """The running floor of the pass ``key`` in this process: the k-th largest score among the lists
+    of its finished blocks (-inf until k scores were seen)."""
+    scores = _FLOORS.get(key) if key else None
+    return float(scores[k - 1]) if scores is not None and scores.size >= k else -np.inf
+
+
+def raise_floor(key: str, scores: np.ndarray, k: int) -> None:
+    """Add a finished block's list scores to the pass's k largest scores seen (the floor's source)."""
+    if not key or not np.size(scores):
+        return
+    with _FLOORS_LOCK:
+        cur = np.concatenate([_FLOORS.get(key, np.empty(0)), np.asarray(scores, np.float64)])
+        if cur.size > k:
+            cur = np.partition(cur, cur.size - k)[cur.size - k :]
+        _FLOORS[key] = np.sort(cur)[::-1].copy()
 
 
 @dataclass(frozen=True)
@@ -23,6 +50,12 @@ class TopK:
         The features' imputed, centred values, kept so the refit needs no second read.
     null_max : ndarray of float64, shape (n_nulls,)
         Largest null (permuted-response) score over all features seen, per permutation.
+    raw : ndarray of shape (n_samples, m) or None
+        The features' stored values (int8 with the missing sentinel, or floats with NaN) on the
+        analysed rows: what a pass keeps while it runs (a byte a value for int8), made into ``values``
+        once, for the final list only.
+    mean : ndarray of float64, shape (m,) or None
+        Their observed means (with ``raw``).
     """
 
     k: int
@@ -30,6 +63,13 @@ class TopK:
     score: np.ndarray
     values: np.ndarray | None
     null_max: np.ndarray
+    raw: np.ndarray | None = None
+    mean: np.ndarray | None = None
+
+    @property
+    def kth(self) -> float:
+        """The k-th score when the list is full (a lower bound of any merged list's), else -inf."""
+        return float(self.score[self.k - 1]) if self.score.size >= self.k else -np.inf
 
     @classmethod
     def empty(cls, k: int, n_nulls: int = 0) -> TopK:
@@ -54,6 +94,7 @@ def block_topk(
     values: np.ndarray | None,
     eligible: np.ndarray,
     null_score: np.ndarray | None = None,
+    floor: float = -np.inf,
 ) -> TopK:
     """Top-k of one block.
 
@@ -68,12 +109,16 @@ def block_topk(
     eligible : ndarray of bool, shape (width,)
         Features allowed into the list (not filtered, not excluded, not constant).
     null_score : ndarray of shape (width, n_nulls), optional
+    floor : float
+        Features scoring below it cannot enter the final list (`raise_floor`): left out.
     """
     n_nulls = 0 if null_score is None else null_score.shape[1]
     null_max = np.full(n_nulls, -np.inf)
     if null_score is not None and eligible.any():
         null_max = null_score[eligible].max(axis=0)
-    cand = np.flatnonzero(eligible)
+    cand = (
+        np.flatnonzero(eligible & (score >= floor)) if floor > -np.inf else np.flatnonzero(eligible)
+    )
     if cand.size > k:
         # Partition first, then widen the cut to keep every tie at the boundary: exact and deterministic.
         part = np.argpartition(-score[cand], k - 1)[:k]
@@ -99,11 +144,28 @@ def merge_topk(a: TopK, b: TopK) -> TopK:
         parts = [v for v in (a.values, b.values) if v is not None]
         allv = np.hstack(parts) if len(parts) > 1 else parts[0]
         values = allv[:, order] if allv.shape[1] == index.size else None
+    raw = mean = None
+    if a.raw is not None or b.raw is not None:
+        parts = [t for t in (a, b) if t.raw is not None and t.index.size]
+        if sum(t.index.size for t in parts) == index.size:
+            if len(parts) == 1:
+                raw, mean = parts[0].raw[:, order], parts[0].mean[order]
+            elif parts:
+                raw = np.hstack([t.raw for t in parts])[:, order]
+                mean = np.concatenate([t.mean for t in parts])[order]
     if a.null_max.size and b.null_max.size:
         null_max = np.maximum(a.null_max, b.null_max)
     else:
         null_max = a.null_max if a.null_max.size else b.null_max
-    return TopK(k=k, index=index[order], score=score[order], values=values, null_max=null_max)
+    return TopK(
+        k=k,
+        index=index[order],
+        score=score[order],
+        values=values,
+        null_max=null_max,
+        raw=raw,
+        mean=mean,
+    )
 
 
 def merge_all(parts: list[TopK], k: int, n_nulls: int = 0) -> TopK:
