@@ -131,6 +131,9 @@ def test_demo_runs_the_whole_job(tmp_path):
     assert res.exit_code == 0, res.output
     assert "causal" in res.output
     assert f"Writing into {(tmp_path / 'd').resolve()}" in res.output
+    # the first screen's inflation factor, as the run's iteration record holds it
+    iters = json.loads((tmp_path / "d" / "run" / "manifest.json").read_text())["iterations"]
+    assert f"lambda_GC = {iters[0]['threshold'][0]['lambda_gc']:.4f}" in res.output
     for name in ("model.tsv", "iterations.tsv", "ranking.tsv", "manifest.json", "report.html"):
         assert (tmp_path / "d" / "run" / name).is_file()
     # Every causal site's row says how the run treated it; a shortlisted one's marginal rank is

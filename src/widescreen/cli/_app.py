@@ -209,6 +209,12 @@ def budget_of(value: str | None) -> int | None:
         raise typer.BadParameter(f"--memory-budget: {exc}") from None
 
 
+def first_lambda_gc(iterations: list[dict]) -> float | None:
+    """lambda_GC of a run's first screening pass, as its iteration record holds it."""
+    first = iterations[0]["threshold"] if iterations else []
+    return first[0].get("lambda_gc") if first else None
+
+
 def lambda_gc_line(value: float) -> str:
     """The genomic inflation factor of a pass, as the commands print it."""
     note = "" if 0.9 <= value <= 1.1 else " (far from 1: check covariates, structure or the family)"

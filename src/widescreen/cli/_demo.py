@@ -11,7 +11,7 @@ from typing import Annotated
 
 import typer
 
-from ._app import NOT_RESUMABLE, command
+from ._app import NOT_RESUMABLE, command, first_lambda_gc, lambda_gc_line
 from ._options import QuietOpt, at_least, below_one, one_of, positive
 from ._progress import progress_display
 
@@ -208,6 +208,9 @@ def run_demo(out: Path, *, samples: int, features: int, seed: int, quiet: bool) 
         f"\nshortlist: {d} of {features} sites (floor(n / log n)); "
         f"{len(result.iterations)} iteration(s), stopped: {result.stop_reason}"
     )
+    lam = first_lambda_gc(result.iterations)
+    if lam is not None:
+        typer.echo(lambda_gc_line(lam))
     typer.echo(
         f"{'causal site':<12} {'true effect':>11} {'penalised':>9} {'refit':>8}  how it went"
     )

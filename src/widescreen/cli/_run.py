@@ -6,7 +6,14 @@ from typing import Annotated
 
 import typer
 
-from ._app import budget_of, command, covariates_of, lambda_gc_line, scheduler_of
+from ._app import (
+    budget_of,
+    command,
+    covariates_of,
+    first_lambda_gc,
+    lambda_gc_line,
+    scheduler_of,
+)
 from ._options import (
     CovariatesOpt,
     DropMissingOpt,
@@ -216,8 +223,7 @@ def run_cmd(
         f"{result.budget}; stopped: {result.stop_reason}; selected {result.index.size} "
         f"feature(s){': ' + shown + more if shown else ''}; model in {out / 'model.tsv'}"
     )
-    first = result.iterations[0]["threshold"] if result.iterations else []
-    lam = first[0].get("lambda_gc") if first else None
+    lam = first_lambda_gc(result.iterations)
     if lam is not None:
         typer.echo(lambda_gc_line(lam))
     stab = result.extra.get("stability")
