@@ -111,10 +111,26 @@ def cv_folds_check(value: int) -> int:
 # ------------------------------------------------------------------------------------------------
 # options shared by `screen` and `run`
 
+
+def run_folder(value: str | None) -> Path | None:
+    """The run folder as a Path; an object-storage URL is refused with the reason."""
+    if value is None:
+        return None
+    from ..engine import RunFolderError, run_folder_path
+
+    try:
+        return run_folder_path(value)
+    except RunFolderError as exc:
+        raise typer.BadParameter(str(exc)) from None
+
+
+# A store is text, not a Path: it may be a URL (s3://bucket/geno.zarr), which a Path would mangle.
 StoreArg = Annotated[
-    Path,
+    str,
     typer.Argument(
-        metavar="STORE", help="Dataset store (made by `widescreen import` or `simulate`)."
+        metavar="STORE",
+        help="Dataset store (made by `widescreen import` or `simulate`): a folder or a URL "
+        "(s3://, gs://, az://, https://).",
     ),
 ]
 OutcomeOpt = Annotated[
@@ -131,9 +147,12 @@ ResponseOpt = Annotated[
     ),
 ]
 OutOpt = Annotated[
-    Path,
+    str,
     typer.Option(
-        "--out", metavar="FOLDER", help="Run folder for the results (resumed if it exists)."
+        "--out",
+        metavar="FOLDER",
+        help="Run folder for the results (resumed if it exists); a local or shared folder.",
+        callback=run_folder,
     ),
 ]
 FamilyOpt = Annotated[

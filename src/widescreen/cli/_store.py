@@ -23,7 +23,12 @@ def import_cmd(
             metavar="FILE", help="CSV/TSV (optionally .gz), .npy, or VCF (.vcf, .vcf.gz) file."
         ),
     ],
-    store: Annotated[Path, typer.Argument(metavar="STORE", help="Path of the new store.")],
+    store: Annotated[
+        str,
+        typer.Argument(
+            metavar="STORE", help="The new store: a folder or a URL (s3://, gs://, az://)."
+        ),
+    ],
     features_as_rows: Annotated[
         bool,
         typer.Option(
@@ -160,7 +165,9 @@ def import_cmd(
 
 @command("inspect")
 def inspect_cmd(
-    store: Annotated[Path, typer.Argument(metavar="STORE", help="Dataset store.")],
+    store: Annotated[
+        str, typer.Argument(metavar="STORE", help="Dataset store: a folder or a URL.")
+    ],
     sample_blocks: Annotated[
         int | None,
         typer.Option(

@@ -15,7 +15,14 @@ from ._memory import (
 )
 from ._pass import build_pass, read_stats, run_pass
 from ._reduce import add_tree, reduce_blocks, stream_combine, sum_arrays, tree_combine
-from ._runfolder import RunFolder, RunFolderError, RunLock, atomic_write, diff_config
+from ._runfolder import (
+    RunFolder,
+    RunFolderError,
+    RunLock,
+    atomic_write,
+    diff_config,
+    run_folder_path,
+)
 from ._scheduler import Executor, WorkerAccessError, execute, n_cores, open_executor
 from ._source import ArraySource, BlockSource, StoreSource, as_source
 from ._spec import ENGINE_COLUMNS, FeatureFilter, PassResult, PassSpec
@@ -62,6 +69,7 @@ __all__ = [
     "read_marker",
     "read_stats",
     "reduce_blocks",
+    "run_folder_path",
     "run_pass",
     "stream_combine",
     "sum_arrays",

@@ -191,11 +191,30 @@ class RunLock:
         self.release()
 
 
+def run_folder_path(target: str | os.PathLike) -> Path:
+    """The folder of a run, refusing an object-storage URL with the reason.
+
+    A run folder's guarantees rest on an ``flock`` held for the life of the process (dropped by the
+    kernel when it dies) and on atomic renames (a table, a manifest or a statistics chunk is whole or
+    absent). Object storage has neither: no lock that ends with its holder, no rename. Until a lease on
+    a conditionally created lock object replaces them, a run folder must be a local or shared folder;
+    the store may still be a URL (the common case: data in a bucket, results on this machine).
+    """
+    from ..store import is_url
+
+    if is_url(str(target)):
+        raise RunFolderError(
+            f"{target}: a run folder cannot be on object storage (its lock and its whole-or-absent "
+            "files need a file system); give a local or shared folder, the store may stay a URL"
+        )
+    return Path(target)
+
+
 class RunFolder:
     """Access to one run folder. Creates it on first use."""
 
     def __init__(self, path: str | os.PathLike) -> None:
-        self.path = Path(path)
+        self.path = run_folder_path(path)
         self.layout = RunLayout(self.path)
 
     @property

@@ -109,8 +109,9 @@ class StoreSource(BlockSource):
     def itemsize(self) -> int:
         return int(self.layout.dtype.itemsize)
 
-    def location(self) -> Path:
-        return Path(self.dataset.path)
+    def location(self) -> Path | None:
+        # A store on object storage is reached by URL from anywhere the credentials are.
+        return self.dataset.path if isinstance(self.dataset.path, Path) else None
 
     def absolute(self) -> StoreSource:
         """The same source with an absolute store path (what cluster workers need)."""

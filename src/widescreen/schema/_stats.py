@@ -12,7 +12,6 @@ from __future__ import annotations
 import json
 import os
 from collections.abc import Iterator
-from pathlib import Path
 
 import numpy as np
 
@@ -275,7 +274,7 @@ def stats_frame(
     if store is None:
         manifest = json.loads(RunLayout(run).manifest.read_text())
         store = manifest.get("dataset", {}).get("path")
-    ids = open_dataset(Path(store)).feature_ids(start, stop)
+    ids = open_dataset(store).feature_ids(start, stop)
     frame = pd.DataFrame(stats.read(columns, start, stop))
     frame.insert(0, "index", np.arange(start, stop, dtype=np.int64))
     frame.index = pd.Index(ids, name="feature", dtype="string")

@@ -17,6 +17,7 @@ from ._ingest_npy import import_npy
 from ._ingest_text import import_table
 from ._ingest_vcf import import_vcf
 from ._inspect import InspectReport, inspect_dataset
+from ._location import RemotePath, is_url, place
 from ._outcome import (
     CovariateCoding,
     JoinedOutcome,
@@ -45,6 +46,7 @@ __all__ = [
     "JoinedOutcome",
     "OutcomeError",
     "OutcomeTable",
+    "RemotePath",
     "StoreError",
     "code_covariate_frame",
     "code_covariates",
@@ -54,8 +56,10 @@ __all__ = [
     "import_table",
     "import_vcf",
     "inspect_dataset",
+    "is_url",
     "join_outcome",
     "open_dataset",
+    "place",
     "prepare_block",
     "read_block",
     "read_outcome_table",

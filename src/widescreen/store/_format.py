@@ -21,8 +21,9 @@ from __future__ import annotations
 import hashlib
 import json
 import os
-import shutil
+import tempfile
 from dataclasses import asdict, dataclass
+from functools import cached_property
 from pathlib import Path
 
 import numpy as np
@@ -31,7 +32,9 @@ from zarr.codecs import BloscCodec, Crc32cCodec, ZstdCodec
 
 from .._version import __version__
 from . import _checksum, _ids
+from ._errors import ChunkError, StoreError
 from ._ids import DuplicateFinder, StreamedColumn
+from ._location import RemotePath, census, open_group, place, remove_tree
 
 #: Version written by this widescreen: 2 adds per-chunk CRC-32C checksums (see `_checksum`).
 FORMAT_VERSION = 2
@@ -49,14 +52,6 @@ DTYPES = {"dosage": ("int8", "float32"), "continuous": ("float32", "float64")}
 TARGET_CHUNK_BYTES = 16 * 2**20
 #: Above this many samples X is chunked over samples as well.
 MAX_SAMPLES_PER_CHUNK = 65_536
-
-
-class StoreError(ValueError):
-    """A dataset store is missing, incomplete, of an unknown version or damaged."""
-
-
-class ChunkError(StoreError):
-    """A chunk file of X is missing, truncated, moved or cannot be decoded."""
 
 
 class FeatureIdError(StoreError):
@@ -237,10 +232,13 @@ class DatasetWriter:
             raise StoreError(
                 f"a {value_kind} store holds {DTYPES[value_kind]}; got dtype {dtype!r}"
             )
-        self.path = Path(path)
+        self.path = place(path)
+        if isinstance(self.path, RemotePath):
+            self.path.check_writable()
+            self.path.check_bucket()
         if self.path.exists():
             check_new_store(self.path, overwrite)
-            shutil.rmtree(self.path)
+            remove_tree(self.path)
         sample_ids = np.asarray(sample_ids, dtype=str)
         _check_ids(sample_ids, "sample", str(self.path))
         self.n_samples = int(sample_ids.size)
@@ -269,7 +267,7 @@ class DatasetWriter:
         self._pending: list[np.ndarray] = []
         self._pending_cols = 0
 
-        self.group = zarr.open_group(self.path, mode="w")
+        self.group = open_group(self.path, mode="w")
         self._write_attrs(complete=False, n_features=0)
         fill = MISSING_INT8 if self.dtype == np.int8 else np.nan
         self.X = self.group.create_array(
@@ -292,7 +290,13 @@ class DatasetWriter:
         self._ids = StreamedColumn(self.group, "features/id", str, _CHECKED_STRINGS, id_chunk)
         self._chrom = StreamedColumn(self.group, "features/chrom", str, _CHECKED_STRINGS, id_chunk)
         self._pos = StreamedColumn(self.group, "features/pos", "int64", _CHECKED_NUMBERS, id_chunk)
-        self._dups = DuplicateFinder(self.path / ".id-check")
+        # Spilled id hashes: inside a local store, in the temporary folder for one on object storage.
+        spill = (
+            Path(tempfile.gettempdir()) / f"widescreen-id-check-{os.getpid()}-{id(self)}"
+            if isinstance(self.path, RemotePath)
+            else self.path / ".id-check"
+        )
+        self._dups = DuplicateFinder(spill)
 
     def _write_attrs(self, *, complete: bool, n_features: int) -> None:
         attrs = FormatAttributes(
@@ -399,12 +403,16 @@ class DatasetWriter:
     def _record_crcs(self, start: int, stop: int) -> None:
         """Note the CRC each chunk file just written ends with, for the table of positions."""
         rows, cols = self.chunks
-        for c in range(start // cols, -(-stop // cols)):
-            for r in range(-(-self.n_samples // rows)):
-                crc = _checksum.tail(self.path / "X" / "c" / str(r) / str(c))
-                if crc is None:  # pragma: no cover - zarr always writes the codec's four bytes
-                    raise StoreError(f"{self.path}/X: chunk {r}/{c} was not written whole")
-                self._crcs[(r, c)] = crc
+        where = [
+            (r, c)
+            for c in range(start // cols, -(-stop // cols))
+            for r in range(-(-self.n_samples // rows))
+        ]
+        files = [self.path / "X" / "c" / str(r) / str(c) for r, c in where]
+        for (r, c), (_size, crc) in zip(where, census(files), strict=True):
+            if crc is None:  # pragma: no cover - zarr always writes the codec's four bytes
+                raise StoreError(f"{self.path}/X: chunk {r}/{c} was not written whole")
+            self._crcs[(r, c)] = crc
 
     def finalize(self) -> Dataset:
         """Write the remaining columns, the feature ids and annotations, and mark the store complete."""
@@ -454,7 +462,7 @@ class DatasetWriter:
 
     def abort(self) -> None:
         """Remove the partial store."""
-        shutil.rmtree(self.path, ignore_errors=True)
+        remove_tree(self.path)
 
     def __enter__(self) -> DatasetWriter:
         return self
@@ -466,7 +474,7 @@ class DatasetWriter:
 
 def check_new_store(path: str | os.PathLike, overwrite: bool, error=StoreError) -> None:
     """Refuse to write a store over an existing path unless ``overwrite``, naming what is there."""
-    path = Path(path)
+    path = place(path)
     if overwrite or not path.exists():
         return
     if _unfinished_store(path):
@@ -477,7 +485,7 @@ def check_new_store(path: str | os.PathLike, overwrite: bool, error=StoreError) 
     raise error(f"{path}: already exists (choose another path or overwrite)")
 
 
-def _unfinished_store(path: Path) -> bool:
+def _unfinished_store(path: Path | RemotePath) -> bool:
     """Whether ``path`` is a widescreen store whose import never marked it complete."""
     try:
         meta = json.loads((path / "zarr.json").read_text(encoding="utf-8"))
@@ -523,7 +531,7 @@ class Dataset:
     X : zarr.Array of shape (n_samples, n_features)
     """
 
-    path: Path
+    path: Path | RemotePath
     attrs: FormatAttributes
     X: zarr.Array
 
@@ -547,9 +555,10 @@ class Dataset:
     def chunks(self) -> tuple[int, int]:
         return tuple(self.X.chunks)
 
-    @property
+    @cached_property
     def group(self) -> zarr.Group:
-        return zarr.open_group(self.path, mode="r")
+        # Opened once: on object storage each opening costs requests.
+        return open_group(self.path, mode="r")
 
     @property
     def checksummed(self) -> bool:
@@ -680,10 +689,11 @@ class Dataset:
             A chunk file is missing (named with its node; a `ChunkError` for X).
         """
         out = []
+        listed = self.path.sizes([]) if isinstance(self.path, RemotePath) else None
         for name, arr in self._nodes():
             root = self.path / name
             for f in _checksum.chunk_files(root, tuple(arr.shape), tuple(arr.chunks)):
-                if not f.is_file():
+                if not (f.is_file() if listed is None else str(f) in listed):
                     if name == "X":
                         raise ChunkError(
                             f"missing {self._where(f)}: the store is damaged; import it again"
@@ -720,6 +730,10 @@ class Dataset:
         h = hashlib.sha256()
         h.update(json.dumps(self.attrs.to_dict(), sort_keys=True).encode())
         h.update(json.dumps(self.X.metadata.to_dict(), sort_keys=True, default=str).encode())
+        if not self.checksummed and isinstance(self.path, RemotePath):
+            for f, (size, _crc) in zip(files, census([f for _, f in files]), strict=True):
+                h.update(f"{f[1].relative_to(self.path)}:{size}".encode())
+            return h.hexdigest()[:32]
         if not self.checksummed:
             for root in ("X", "samples", "features"):
                 base = self.path / root
@@ -734,12 +748,11 @@ class Dataset:
             raise StoreError(
                 f"{self.path}: missing array {_checksum.TABLE!r} (the chunk checksums)"
             )
-        for name, f in files:
-            crc = _checksum.tail(f)
-            rel = os.path.relpath(f, self.path)
+        for (name, f), (size, crc) in zip(files, census([f for _, f in files]), strict=True):
+            rel = f.relative_to(self.path).as_posix()
             if name == "X":
                 _check_position(self._where(f), f, crc, table)
-            h.update(f"{rel}:{f.stat().st_size}:{crc}".encode())
+            h.update(f"{rel}:{size}:{crc}".encode())
         h.update(table.tobytes())
         return h.hexdigest()[:32]
 
@@ -792,13 +805,15 @@ def open_dataset(path: str | os.PathLike) -> Dataset:
     exists with the right length, and the sample ids (unique, none empty, no tab or newline); a store
     written by another program has its feature ids checked too.
     """
-    path = Path(path)
-    if not path.exists():
-        raise StoreError(f"{path}: no such store")
+    path = place(path)
     if not (path / "zarr.json").is_file():
+        if not path.exists() and isinstance(path, RemotePath):
+            path.check_bucket()
+        if not path.exists():
+            raise StoreError(f"{path}: no such store")
         raise StoreError(f"{path}: not a Zarr v3 group (no zarr.json)")
     try:
-        group = zarr.open_group(path, mode="r")
+        group = open_group(path, mode="r")
         raw = group.attrs.get(ATTRS_KEY)
     except Exception as exc:  # zarr raises several types for a damaged group
         raise StoreError(f"{path}: cannot open as a Zarr group: {exc}") from exc

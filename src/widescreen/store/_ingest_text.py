@@ -61,6 +61,7 @@ from ._ingest_fields import (
     parse_dosages,
     parse_numbers,
 )
+from ._location import is_url
 
 __all__ = ["DELIMITERS", "MISSING_TOKENS", "IngestError", "import_table"]
 
@@ -241,7 +242,9 @@ class _SampleRows:
         self.args = (store, name, value_kind, dtype, chunk_features, overwrite)
         self.dtype = np.dtype(dtype)
         self.progress, self.size = progress, size
-        self.spill = tempfile.TemporaryFile(dir=Path(store).absolute().parent, prefix=".ingest-")
+        # Beside a local store (same disk); in the temporary folder for one on object storage.
+        here = None if is_url(store) else Path(store).absolute().parent
+        self.spill = tempfile.TemporaryFile(dir=here, prefix=".ingest-")
         self.ids: list[np.ndarray] = []
         self.lines: list[np.ndarray] = []
         self.n_values = 0

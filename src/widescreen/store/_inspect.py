@@ -4,11 +4,11 @@ from __future__ import annotations
 
 import os
 from dataclasses import dataclass
-from pathlib import Path
 
 import numpy as np
 
 from ._format import MISSING_INT8, open_dataset
+from ._location import RemotePath
 from ._reader import ChunkLayout, read_block
 
 
@@ -128,7 +128,9 @@ def _codec(meta: dict) -> str:
     return " -> ".join(parts) or "none"
 
 
-def _disk_size(path: Path) -> int:
+def _disk_size(path) -> int:
+    if isinstance(path, RemotePath):  # the sizes of its objects, from one listing
+        return sum(path.sizes([]).values()) if not path.read_only else 0
     total = 0
     for dirpath, _, files in os.walk(path):
         for f in files:

@@ -4,6 +4,11 @@ zarr-python allocates fresh arrays and decodes through several layers for every 
 touches every byte once, that costs more than the arithmetic. For the codec this project writes (Blosc,
 regular chunk grid, default "/" chunk keys on a local folder) the reader decodes each chunk file
 straight into a buffer kept per thread. Any other store goes through zarr's own reader.
+
+On object storage (a store given by URL, see `_location`) the same decoding applies: the row chunks of
+a chunk column are requested together (fsspec's concurrent ``cat``), each object's bytes verified
+(CRC-32C, position) and decoded into the thread's reused buffer; a pass's worker threads keep as many
+requests in flight as there are threads.
 """
 
 from __future__ import annotations
@@ -18,6 +23,7 @@ import numpy as np
 
 from . import _accel, _checksum
 from ._format import MISSING_INT8, ChunkError, Dataset
+from ._location import RemotePath, describe_error
 
 # Decoding runs inside Dask worker threads; Blosc's own thread pool would oversubscribe the cores.
 blosc.use_threads = False
@@ -27,7 +33,7 @@ blosc.use_threads = False
 class ChunkLayout:
     """Where the chunk files of X live and how they decode."""
 
-    root: Path
+    root: Path | RemotePath
     chunk_rows: int
     chunk_cols: int
     n_rows: int
@@ -148,10 +154,17 @@ def read_block(ds: Dataset, col_chunk: int, layout: ChunkLayout | None = None) -
         return block
     # zarr stores edge chunks at the full chunk shape, so every chunk decodes to the same size.
     buf = _scratch((n_row_chunks * layout.chunk_rows, layout.chunk_cols), layout.dtype, "block")
+    paths = [layout.root / "c" / str(r) / str(col_chunk) for r in range(n_row_chunks)]
+    fetched = (
+        _fetch_objects(paths, layout, col_chunk) if isinstance(layout.root, RemotePath) else None
+    )
     for r in range(n_row_chunks):
-        path = layout.root / "c" / str(r) / str(col_chunk)
         rows = slice(r * layout.chunk_rows, (r + 1) * layout.chunk_rows)
-        _decode_chunk(path, buf[rows], layout, r, col_chunk)
+        if fetched is None:
+            _decode_chunk(paths[r], buf[rows], layout, r, col_chunk)
+        else:
+            data = memoryview(fetched[r])
+            _decode_frame(data, len(data), buf[rows], layout, r, col_chunk)
         if layout.dosage:
             _check_dosages(buf[rows], layout, r, col_chunk, r * layout.chunk_rows)
     return buf[: layout.n_rows, : stop - start]
@@ -172,6 +185,20 @@ def _check_dosages(values: np.ndarray, layout: ChunkLayout, r: int, c: int, row0
     )
 
 
+def _fetch_objects(paths: list[RemotePath], layout: ChunkLayout, c: int) -> list[bytes]:
+    """The bytes of each chunk object of a chunk column, requested concurrently."""
+    got = paths[0].cat_many(paths)
+    for r, item in enumerate(got):
+        if isinstance(item, FileNotFoundError):
+            raise ChunkError(f"missing {layout.where(r, c)}: the store is damaged; import it again")
+        if isinstance(item, BaseException):
+            err = describe_error(item, paths[r])
+            if err is not None:  # credentials, bucket, access, network: not damage
+                raise err from None
+            raise ChunkError(f"{layout.where(r, c)} cannot be read: {item}") from None
+    return got
+
+
 def _decode_chunk(path: Path, out: np.ndarray, layout: ChunkLayout, r: int, c: int) -> None:
     where = layout.where(r, c)
     try:
@@ -182,6 +209,14 @@ def _decode_chunk(path: Path, out: np.ndarray, layout: ChunkLayout, r: int, c: i
             got = fh.readinto(raw)
     except FileNotFoundError:
         raise ChunkError(f"missing {where}: the store is damaged; import it again") from None
+    _decode_frame(raw, got, out, layout, r, c)
+
+
+def _decode_frame(
+    raw: memoryview, got: int, out: np.ndarray, layout: ChunkLayout, r: int, c: int
+) -> None:
+    """Verify a chunk's bytes (checksum, position, Blosc header) and decode them into ``out``."""
+    where = layout.where(r, c)
     try:
         # Blosc header: bytes 4-8 hold the decoded size, 12-16 the frame size (little endian).
         if layout.checksummed:
