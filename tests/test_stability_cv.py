@@ -38,6 +38,7 @@ from widescreen.workflow import (
 from widescreen.workflow import r2_score as ws_r2
 from widescreen.workflow._refit import FitSettings
 from widescreen.workflow._subsets import SubsetScreen, screen_responses
+from widescreen.workflow._tables import cv_text
 
 CLI = [sys.executable, "-c", "from widescreen.cli import main; main()"]
 FIT = FitSettings(n_lambda=30)
@@ -214,6 +215,30 @@ def test_one_pass_for_all_halves_gives_the_shortlists_of_one_pass_per_half(monke
             np.testing.assert_array_equal(matrix[0][1][k], lists[0])
         else:
             assert np.intersect1d(matrix[0][1][k], lists[0]).size >= 18
+
+
+def test_subsets_the_family_cannot_fit_are_skipped_and_named():
+    # A covariate set on 3 samples (2 cases, 1 control): a half or training set holding only cases
+    # among them (or none of them) cannot be fitted; it is skipped, and the frequencies are shares
+    # of the other halves.
+    rng = np.random.default_rng(8)
+    X = rng.standard_normal((120, 60))
+    y = (rng.random(120) < 1 / (1 + np.exp(-2 * X[:, 5]))).astype(float)
+    z = np.zeros(120)
+    rare = np.r_[np.flatnonzero(y == 1)[:2], np.flatnonzero(y == 0)[:1]]
+    z[rare] = 1.0
+    problem = Problem.from_arrays(X, y, family="logistic", covariates=z[:, None])
+    stab = _stability(problem, n_pairs=6)
+    assert 0 < len(stab.skipped) < 12 and len(stab.selected_sizes) == 12 - len(stab.skipped)
+    assert all(s.startswith("half-sample 00") for s in stab.skipped)
+    assert stab.frequency_of(np.array([5]))[0] >= 0.5
+    cv = _cv(problem, folds=3)
+    rows = {f["fold"]: f for f in cv.folds}
+    for s in cv.skipped:
+        k = int(s.split()[1].rstrip(":"))
+        assert rows[k]["selected"] is None and np.isnan(rows[k]["auc"])
+    assert len(cv.skipped) == 1 and np.isfinite(cv.summary()["auc"]["mean"])
+    assert "\tNA\tNA\t" in cv_text(cv)  # selected and r2 of the skipped fold
 
 
 def _cv(problem, folds=5, seed=0, settings=FIT):

@@ -302,7 +302,11 @@ CV = TableSpec(
         Column("fold", "int64", "fold number, 1..K"),
         Column("n_train", "int64", "samples the fold's screen and refit saw"),
         Column("n_test", "int64", "held-out samples the model predicted"),
-        Column("selected", "int64", "features in the fold's model"),
+        Column(
+            "selected",
+            "Int64",
+            "features in the fold's model; NA for a fold that could not be screened or refitted",
+        ),
         Column("r2", "float64", "held-out R^2 (linear and model-free families); else NA"),
         Column("auc", "float64", "held-out area under the ROC curve (logistic); else NA"),
         Column(

@@ -25,6 +25,8 @@ from ._metrics import METRICS, held_out_metrics
 from ._problem import Problem, shortlist_size
 from ._resample import cv_folds, strata_of
 from ._subsets import (
+    FIT_ERRORS,
+    Skipped,
     SubsetScreen,
     centre_with,
     fit_subset,
@@ -46,12 +48,15 @@ class CVResult:
     metrics : tuple of str
         The metrics of the family's refit loss (`widescreen.workflow._metrics.METRICS`).
     folds : list of dict
-        Per fold: ``fold`` (1-based), ``n_train``, ``n_test``, ``selected`` (size of its model) and one
-        entry per metric.
+        Per fold: ``fold`` (1-based), ``n_train``, ``n_test``, ``selected`` (size of its model; None
+        for a fold skipped) and one entry per metric.
     shortlist : int
         Shortlist size of each training set.
     seconds : dict
         Wall time of the phases run in this session (screen, read, fit).
+    skipped : list of str
+        Folds that could not be screened or refitted, and why (their metrics are NA and left out
+        of the mean).
     """
 
     n_folds: int
@@ -59,6 +64,7 @@ class CVResult:
     folds: list[dict]
     shortlist: int
     seconds: dict = field(default_factory=dict)
+    skipped: list[str] = field(default_factory=list)
 
     def summary(self) -> dict[str, dict[str, float]]:
         """Per metric: the mean and standard deviation (ddof 1) over the folds, NaN folds left out."""
@@ -86,6 +92,7 @@ class CVResult:
                 for m, s in self.summary().items()
             },
             "seconds": self.seconds,
+            "skipped": self.skipped,
         }
 
     def text(self) -> str:
@@ -164,11 +171,26 @@ def cross_validate(
         )
         for cols, lists in groups:
             for j, top in zip(cols, lists, strict=True):
-                recs[todo[j]]["shortlist"] = [int(v) for v in top]
+                if isinstance(top, Skipped):
+                    recs[todo[j]].update(shortlist=[], error=top.reason)
+                else:
+                    recs[todo[j]]["shortlist"] = [int(v) for v in top]
             if save is not None:
                 save()
         seconds["screen"] = time.perf_counter() - t0
 
+    def row(k: int, selected: int | None, scores: dict) -> dict:
+        return {
+            "fold": k + 1,
+            "n_train": int(train[k].size),
+            "n_test": int(test[k].size),
+            "selected": selected,
+            **{m: _plain(scores.get(m, np.nan)) for m in metrics},
+        }
+
+    for k, r in enumerate(recs):
+        if "error" in r and "row" not in r:
+            r["row"] = row(k, None, {})  # a fold that cannot be screened: no score
     tofit = [k for k, r in enumerate(recs) if "row" not in r]
     if tofit:
         lists = [np.asarray(recs[k]["shortlist"], dtype=np.int64) for k in tofit]
@@ -176,24 +198,25 @@ def cross_validate(
         fit_seconds = 0.0
         tick = refit_progress(where, "cv refits", len(tofit))
         for k, top in zip(tofit, lists, strict=True):
-            fit, s = timed(fit_subset, problem, train[k], top, union, raw, settings, n_candidates)
-            fit_seconds += s
-            model = fit.model
-            cols = np.searchsorted(union, model.index)
-            Z = problem.covariates
-            eta = model.linear_predictor(
-                centre_with(raw[test[k]][:, cols], fit.mean),
-                None if Z is None else Z[test[k]],
-            )
-            resp = problem.response.subset(test[k])
-            scores = held_out_metrics(loss, resp.y, eta, resp.event)
-            recs[k]["row"] = {
-                "fold": k + 1,
-                "n_train": int(train[k].size),
-                "n_test": int(test[k].size),
-                "selected": int(model.index.size),
-                **{m: _plain(scores[m]) for m in metrics},
-            }
+            try:
+                fit, s = timed(
+                    fit_subset, problem, train[k], top, union, raw, settings, n_candidates
+                )
+            except FIT_ERRORS as exc:
+                recs[k]["error"] = f"the refit failed: {exc}"
+                recs[k]["row"] = row(k, None, {})
+            else:
+                fit_seconds += s
+                model = fit.model
+                cols = np.searchsorted(union, model.index)
+                Z = problem.covariates
+                eta = model.linear_predictor(
+                    centre_with(raw[test[k]][:, cols], fit.mean),
+                    None if Z is None else Z[test[k]],
+                )
+                resp = problem.response.subset(test[k])
+                scores = held_out_metrics(loss, resp.y, eta, resp.event)
+                recs[k]["row"] = row(k, int(model.index.size), scores)
             if save is not None:
                 save()
             tick()
@@ -209,6 +232,7 @@ def cross_validate(
         folds=folds,
         shortlist=d,
         seconds={k: round(v, 3) for k, v in seconds.items()},
+        skipped=[f"fold {k + 1}: {r['error']}" for k, r in enumerate(recs) if "error" in r],
     )
 
 

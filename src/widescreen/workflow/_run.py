@@ -152,6 +152,7 @@ def _trust(
         # Phases a resumed session did not rerun keep the timings of the session that ran them.
         stab.seconds = {**(m.get("stability") or {}).get("seconds", {}), **stab.seconds}
         m["stability"] = stab.record(result.problem)
+        _warn(result, m, stab.skipped, "stability selection skipped")
     if config.cv_folds:
         cv = cross_validate(
             where, n_folds=config.cv_folds, state=m.setdefault("cv_state", {}), **common
@@ -159,7 +160,20 @@ def _trust(
         result.extra["cv"] = cv
         cv.seconds = {**(m.get("cv") or {}).get("seconds", {}), **cv.seconds}
         m["cv"] = cv.record()
+        _warn(result, m, cv.skipped, "cross-validation skipped")
     session.save()
+
+
+def _warn(result: IterativeResult, manifest: dict, skipped: list[str], what: str) -> None:
+    """A warning (CLI, manifest, report cautions) for the subsets that could not be analysed."""
+    if skipped:
+        msg = (
+            f"{what} {len(skipped)} subset(s) that could not be analysed: "
+            + "; ".join(skipped[:3])
+            + ("; ..." if len(skipped) > 3 else "")
+        )
+        result.warnings = [*result.warnings, msg]
+        manifest["warnings"] = list(result.warnings)
 
 
 def finish_run(
@@ -176,6 +190,10 @@ def finish_run(
     session.manifest["size_budget"] = result.budget
     session.manifest["selected"] = [str(f) for f in result.feature_ids]
     session.manifest["model"] = model_record(result).to_dict()
+    if config.stability or config.cv_folds:
+        # The model's tables first: should stability selection or cross-validation fail, the
+        # finished run is not lost (they are written again with the frequencies).
+        write_run_tables(session, problem, config, result)
     _trust(result, config, session, scheduler, progress, memory_budget)
     write_run_tables(session, problem, config, result)
 

@@ -34,6 +34,8 @@ import numpy as np
 from ._problem import Problem, shortlist_size
 from ._resample import complementary_pairs, strata_of
 from ._subsets import (
+    FIT_ERRORS,
+    Skipped,
     SubsetScreen,
     fit_subset,
     read_union,
@@ -100,9 +102,12 @@ class StabilityResult:
     shortlist : int
         Shortlist size of each half.
     selected_sizes : list of int
-        Per half, in the order pair 1 a, pair 1 b, pair 2 a, ...
+        Per half analysed, in the order pair 1 a, pair 1 b, pair 2 a, ...
     seconds : dict
         Wall time of the phases run in this session (screen, read, fit).
+    skipped : list of str
+        Halves that could not be screened or refitted, and why; the frequencies are shares of the
+        other halves.
     """
 
     n_pairs: int
@@ -117,6 +122,7 @@ class StabilityResult:
     shortlist: int
     selected_sizes: list[int]
     seconds: dict = field(default_factory=dict)
+    skipped: list[str] = field(default_factory=list)
 
     def frequency_of(self, index: np.ndarray) -> np.ndarray:
         """Selection frequencies of the given store indices (0 for a feature never selected)."""
@@ -140,6 +146,8 @@ class StabilityResult:
             "bound_ss_unimodal": self.bound_ss,
             "stable": [str(f) for f in problem.feature_ids(self.stable)],
             "seconds": self.seconds,
+            "n_halves_used": len(self.selected_sizes),
+            "skipped": self.skipped,
         }
 
 
@@ -205,30 +213,47 @@ def stability_selection(
         )
         for cols, lists in groups:
             for j, top in zip(cols, lists, strict=True):
-                recs[todo[j]]["shortlist"] = [int(v) for v in top]
+                if isinstance(top, Skipped):
+                    recs[todo[j]].update(shortlist=[], error=top.reason)
+                else:
+                    recs[todo[j]]["shortlist"] = [int(v) for v in top]
             if save is not None:
                 save()
         seconds["screen"] = time.perf_counter() - t0
 
-    tofit = [i for i, r in enumerate(recs) if "selected" not in r]
+    tofit = [i for i, r in enumerate(recs) if "selected" not in r and "error" not in r]
     if tofit:
         lists = [np.asarray(recs[i]["shortlist"], dtype=np.int64) for i in tofit]
         (union, raw), seconds["read"] = timed(read_union, problem, lists, where.sub_block)
         fit_seconds = 0.0
         tick = refit_progress(where, "stability refits", len(tofit))
         for i, top in zip(tofit, lists, strict=True):
-            fit, s = timed(fit_subset, problem, halves[i], top, union, raw, settings, n_candidates)
-            fit_seconds += s
-            recs[i]["selected"] = [int(j) for j in fit.model.index]
+            try:
+                fit, s = timed(
+                    fit_subset, problem, halves[i], top, union, raw, settings, n_candidates
+                )
+            except FIT_ERRORS as exc:
+                recs[i]["error"] = f"the refit failed: {exc}"
+            else:
+                fit_seconds += s
+                recs[i]["selected"] = [int(j) for j in fit.model.index]
             if save is not None:
                 save()
             tick()
         seconds["fit"] = fit_seconds
 
-    selected = [np.asarray(r["selected"], dtype=np.int64) for r in recs]
-    every = np.concatenate(selected) if selected else np.empty(0, np.int64)
+    used = [r for r in recs if "error" not in r]
+    skipped = [
+        f"half-sample {names[i].split('_')[1]}: {r['error']}"
+        for i, r in enumerate(recs)
+        if "error" in r
+    ]
+    if not used:
+        raise ValueError(f"stability selection: no half-sample could be analysed ({skipped[0]})")
+    selected = [np.asarray(r["selected"], dtype=np.int64) for r in used]
+    every = np.concatenate(selected)
     index, counts = np.unique(every, return_counts=True)
-    frequency = counts / float(len(halves))
+    frequency = counts / float(len(used))
     stable_mask = frequency >= threshold - 1e-12
     order = np.lexsort((index[stable_mask], -frequency[stable_mask]))
     sizes = [int(s.size) for s in selected]
@@ -247,6 +272,7 @@ def stability_selection(
         shortlist=d,
         selected_sizes=sizes,
         seconds={k: round(v, 3) for k, v in seconds.items()},
+        skipped=skipped,
     )
 
 

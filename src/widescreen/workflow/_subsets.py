@@ -20,6 +20,7 @@ accuracy describe exactly the pipeline that made the model, otherwise its first 
 from __future__ import annotations
 
 import time
+import warnings
 from collections.abc import Callable, Iterator
 from dataclasses import dataclass, replace
 from typing import Any
@@ -83,7 +84,8 @@ def screen_responses(
     Column k of Y is the problem's response on the samples where it is finite (NaN: not in the
     subset); the event indicator and the covariates are the problem's, restricted to those samples.
     Yields (the group's column numbers, their shortlists) after each pass, so the caller can record
-    them (resume). ``label`` names a response-matrix pass in the progress display ("LABEL 1-41 of
+    them (resume); a column the family cannot prepare on its samples yields `Skipped` instead of a
+    shortlist. ``label`` names a response-matrix pass in the progress display ("LABEL 1-41 of
     100"); a single-response pass shows its column's name.
 
     Families with a response-matrix pass (`Family.multi_kernel`: linear, logistic, Poisson) screen
@@ -99,25 +101,48 @@ def screen_responses(
         for a in range(0, K, G):
             cols = list(range(a, min(a + G, K)))
             pass_name = f"{label} {a + 1}-{cols[-1] + 1} of {K}"
-            found = multi_screen(
-                problem,
-                Y[:, cols],
-                shortlist=shortlist,
-                names=[names[k] for k in cols],
-                filters=where.filters,
-                sub_block=where.sub_block,
-                keep_values=False,
-                run=None,  # the subsets' statistics are not kept: only their shortlists
-                name=pass_name,
-                scheduler=where.scheduler,
-                # screen_responses takes the pass's own callable(done, total)
-                progress=None if where.progress is None else where.progress(pass_name),
-                memory_budget=where.memory_budget,
-            )
+            try:
+                found = multi_screen(
+                    problem,
+                    Y[:, cols],
+                    shortlist=shortlist,
+                    names=[names[k] for k in cols],
+                    filters=where.filters,
+                    sub_block=where.sub_block,
+                    keep_values=False,
+                    run=None,  # the subsets' statistics are not kept: only their shortlists
+                    name=pass_name,
+                    scheduler=where.scheduler,
+                    # screen_responses takes the pass's own callable(done, total)
+                    progress=None if where.progress is None else where.progress(pass_name),
+                    memory_budget=where.memory_budget,
+                )
+            except ValueError:
+                # A subset the family cannot prepare (for example covariates that separate a
+                # binary outcome within it): screen the group one subset at a time, so only that
+                # subset is skipped.
+                for k in cols:
+                    yield from _single_passes(where, Y, [k], shortlist, names)
+                continue
             yield cols, [np.asarray(r.index, dtype=np.int64) for r in found]
         return
+    yield from _single_passes(where, Y, list(range(K)), shortlist, names)
+
+
+@dataclass(frozen=True)
+class Skipped:
+    """A subset that could not be screened or refitted, and why (the family's message)."""
+
+    reason: str
+
+
+def _single_passes(
+    where: SubsetScreen, Y: np.ndarray, cols: list[int], shortlist: int, names: list[str]
+) -> Iterator[tuple[list[int], list[np.ndarray | Skipped]]]:
+    """One single-response pass per column of Y in ``cols``; a column the family cannot prepare is
+    `Skipped`."""
     ctx = PassContext(
-        problem,
+        where.problem,
         filters=where.filters,
         sub_block=where.sub_block,
         run=None,
@@ -125,9 +150,14 @@ def screen_responses(
         progress=where.progress,
         memory_budget=where.memory_budget,
     )
-    for k, name in enumerate(names):
+    for k in cols:
         sel = np.flatnonzero(np.isfinite(Y[:, k]))
-        result = ctx.run_spec(ctx.spec(name, keep=shortlist, sel=sel, keep_values=False))
+        try:
+            spec = ctx.spec(names[k], keep=shortlist, sel=sel, keep_values=False)
+        except ValueError as exc:
+            yield [k], [Skipped(str(exc))]
+            continue
+        result = ctx.run_spec(spec)
         yield [k], [np.asarray(result.topk.index[:shortlist], dtype=np.int64)]
 
 
@@ -204,8 +234,16 @@ def fit_subset(
     idx = np.sort(np.asarray(shortlist, dtype=np.int64))
     pos = np.searchsorted(union, idx)
     values, mean = impute_centre(raw[:, pos], sel)
-    model = fit_union(subproblem(problem, sel), idx, values, settings, n_candidates)
+    with warnings.catch_warnings():
+        # An ill-conditioned refit on one subset of many is not news (the subset's model says
+        # what it found); the warning would repeat for every subset.
+        warnings.filterwarnings("ignore", message="An ill-conditioned matrix")
+        model = fit_union(subproblem(problem, sel), idx, values, settings, n_candidates)
     return SubsetFit(model=model, mean=mean[np.searchsorted(idx, model.index)])
+
+
+#: What a refit on a subset may raise when the subset cannot be fitted (the subset is then skipped).
+FIT_ERRORS = (ValueError, np.linalg.LinAlgError, FloatingPointError)
 
 
 def read_union(problem: Problem, shortlists: list[np.ndarray], sub_block: int):
@@ -241,7 +279,9 @@ def timed(fn, *args, **kwargs):
 
 
 __all__ = [
+    "FIT_ERRORS",
     "STATS_BUDGET",
+    "Skipped",
     "SubsetFit",
     "SubsetScreen",
     "centre_with",
