@@ -15,6 +15,8 @@ peak memory (``ru_maxrss``) belongs to that measurement alone:
   unless ``--screen-float``);
 * ``floor``: every chunk file of the store read into a preallocated buffer and Blosc-decoded into another,
   no arithmetic, on the same number of threads;
+* ``arithmetic``: the pass's arithmetic alone (block summaries, kernel, top k) on blocks already read,
+  timed by each thread's CPU clock; its "seconds" are that CPU time over the threads;
 * ``in-memory``: ``np.load`` of the float32 .npy, then blockwise Pearson correlation with the response
   (float64 per block, multithreaded BLAS).
 
@@ -266,6 +268,54 @@ def measure_floor(workdir: Path, kind: str, threads: int) -> dict:
     }
 
 
+def measure_arithmetic(workdir: Path, kind: str, threads: int, sub_block: int) -> dict:
+    """The pass's arithmetic alone: every block read and decoded first (untimed), then the block
+    summaries, the kernel, the filters and the top k of its sub-blocks timed by each thread's CPU
+    clock (the floor of the arithmetic: what the pass costs beyond the codec floor at best)."""
+    from concurrent.futures import ThreadPoolExecutor
+
+    from widescreen.engine import StoreSource
+    from widescreen.engine._topk import block_topk, merge_all
+    from widescreen.families import Response, get_family
+    from widescreen.store import open_dataset, prepare_block
+    from widescreen.workflow import shortlist_size
+
+    ds = open_dataset(workdir / f"{kind}.store")
+    source = StoreSource(ds)
+    fam = get_family("linear")
+    state = fam.prepare(Response(y=np.load(workdir / "y.npy")), None)
+    keep = shortlist_size("auto", ds.n_samples, ds.n_features)
+    rss0 = _maxrss_mib()
+
+    def work(part: range) -> float:
+        spent = 0.0
+        for i in part:
+            raw = source.read(i)
+            start, stop = source.bounds(i)
+            t = time.thread_time()
+            best = None
+            for a in range(0, stop - start, sub_block):
+                block = prepare_block(raw[:, a : a + sub_block], start + a)
+                out = fam.kernel(block, state)
+                score = np.where(block.constant, 0.0, out["score"])
+                floor = -np.inf if best is None else best.kth
+                part_k = block_topk(keep, start + a, score, None, ~block.constant, None, floor)
+                best = part_k if best is None else merge_all([best, part_k], keep)
+            spent += time.thread_time() - t
+        return spent
+
+    t0 = time.perf_counter()
+    with ThreadPoolExecutor(threads) as pool:
+        cpu = sum(pool.map(work, [range(j, source.n_blocks, threads) for j in range(threads)]))
+    return {
+        "seconds": cpu / threads,
+        "cpu_seconds": cpu,
+        "wall_with_reads": time.perf_counter() - t0,
+        "rss_mib": _maxrss_mib(),
+        "rss_before_mib": rss0,
+    }
+
+
 def measure_in_memory(workdir: Path, threads: int, width: int = 4096) -> dict:
     """np.load of the float32 matrix, then Pearson correlation block by block in float64."""
     from threadpoolctl import threadpool_limits
@@ -307,6 +357,8 @@ def _child(args: argparse.Namespace) -> None:
         out = measure_screen(workdir, kind, args.threads, args.sub_block)
     elif what == "floor":
         out = measure_floor(workdir, kind, args.threads)
+    elif what == "arith":
+        out = measure_arithmetic(workdir, kind, args.threads, args.sub_block)
     elif what == "memory":
         out = measure_in_memory(workdir, args.threads)
     else:
@@ -379,6 +431,7 @@ def main(argv: list[str] | None = None) -> None:
         if kind == "int8":
             rows.append((f"{kind} screen (run folder)", best(f"screen:{kind}"), floor))
         rows.append((f"{kind} codec floor", floor, floor))
+        rows.append((f"{kind} arithmetic alone (CPU / threads)", best(f"arith:{kind}"), floor))
     if not args.int8_only:
         mem = best("memory:float32")
         rows.append(("float32 in-memory (np.load + Pearson)", mem, None))
