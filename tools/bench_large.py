@@ -12,6 +12,8 @@ Two cases, each store built and each screen run in a fresh subprocess so that it
     p = 200,000 int8 at n = 10,000 and n = 50,000 (``--samples``), ``screen`` with
     ``--budget`` (default 2 GiB): time against n x p, peak RSS against the budget.
 
+``--repeat R`` runs each screen R times (the fastest counts, the largest peak); each screen child
+first runs `bench_scale.py`'s warm-up, so its CPU time (user + system, all threads) is the screen's own.
 Stores live under ``--workdir`` and are deleted after each size unless ``--keep`` (check ``df -h``
 first: about 0.3 bytes per value on disk, ~1.5 GB at 500 x 10^7 and ~3 GB at 50,000 x 200,000).
 Run with ``nice -n 10`` on a shared machine::
@@ -44,13 +46,21 @@ print(json.dumps({"seconds": time.perf_counter() - t0,
 
 SCREEN_CHILD = r"""
 import json, resource, sys, time
+sys.path.insert(0, sys.argv[5])
+from bench_scale import WARM_UP
+exec(WARM_UP)  # imports and compiled loops first, so the CPU time below is the screen's own
 from widescreen.workflow import ScreenConfig, screen
 store, outcome, out, budget = sys.argv[1:5]
+def cpu():
+    u = resource.getrusage(resource.RUSAGE_SELF)
+    return u.ru_utime + u.ru_stime
+c0 = cpu()
 t0 = time.perf_counter()
 res = screen(store, outcome, ScreenConfig(response="y", shortlist="auto"), out,
              memory_budget=None if budget == "none" else budget)
 t1 = time.perf_counter()
 print(json.dumps({"seconds": t1 - t0, "pass_seconds": res.pass_result.summary()["seconds"],
+                  "cpu_seconds": cpu() - c0,
                   "summary": res.pass_result.summary(),
                   "maxrss": resource.getrusage(resource.RUSAGE_SELF).ru_maxrss * 1024}))
 """
@@ -65,14 +75,19 @@ def _child(script: str, *args: str) -> dict:
     return json.loads(proc.stdout.strip().splitlines()[-1])
 
 
-def measure(workdir: Path, n: int, p: int, budget: str, keep: bool) -> dict:
+def measure(workdir: Path, n: int, p: int, budget: str, keep: bool, repeat: int = 1) -> dict:
     store = workdir / f"dosage-{n}x{p}.zarr"
     outcome = store.with_name(store.name + ".outcome.tsv")
     tools = str(Path(__file__).resolve().parent)
     build = _child(BUILD_CHILD, str(store), str(n), str(p), tools)
     out = workdir / f"run-{n}x{p}"
     shutil.rmtree(out, ignore_errors=True)
-    rec = _child(SCREEN_CHILD, str(store), str(outcome), str(out), budget)
+    recs = []
+    for _ in range(max(1, repeat)):  # the fastest run, the largest peak (a shared machine)
+        shutil.rmtree(out, ignore_errors=True)
+        recs.append(_child(SCREEN_CHILD, str(store), str(outcome), str(out), budget, tools))
+    rec = min(recs, key=lambda r: r["pass_seconds"])
+    rec["maxrss"] = max(r["maxrss"] for r in recs)
     disk = sum(f.stat().st_size for f in store.rglob("*") if f.is_file())
     if not keep:
         shutil.rmtree(store, ignore_errors=True)
@@ -86,6 +101,7 @@ def measure(workdir: Path, n: int, p: int, budget: str, keep: bool) -> dict:
         "build_maxrss": build["maxrss"],
         "screen_seconds": rec["seconds"],
         "pass_seconds": rec["pass_seconds"],
+        "screen_cpu": min(r["cpu_seconds"] for r in recs),
         "screen_maxrss": rec["maxrss"],
         "blocks": rec["summary"].get("blocks_computed"),
         "sub_block": rec["summary"].get("sub_block"),
@@ -95,7 +111,8 @@ def measure(workdir: Path, n: int, p: int, budget: str, keep: bool) -> dict:
         f"{row['build_maxrss'] / 2**20:.0f} MiB, {disk / 1e9:.2f} GB on disk); screen "
         f"{row['screen_seconds']:.1f} s, pass {row['pass_seconds']:.1f} s "
         f"({row['pass_seconds'] / p * 1e6:.2f} us/feature, "
-        f"{row['pass_seconds'] / (n * p) * 1e9:.3f} ns/value), peak RSS "
+        f"{row['pass_seconds'] / (n * p) * 1e9:.3f} ns/value; screen CPU {row['screen_cpu']:.1f} s, "
+        f"{row['screen_cpu'] / (n * p) * 1e9:.3f} CPU ns/value), peak RSS "
         f"{row['screen_maxrss'] / 2**20:.0f} MiB",
         flush=True,
     )
@@ -110,6 +127,7 @@ def main(argv: list[str] | None = None) -> None:
     ap.add_argument("--features", default=None, help="Comma list (wide: 1e6,1e7; tall: 200000).")
     ap.add_argument("--budget", default=None, help="Memory budget of the screen (tall: 2GiB).")
     ap.add_argument("--keep", action="store_true", help="Keep the stores and run folders.")
+    ap.add_argument("--repeat", type=int, default=1, help="Screens per size; the fastest counts.")
     ap.add_argument("--json", type=Path, default=None)
     args = ap.parse_args(argv)
     wide = args.case == "wide"
@@ -126,18 +144,22 @@ def main(argv: list[str] | None = None) -> None:
         f"{os.getloadavg()[0]:.1f}, budget {budget}, {time.strftime('%H:%M:%S')}",
         flush=True,
     )
-    rows = [measure(args.workdir, n, p, budget, args.keep) for n in samples for p in features]
+    rows = [
+        measure(args.workdir, n, p, budget, args.keep, args.repeat)
+        for n in samples
+        for p in features
+    ]
     print(
         "\n| n | p | build s | build peak RSS MiB | screen s | pass s | us/feature | ns/value "
-        "| screen peak RSS MiB |"
+        "| screen CPU s | screen peak RSS MiB |"
     )
-    print("|---:|---:|---:|---:|---:|---:|---:|---:|---:|")
+    print("|---:|---:|---:|---:|---:|---:|---:|---:|---:|---:|")
     for r in rows:
         print(
             f"| {r['n']:,} | {r['p']:,} | {r['build_seconds']:.1f} | "
             f"{r['build_maxrss'] / 2**20:.0f} | {r['screen_seconds']:.1f} | "
             f"{r['pass_seconds']:.1f} | {r['pass_seconds'] / r['p'] * 1e6:.2f} | "
-            f"{r['pass_seconds'] / (r['n'] * r['p']) * 1e9:.3f} | "
+            f"{r['pass_seconds'] / (r['n'] * r['p']) * 1e9:.3f} | {r['screen_cpu']:.1f} | "
             f"{r['screen_maxrss'] / 2**20:.0f} |"
         )
     if args.json:
