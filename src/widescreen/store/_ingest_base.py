@@ -77,7 +77,10 @@ class LineLog:
 
     def __init__(self, near: str | os.PathLike) -> None:
         folder = os.path.dirname(os.path.abspath(os.fspath(near))) or "."
-        self.file = tempfile.TemporaryFile(dir=folder, prefix=".ingest-lines-")
+        # Beside the store when it is a local folder; a store URL (object storage) has no local
+        # folder, so the system's temporary directory then.
+        local = "://" not in os.fspath(near) and os.path.isdir(folder)
+        self.file = tempfile.TemporaryFile(dir=folder if local else None, prefix=".ingest-lines-")
         self.n = 0
 
     def add(self, labels) -> None:
