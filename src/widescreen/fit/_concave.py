@@ -88,6 +88,11 @@ def kkt_violation(
 #: Newton steps legitimately take longer to settle.
 _IRLS_PATIENCE = 25
 
+#: Consecutive working problems of a GLM point that end unconverged (all ``max_iter`` sweeps spent)
+#: before the point is taken as not settling: each costs the whole sweep budget, and on the bench path
+#: a point that did so was always one the path then dropped.
+_STUCK_SOLVES = 2
+
 #: Coordinate descent sweeps between attempts of the Newton polish.
 _BURST = 5
 #: Polish attempts per solve: where a pattern's quadratic is not convex (a GLM's small working weights
@@ -287,13 +292,19 @@ def concave_path(
         stop = False
         obj = st.objective(pen, st.beta, st.eta, level)
         settled = False
+        stuck = 0
         for _ in range(1 if loss.quadratic else outer_max):
             if not loss.quadratic:
                 z, w = loss.working(problem.y, st.eta)
             beta_old = st.beta.copy()
-            _solve_working(st, z, w, active, level, kind, conc, opts)
+            solved = _solve_working(st, z, w, active, level, kind, conc, opts)
             if loss.quadratic:
                 settled = True
+                break
+            stuck = 0 if solved else stuck + 1
+            if loss.name in ("binomial", "poisson") and stuck >= _STUCK_SOLVES:
+                # Working problems that exhaust their sweeps one after another: the coefficients
+                # are drifting along a flat direction (a point running away), as `_IRLS_PATIENCE`.
                 break
             st.eta = st.linear_predictor(st.beta)  # exact, free of the sweeps' rounding
             new_obj = st.objective(pen, st.beta, st.eta, level)

@@ -260,7 +260,8 @@ def path_on_problem(
         return _path(problem, pen, n_lambda, lambda_min_ratio, lambdas, opts)
 
 
-def _blas_limit(opts: SolverOptions):
+def blas_limit(opts: SolverOptions):
+    """The BLAS thread limit of ``opts`` as a context (no change when it is None)."""
     if opts.blas_threads is None:
         return contextlib.nullcontext()
     return threadpool_limits(limits=opts.blas_threads, user_api="blas")
@@ -301,13 +302,13 @@ def _path(problem, pen, n_lambda, lambda_min_ratio, lambdas, opts) -> PathResult
             B[i] = dantzig_selector(wp0, level, eligible)
         G = wp0.unpenalized(B.T).T
     elif pen.concave and opts.concave_solver == "cd":
-        with _blas_limit(opts):
+        with blas_limit(opts):
             B, G, conv = concave_path(problem, pen, lam, eta0, opts)
         L = B.shape[0]
         lam = lam[:L]
     else:
         b, eta, wp = np.zeros(d), eta0, wp0
-        with _blas_limit(opts):
+        with blas_limit(opts):
             for i, level in enumerate(lam):
                 b, g, eta, wp, conv[i] = _solve_lambda(problem, pen, wp, b, eta, level, v, opts)
                 B[i], G[i] = b, g
