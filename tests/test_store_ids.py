@@ -200,3 +200,21 @@ def test_npy_feature_ids_file_streamed(tmp_path, monkeypatch):
     # Default ids f1..fp made block by block.
     ds = import_npy(tmp_path / "x.npy", tmp_path / "d.zarr", chunk_features=3)
     np.testing.assert_array_equal(ds.feature_ids(), [f"f{j}" for j in range(1, 11)])
+
+
+def test_ids_of_a_store_written_elsewhere_checked_chunk_by_chunk(tmp_path, monkeypatch):
+    from widescreen.store import StoreError, open_dataset
+
+    monkeypatch.setattr(ids_mod, "SPILL_RECORDS", 3)
+    w = DatasetWriter(tmp_path / "o.zarr", ["a", "b"], "dosage", "int8", id_chunk=4)
+    w.append(np.zeros((2, 10), np.int8), [f"f{j}" for j in range(10)])
+    w.finalize()
+    g = zarr.open_group(tmp_path / "o.zarr", mode="r+")
+    attrs = dict(g.attrs["widescreen"])
+    g.attrs["widescreen"] = {**attrs, "creator": "another writer"}
+    assert open_dataset(tmp_path / "o.zarr").n_features == 10
+    g["features/id"][8] = "f1"  # a duplicate two id chunks away from its first occurrence
+    with pytest.raises(
+        StoreError, match=r"features/id: duplicate feature id 'f1' at positions 2 and 9"
+    ):
+        open_dataset(tmp_path / "o.zarr")

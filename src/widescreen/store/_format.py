@@ -860,8 +860,24 @@ def open_dataset(path: str | os.PathLike) -> Dataset:
     _check_ids(sids, "sample", f"{path}/samples/id")
     if not attrs.creator.startswith("widescreen"):
         # Written elsewhere: its ids never went through our import checks.
-        _check_ids(ds.feature_ids(), "feature", f"{path}/features/id")
+        _check_feature_ids_streamed(ds, f"{path}/features/id")
     return ds
+
+
+def _check_feature_ids_streamed(ds: Dataset, where: str) -> None:
+    """`_check_ids` for a store's feature ids, one id chunk at a time (memory flat in p)."""
+    step = int(ds.group["features/id"].chunks[0]) or 1
+    folder = Path(tempfile.gettempdir()) / f"widescreen-id-check-{os.getpid()}-{id(ds)}"
+    dups = DuplicateFinder(folder)
+    try:
+        for start in range(0, ds.n_features, step):
+            dups.add(ds.feature_ids(start, min(start + step, ds.n_features)))  # empty, unsafe
+        found = dups.find(ds.feature_ids_at)
+    finally:
+        dups.close()
+    if found is not None:
+        v, a, b = found
+        raise StoreError(f"{where}: duplicate feature id {v!r} at positions {a + 1} and {b + 1}")
 
 
 def _check_kind(path: Path, attrs: FormatAttributes, X) -> None:
