@@ -1,6 +1,6 @@
 """Stores on object storage, and a real Dask cluster, against servers started here on localhost.
 
-An S3-compatible server (moto's server mode) runs as a subprocess for the session; the endpoint and
+An S3-compatible server (moto's server mode) runs as a subprocess for this module; the endpoint and
 dummy credentials reach the storage library through its usual environment variables
 (``AWS_ENDPOINT_URL``, ``AWS_ACCESS_KEY_ID``, ...), as a user's would. A Dask scheduler and two
 single-threaded workers run as separate processes (the ``dask scheduler`` / ``dask worker``
@@ -55,7 +55,7 @@ def _stop(proc: subprocess.Popen) -> None:
             proc.wait()
 
 
-@pytest.fixture(scope="session")
+@pytest.fixture(scope="module")
 def s3_server(tmp_path_factory):
     """A moto S3 server on a free port; its endpoint and dummy credentials in the environment."""
     port = _free_port()
@@ -101,7 +101,7 @@ def s3_server(tmp_path_factory):
                 os.environ[k] = v
 
 
-@pytest.fixture(scope="session")
+@pytest.fixture(scope="module")
 def study(s3_server, tmp_path_factory):
     """A simulated dosage study on local disk, imported into the bucket through the CLI, and the
     threaded runs on the local store (the references)."""
@@ -286,11 +286,15 @@ def test_run_folder_url_is_refused(study):
 # a Dask cluster of separate processes, reading the store from the S3 server
 
 
-@pytest.fixture(scope="session")
+@pytest.fixture(scope="module")
 def cluster(s3_server, tmp_path_factory):
     """``dask scheduler`` and two ``dask worker`` processes (one thread each, no nanny, so killing
     a worker's process kills the worker)."""
-    dask_cli = shutil.which("dask") or pytest.skip("the dask command is not installed")
+    # the command of the environment running the tests (a virtual environment need not be on PATH)
+    beside = Path(sys.executable).with_name("dask")
+    dask_cli = str(beside) if beside.exists() else shutil.which("dask")
+    if dask_cli is None:
+        pytest.skip("the dask command is not installed")
     logs = tmp_path_factory.mktemp("cluster")
     port = _free_port()
     address = f"tcp://127.0.0.1:{port}"
