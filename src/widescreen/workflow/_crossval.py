@@ -16,7 +16,6 @@ at all (the selection bias of Ambroise & McLachlan 2002, PNAS 99:6562).
 
 from __future__ import annotations
 
-import time
 from dataclasses import dataclass, field
 
 import numpy as np
@@ -26,14 +25,12 @@ from ._problem import Problem, shortlist_size
 from ._resample import cv_folds, strata_of
 from ._subsets import (
     FIT_ERRORS,
-    Skipped,
     SubsetScreen,
     centre_with,
     fit_subset,
     read_union,
     refit_progress,
-    response_matrix,
-    screen_responses,
+    screen_subsets,
     timed,
 )
 
@@ -156,28 +153,17 @@ def cross_validate(
     state.update(folds=recs, shortlist=d)
     seconds: dict[str, float] = {}
 
-    todo = [k for k, r in enumerate(recs) if "shortlist" not in r]
-    if todo:
-        masks = np.zeros((n, len(todo)), dtype=bool)
-        for j, k in enumerate(todo):
-            masks[train[k], j] = True
-        t0 = time.perf_counter()
-        groups = screen_responses(
-            where,
-            response_matrix(problem, masks),
-            shortlist=d,
-            names=[f"cv_fold{k + 1}" for k in todo],
-            label="cv training folds",
-        )
-        for cols, lists in groups:
-            for j, top in zip(cols, lists, strict=True):
-                if isinstance(top, Skipped):
-                    recs[todo[j]].update(shortlist=[], error=top.reason)
-                else:
-                    recs[todo[j]]["shortlist"] = [int(v) for v in top]
-            if save is not None:
-                save()
-        seconds["screen"] = time.perf_counter() - t0
+    spent = screen_subsets(
+        where,
+        train,
+        recs,
+        shortlist=d,
+        names=[f"cv_fold{k + 1}" for k in range(n_folds)],
+        label="cv training folds",
+        save=save,
+    )
+    if spent is not None:
+        seconds["screen"] = spent
 
     def row(k: int, selected: int | None, scores: dict) -> dict:
         return {

@@ -26,7 +26,6 @@ refit on n/2 samples), which is why q is measured on the halves.
 
 from __future__ import annotations
 
-import time
 from dataclasses import dataclass, field
 
 import numpy as np
@@ -35,13 +34,11 @@ from ._problem import Problem, shortlist_size
 from ._resample import complementary_pairs, strata_of
 from ._subsets import (
     FIT_ERRORS,
-    Skipped,
     SubsetScreen,
     fit_subset,
     read_union,
     refit_progress,
-    response_matrix,
-    screen_responses,
+    screen_subsets,
     timed,
 )
 
@@ -198,28 +195,11 @@ def stability_selection(
     state.update(halves=recs, shortlist=d)
     seconds: dict[str, float] = {}
 
-    todo = [i for i, r in enumerate(recs) if "shortlist" not in r]
-    if todo:
-        masks = np.zeros((n, len(todo)), dtype=bool)
-        for j, i in enumerate(todo):
-            masks[halves[i], j] = True
-        t0 = time.perf_counter()
-        groups = screen_responses(
-            where,
-            response_matrix(problem, masks),
-            shortlist=d,
-            names=[names[i] for i in todo],
-            label="stability halves",
-        )
-        for cols, lists in groups:
-            for j, top in zip(cols, lists, strict=True):
-                if isinstance(top, Skipped):
-                    recs[todo[j]].update(shortlist=[], error=top.reason)
-                else:
-                    recs[todo[j]]["shortlist"] = [int(v) for v in top]
-            if save is not None:
-                save()
-        seconds["screen"] = time.perf_counter() - t0
+    spent = screen_subsets(
+        where, halves, recs, shortlist=d, names=names, label="stability halves", save=save
+    )
+    if spent is not None:
+        seconds["screen"] = spent
 
     tofit = [i for i, r in enumerate(recs) if "selected" not in r and "error" not in r]
     if tofit:

@@ -271,6 +271,49 @@ def refit_progress(where: SubsetScreen, label: str, total: int) -> Callable[[], 
     return tick
 
 
+def screen_subsets(
+    where: SubsetScreen,
+    samples: list[np.ndarray],
+    recs: list[dict],
+    *,
+    shortlist: int,
+    names: list[str],
+    label: str,
+    save: Callable[[], None] | None = None,
+) -> float | None:
+    """Screen every subset whose record holds no ``shortlist`` yet; record each one's top list.
+
+    ``samples[i]`` are the analysed-sample positions of subset ``i`` and ``recs[i]`` its manifest
+    record, updated in place: ``shortlist`` (store indices, strongest first), or an empty one and an
+    ``error`` for a subset the family cannot screen. The subsets share response-matrix passes
+    (`screen_responses`); ``save`` is called after each group, so a resumed run redoes only the groups
+    it had not finished. Returns the seconds spent, or None when nothing was left to screen.
+    """
+    todo = [i for i, r in enumerate(recs) if "shortlist" not in r]
+    if not todo:
+        return None
+    masks = np.zeros((where.problem.n, len(todo)), dtype=bool)
+    for j, i in enumerate(todo):
+        masks[samples[i], j] = True
+    t0 = time.perf_counter()
+    groups = screen_responses(
+        where,
+        response_matrix(where.problem, masks),
+        shortlist=shortlist,
+        names=[names[i] for i in todo],
+        label=label,
+    )
+    for cols, lists in groups:
+        for j, top in zip(cols, lists, strict=True):
+            if isinstance(top, Skipped):
+                recs[todo[j]].update(shortlist=[], error=top.reason)
+            else:
+                recs[todo[j]]["shortlist"] = [int(v) for v in top]
+        if save is not None:
+            save()
+    return time.perf_counter() - t0
+
+
 def timed(fn, *args, **kwargs):
     """fn(*args, **kwargs) and its wall time in seconds."""
     t0 = time.perf_counter()
@@ -292,6 +335,7 @@ __all__ = [
     "refit_progress",
     "response_matrix",
     "screen_responses",
+    "screen_subsets",
     "subproblem",
     "timed",
 ]
