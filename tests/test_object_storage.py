@@ -273,6 +273,36 @@ def test_missing_credentials_and_bucket_are_one_line(study, monkeypatch):
         open_dataset(f"s3://key:secret@{BUCKET}/geno.zarr")
 
 
+def test_store_over_https_read_only(study):
+    """A store served by a plain HTTP server (no listing, no ranges) reads as the same dataset."""
+    import functools
+    import threading
+    from http.server import SimpleHTTPRequestHandler, ThreadingHTTPServer
+
+    from widescreen.store import read_block
+
+    root = study["sim"].dataset.path
+
+    class Quiet(SimpleHTTPRequestHandler):
+        def log_message(self, *args):
+            pass
+
+    handler = functools.partial(Quiet, directory=str(root.parent))
+    server = ThreadingHTTPServer(("127.0.0.1", 0), handler)
+    threading.Thread(target=server.serve_forever, daemon=True).start()
+    try:
+        url = f"http://127.0.0.1:{server.server_address[1]}/{root.name}"
+        ds = open_dataset(url)
+        assert ds.fingerprint() == study["sim"].dataset.fingerprint()
+        np.testing.assert_array_equal(read_block(ds, 3), study["X"][:, 48:64])
+        res = runner.invoke(app, ["import", str(study["root"] / "geno.csv"), url + "2"])
+        assert res.exit_code != 0
+        assert "http:// is read-only; stores can only be read there" in res.output
+    finally:
+        server.shutdown()
+        server.server_close()
+
+
 def test_run_folder_url_is_refused(study):
     res = runner.invoke(
         app,

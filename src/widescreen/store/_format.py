@@ -689,20 +689,26 @@ class Dataset:
             A chunk file is missing (named with its node; a `ChunkError` for X).
         """
         out = []
-        listed = self.path.sizes([]) if isinstance(self.path, RemotePath) else None
-        for name, arr in self._nodes():
-            root = self.path / name
-            for f in _checksum.chunk_files(root, tuple(arr.shape), tuple(arr.chunks)):
-                if not (f.is_file() if listed is None else str(f) in listed):
-                    if name == "X":
-                        raise ChunkError(
-                            f"missing {self._where(f)}: the store is damaged; import it again"
-                        )
-                    rel = "/".join(f.relative_to(root / "c").parts)
-                    raise StoreError(
-                        f"missing chunk {rel} of {root}: the store is damaged; import it again"
+        every = [
+            (name, f)
+            for name, arr in self._nodes()
+            for f in _checksum.chunk_files(self.path / name, tuple(arr.shape), tuple(arr.chunks))
+        ]
+        # On object storage: the sizes of the objects that exist (one listing where the storage lists)
+        remote = isinstance(self.path, RemotePath)
+        listed = self.path.sizes([f for _, f in every]) if remote else None
+        for name, f in every:
+            if not (f.is_file() if listed is None else str(f) in listed):
+                if name == "X":
+                    raise ChunkError(
+                        f"missing {self._where(f)}: the store is damaged; import it again"
                     )
-                out.append((name, f))
+                root = self.path / name
+                rel = "/".join(f.relative_to(root / "c").parts)
+                raise StoreError(
+                    f"missing chunk {rel} of {root}: the store is damaged; import it again"
+                )
+            out.append((name, f))
         return out
 
     def _where(self, f: Path) -> str:
