@@ -97,14 +97,16 @@ def process_multi_block(source: BlockSource, spec: PassSpec, i: int, out_dir: st
 
 def write_multi_marker(out_dir: str | Path, record: dict) -> None:
     top: MultiTopK = record["topk"]
+    lengths = (top.index >= 0).sum(axis=1)
     marker = {
         "block": record["block"],
         "start": record["start"],
         "stop": record["stop"],
         "n_responses": int(top.n_responses),
-        "index": top.index.tolist(),
-        # repr of floats round-trips exactly (-inf pads a short list), so a resumed merge is identical
-        "score": [[float(s) if np.isfinite(s) else None for s in row] for row in top.score],
+        # Each response's list without its padding; repr of floats round-trips exactly, so a resumed
+        # merge is identical.
+        "index": [row[:c].tolist() for row, c in zip(top.index, lengths, strict=True)],
+        "score": [row[:c].tolist() for row, c in zip(top.score, lengths, strict=True)],
         "n_filtered": [int(v) for v in record["n_filtered"]],
         "n_constant": [int(v) for v in record["n_constant"]],
         "n_degenerate": [int(v) for v in record["n_degenerate"]],
@@ -126,11 +128,14 @@ def read_multi_marker(
         m = json.loads(layout.marker(block).read_text())
         if (int(m["start"]), int(m["stop"])) != tuple(bounds) or int(m["n_responses"]) != K:
             return None
-        index = np.asarray(m["index"], dtype=np.int64).reshape(K, k)
-        score = np.array(
-            [[-np.inf if s is None else s for s in row] for row in m["score"]], dtype=np.float64
-        ).reshape(K, k)
-        top = MultiTopK(k=k, index=index, score=score)
+        top = MultiTopK.empty(k, K)
+        if len(m["index"]) != K or len(m["score"]) != K:
+            return None
+        for r, (ix, sc) in enumerate(zip(m["index"], m["score"], strict=True)):
+            if len(ix) != len(sc) or len(ix) > k:
+                return None
+            top.index[r, : len(ix)] = ix
+            top.score[r, : len(sc)] = sc
         n_degenerate = np.asarray(m["n_degenerate"], dtype=np.int64).reshape(K)
         n_nonfinite = np.asarray(m["n_nonfinite"], dtype=np.int64).reshape(K)
         n_filtered = np.asarray(m["n_filtered"], dtype=np.int64).reshape(K)

@@ -125,11 +125,19 @@ class MultiLinearState:
     df: np.ndarray
     lhs_t: np.ndarray = field(default=None, repr=False, compare=False)  # type: ignore[assignment]
 
+    #: ``[r, basis]`` transposed: the float64 rows of the int8 route (`_int8_mask_sums` does the masks).
+    resp_t: np.ndarray = field(default=None, repr=False, compare=False)  # type: ignore[assignment]
+    #: The masks as float32 (G, n), for their exact integer sums over int8 blocks.
+    masks32: np.ndarray = field(default=None, repr=False, compare=False)  # type: ignore[assignment]
+
     def __post_init__(self) -> None:
         if self.lhs_t is None:
             G, n, q = self.basis.shape
             parts = [self.r.T, self.groups.T, self.basis.transpose(0, 2, 1).reshape(G * q, n)]
             object.__setattr__(self, "lhs_t", np.ascontiguousarray(np.vstack(parts)))
+            resp = np.vstack([parts[0], parts[2]])
+            object.__setattr__(self, "resp_t", np.ascontiguousarray(resp))
+            object.__setattr__(self, "masks32", np.ascontiguousarray(self.groups.T, np.float32))
 
     @property
     def n_responses(self) -> int:
@@ -217,6 +225,30 @@ def _summaries(block: Block, sums_v: np.ndarray, nob: np.ndarray, n: np.ndarray)
     return sums / np.maximum(nob, 1.0), (n[:, None] - nob) / np.maximum(n[:, None], 1.0)
 
 
+def _int8_mask_sums(block: Block, masks32: np.ndarray):
+    """Per mask, the sums of x, of x^2 and of the missing indicator over its samples, for an int8 block:
+    one float32 product of the 0/1 masks with ``[x | x^2 | missing]``, exact (sums of small integers
+    below 2^24), or None when the block is not int8 or its sums could exceed that."""
+    if block.raw.dtype != np.int8:
+        return None
+    n_obs = block.n_samples - block.n_missing
+    if block.width == 0 or np.max(block.sumsq + n_obs * block.mean**2) >= 2.0**23:
+        return None
+    w = block.width
+    cols = np.flatnonzero(block.n_missing)
+    xs = np.empty((block.n_samples, 2 * w + cols.size), np.float32)
+    x, x2, miss = xs[:, :w], xs[:, w : 2 * w], xs[:, 2 * w :]
+    np.copyto(x, block.raw, casting="unsafe")
+    if cols.size:
+        np.equal(np.take(block.raw, cols, axis=1), MISSING_INT8, out=miss, casting="unsafe")
+        x[:, cols] *= 1.0 - miss
+    np.multiply(x, x, out=x2)
+    sums = (masks32 @ xs).astype(np.float64)
+    n_miss = np.zeros((masks32.shape[0], w))
+    n_miss[:, cols] = sums[:, 2 * w :]
+    return sums[:, :w], sums[:, w : 2 * w], n_miss
+
+
 def linear_multi_statistics(block: Block, state: MultiLinearState) -> dict[str, np.ndarray]:
     """Per-feature, per-response statistics of one block.
 
@@ -230,17 +262,37 @@ def linear_multi_statistics(block: Block, state: MultiLinearState) -> dict[str, 
     """
     K, G = state.n_responses, state.groups.shape[1]
     q = state.basis.shape[2]
-    lhs_t = state.lhs_t
-    P = block.cross(lhs_t)  # (K + G + G q, w)
-    ML = _with_missing(block, lhs_t, P)
-    gsl = slice(K, K + G)
-    nob, d = _shift(P, ML, gsl, state.n_obs)
-    sq = _squares(block, state.groups.T)  # (G, w): sum of v^2 over each mask's samples
-    ss = sq - nob * d * d  # centred on the mask's own mean
-    constant = (nob < 2) | (ss <= 1e-12 * np.maximum(sq, 1e-300))
+    sums = _int8_mask_sums(block, state.masks32)
+    if sums is not None:
+        # int8: the masks' counts and sums are exact integers (float32 product), so each response's
+        # mean, centred sum of squares and constant flag are those of its own pass, bit for bit.
+        s1, s2, n_miss = sums
+        nob = state.n_obs[:, None] - n_miss
+        safe = np.maximum(nob, 1.0)
+        mean = s1 / safe
+        d = mean - block.mean
+        num = nob * s2 - s1 * s1
+        ss = num / safe
+        constant = (nob < 2) | (num == 0)
+        missing = n_miss / np.maximum(state.n_obs[:, None], 1.0)
+        lhs_t = state.resp_t
+        P = block.cross(lhs_t)  # (K + G q, w)
+        ML = _with_missing(block, lhs_t, P)
+        B = K  # the basis rows start here
+    else:
+        lhs_t = state.lhs_t
+        P = block.cross(lhs_t)  # (K + G + G q, w)
+        ML = _with_missing(block, lhs_t, P)
+        gsl = slice(K, K + G)
+        nob, d = _shift(P, ML, gsl, state.n_obs)
+        sq = _squares(block, state.groups.T)  # (G, w): sum of v^2 over each mask's samples
+        ss = sq - nob * d * d  # centred on the mask's own mean
+        constant = (nob < 2) | (ss <= 1e-12 * np.maximum(sq, 1e-300))
+        mean, missing = _summaries(block, P[gsl], nob, state.n_obs)
+        B = K + G
     ss_full = ss
     if q:
-        Qx = (P[K + G :] + ML[K + G :] * np.repeat(d, q, axis=0)).reshape(G, q, -1)
+        Qx = (P[B:] + ML[B:] * np.repeat(d, q, axis=0)).reshape(G, q, -1)
         ss = ss - np.einsum("gqw,gqw->gw", Qx, Qx)
     degenerate_g = constant | (ss <= 1e-10 * np.maximum(ss_full, 1e-300))
     g = state.group
@@ -254,7 +306,6 @@ def linear_multi_statistics(block: Block, state: MultiLinearState) -> dict[str, 
         t = corr * np.sqrt(df / np.maximum(1.0 - corr**2, 1e-300))
     p = special.betainc(0.5 * df, 0.5, df / (df + t**2))
     p = np.where(degenerate, 1.0, p)
-    mean, missing = _summaries(block, P[gsl], nob, state.n_obs)
     return {
         "score": np.abs(corr).T,
         "correlation": corr.T,
