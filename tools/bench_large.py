@@ -65,6 +65,19 @@ print(json.dumps({"seconds": t1 - t0, "pass_seconds": res.pass_result.summary()[
                   "maxrss": resource.getrusage(resource.RUSAGE_SELF).ru_maxrss * 1024}))
 """
 
+RUN_CHILD = SCREEN_CHILD.replace(
+    """res = screen(store, outcome, ScreenConfig(response="y", shortlist="auto"), out,
+             memory_budget=None if budget == "none" else budget)""",
+    """from widescreen.workflow import IterateConfig, run
+res = run(store, outcome, IterateConfig(response="y", shortlist="auto", max_iter=1), out,
+          memory_budget=None if budget == "none" else budget)
+class _P:
+    def summary(self):
+        return {"seconds": 0.0, "budget": int(res.budget), "selected": int(res.index.size),
+                "iterations": len(res.iterations), "warnings": list(res.warnings)}
+res.pass_result = _P()""",
+)
+
 
 def _child(script: str, *args: str) -> dict:
     proc = subprocess.run(
@@ -75,7 +88,9 @@ def _child(script: str, *args: str) -> dict:
     return json.loads(proc.stdout.strip().splitlines()[-1])
 
 
-def measure(workdir: Path, n: int, p: int, budget: str, keep: bool, repeat: int = 1) -> dict:
+def measure(
+    workdir: Path, n: int, p: int, budget: str, keep: bool, repeat: int = 1, command: str = "screen"
+) -> dict:
     store = workdir / f"dosage-{n}x{p}.zarr"
     outcome = store.with_name(store.name + ".outcome.tsv")
     tools = str(Path(__file__).resolve().parent)
@@ -85,7 +100,8 @@ def measure(workdir: Path, n: int, p: int, budget: str, keep: bool, repeat: int 
     recs = []
     for _ in range(max(1, repeat)):  # the fastest run, the largest peak (a shared machine)
         shutil.rmtree(out, ignore_errors=True)
-        recs.append(_child(SCREEN_CHILD, str(store), str(outcome), str(out), budget, tools))
+        script = SCREEN_CHILD if command == "screen" else RUN_CHILD
+        recs.append(_child(script, str(store), str(outcome), str(out), budget, tools))
     rec = min(recs, key=lambda r: r["pass_seconds"])
     rec["maxrss"] = max(r["maxrss"] for r in recs)
     disk = sum(f.stat().st_size for f in store.rglob("*") if f.is_file())
@@ -105,7 +121,11 @@ def measure(workdir: Path, n: int, p: int, budget: str, keep: bool, repeat: int 
         "screen_maxrss": rec["maxrss"],
         "blocks": rec["summary"].get("blocks_computed"),
         "sub_block": rec["summary"].get("sub_block"),
+        "command": command,
+        "summary": rec["summary"],
     }
+    if command == "run":
+        print(f"run: {rec['summary']}", flush=True)
     print(
         f"n={n:,} p={p:,}: build {row['build_seconds']:.1f} s (peak RSS "
         f"{row['build_maxrss'] / 2**20:.0f} MiB, {disk / 1e9:.2f} GB on disk); screen "
@@ -128,6 +148,10 @@ def main(argv: list[str] | None = None) -> None:
     ap.add_argument("--budget", default=None, help="Memory budget of the screen (tall: 2GiB).")
     ap.add_argument("--keep", action="store_true", help="Keep the stores and run folders.")
     ap.add_argument("--repeat", type=int, default=1, help="Screens per size; the fastest counts.")
+    ap.add_argument(
+        "--command", choices=("screen", "run"), default="screen",
+        help="run: the iterative workflow (one conditional iteration) instead of screen.",
+    )  # fmt: skip
     ap.add_argument("--json", type=Path, default=None)
     args = ap.parse_args(argv)
     wide = args.case == "wide"
@@ -145,7 +169,7 @@ def main(argv: list[str] | None = None) -> None:
         flush=True,
     )
     rows = [
-        measure(args.workdir, n, p, budget, args.keep, args.repeat)
+        measure(args.workdir, n, p, budget, args.keep, args.repeat, args.command)
         for n in samples
         for p in features
     ]
