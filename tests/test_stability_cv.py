@@ -159,6 +159,9 @@ def _problem(family: str, signal: float, seed: int, n: int = 200, p: int = 500) 
     eta = signal * (X[:, 3] - X[:, 10] + X[:, 42])
     if family == "linear":
         y = eta + rng.standard_normal(n)
+    elif family == "cox":
+        y = rng.exponential(np.exp(-eta))
+        return Problem.from_arrays(X, y, family=family, event=rng.random(n) < 0.8)
     else:
         y = (rng.random(n) < 1 / (1 + np.exp(-eta))).astype(float)
     return Problem.from_arrays(X, y, family=family)
@@ -195,11 +198,11 @@ def test_selection_frequencies_are_reproducible_and_single_out_the_signal():
     assert not (np.array_equal(a.index, c.index) and np.array_equal(a.frequency, c.frequency))
 
 
-@pytest.mark.parametrize("family", ["linear", "logistic"])
+@pytest.mark.parametrize("family", ["linear", "logistic", "cox"])
 def test_one_pass_for_all_halves_gives_the_shortlists_of_one_pass_per_half(monkeypatch, family):
     # The response-matrix pass (all halves at once) against the single-response pass of each half:
-    # the same order for the linear family; the logistic matrix pass ranks by the score test, the
-    # single pass by the likelihood-ratio test of the ML fit, so the lists agree but for near ties.
+    # the same order for the linear family; the logistic and Cox matrix passes rank by the score test,
+    # the single pass by the likelihood-ratio test of the ML fit, so the lists agree but for near ties.
     problem = _problem(family, 1.0, seed=6)
     rng = np.random.default_rng(0)
     Y = np.where(rng.random((problem.n, 6)) < 0.5, problem.response.y[:, None], np.nan)

@@ -5,10 +5,12 @@ from __future__ import annotations
 import numpy as np
 
 from ..kernels import (
+    cox_multi_statistics,
     cox_statistics,
     logistic_statistics,
     poisson_statistics,
     prepare_cox,
+    prepare_cox_multi,
     prepare_logistic,
     prepare_poisson,
     prepare_score_multi,
@@ -146,18 +148,20 @@ class CoxFamily(_GLMFamily):
     takes_event = True
     conditioning = "columns"
 
-    multi_kernel = None
+    #: Several responses in one pass: the score test for responses sharing the times and events, each
+    #: on its own samples (half-samples, folds); the likelihood-ratio fits stay one response at a time.
+    multi_kernel = staticmethod(cox_multi_statistics)
 
     def pass_columns(self, state) -> tuple[str, ...]:
         return self.columns
 
-    def prepare_multi(self, Y, covariates):
-        # The Cox score's information needs risk-set sums per response (sorted by each response's
-        # times), not one product with the block: no response-matrix pass yet.
-        return Family.prepare_multi(self, Y, covariates)
+    def prepare_multi(self, Y, covariates, event=None):
+        if event is None:
+            raise ValueError("the cox family's response matrix needs the event indicator")
+        return prepare_cox_multi(Y, event, covariates)
 
     def multi_columns(self) -> tuple[str, ...]:
-        return self.columns
+        return SCORE_COLUMNS
 
     def prepare(
         self, response, covariates, *, conditioning=None, offset=None, n_permutations=0, seed=0

@@ -7,6 +7,7 @@ maps one `widescreen.store.Block` to a dict of per-feature arrays of shape (widt
 """
 
 from ._cox import CoxState, cox_statistics, prepare_cox
+from ._cox_multi import MultiCoxState, cox_multi_statistics, prepare_cox_multi
 from ._dcor import DcorState, dcor_statistics, prepare_dcor
 from ._glm import (
     LogisticState,
@@ -43,6 +44,7 @@ __all__ = [
     "HolpState",
     "LinearState",
     "LogisticState",
+    "MultiCoxState",
     "MultiLinearState",
     "MultiScoreState",
     "PoissonState",
@@ -50,6 +52,7 @@ __all__ = [
     "SpearmanState",
     "SplineState",
     "check_holp_size",
+    "cox_multi_statistics",
     "cox_statistics",
     "dcor_statistics",
     "holp_gram",
@@ -59,6 +62,7 @@ __all__ = [
     "logistic_statistics",
     "poisson_statistics",
     "prepare_cox",
+    "prepare_cox_multi",
     "prepare_dcor",
     "prepare_holp",
     "prepare_linear",

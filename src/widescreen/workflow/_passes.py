@@ -140,7 +140,10 @@ class PassContext:
                 f"the response matrix must have one row per analysed sample ({problem.n}); "
                 f"got shape {Y.shape}"
             )
-        state = fam.prepare_multi(Y, problem.covariates)
+        if fam.takes_event:  # survival: the times of Y share the problem's event indicator
+            state = fam.prepare_multi(Y, problem.covariates, event=problem.response.event)
+        else:
+            state = fam.prepare_multi(Y, problem.covariates)
         return PassSpec(
             name=name,
             kernel=fam.multi_kernel,

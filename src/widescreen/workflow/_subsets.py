@@ -88,11 +88,12 @@ def screen_responses(
     shortlist. ``label`` names a response-matrix pass in the progress display ("LABEL 1-41 of
     100"); a single-response pass shows its column's name.
 
-    Families with a response-matrix pass (`Family.multi_kernel`: linear, logistic, Poisson) screen
-    a group of columns in one pass over the store (`widescreen.workflow.screen_responses`), as many
-    columns per pass as `group_size` allows (the pass's statistics are kept in memory, not in the run
-    folder). The others (Cox, the model-free families) fall back to one single-response pass per
-    column through the run's pass builder: each reads and decodes the store again.
+    Families with a response-matrix pass (`Family.multi_kernel`: linear, logistic, Poisson, Cox)
+    screen a group of columns in one pass over the store (`widescreen.workflow.screen_responses`), as
+    many columns per pass as `group_size` allows (the pass's statistics are kept in memory, not in the
+    run folder); the GLM and Cox families rank the subsets by the score test there. The others (the
+    model-free families) fall back to one single-response pass per column through the run's pass
+    builder: each reads and decodes the store again.
     """
     problem = where.problem
     K = Y.shape[1]
