@@ -164,3 +164,33 @@ def test_refusals(study, tmp_path):
         ScreenConfig(response="a,.b")
     with pytest.raises(ValueError, match="cox family screens one response at a time"):
         screen(ds.path, table, ScreenConfig(response="a,b", family="cox", event="c"), tmp_path)
+
+
+def test_star_names_every_numeric_column_but_covariates_and_event(study, tmp_path):
+    from typer.testing import CliRunner
+
+    from widescreen.cli import app
+    from widescreen.workflow._problem import expand_response
+
+    ds, table, _ = study
+    # a text column and the event are not responses; "NA" cells do not make a column non-numeric
+    extra = tmp_path / "o.tsv"
+    lines = table.read_text().splitlines()
+    extra.write_text(
+        "\n".join(
+            [lines[0] + "\tsite\tdead"]
+            + [f"{line}\tplate{i % 3}\t{i % 2}" for i, line in enumerate(lines[1:])]
+        )
+        + "\n"
+    )
+    assert expand_response("*", extra, ("age",), "dead") == "a,b,c"
+    assert expand_response("*", extra, ("age",)) == "a,b,c,dead"
+    assert expand_response("a", extra) == "a"
+    out = tmp_path / "run"
+    args = ["screen", str(ds.path), "--outcome", str(table), "--response", "*"]
+    args += ["--covariates", "age", "--shortlist", "6", "--out", str(out), "-q", "--no-report"]
+    res = CliRunner().invoke(app, args)
+    assert res.exit_code == 0, res.output
+    assert read_table(out / "traits.tsv")["trait"].tolist() == list(TRAITS)
+    manifest = json.loads((out / "manifest.json").read_text())
+    assert manifest["config"]["response"] == "a,b,c"

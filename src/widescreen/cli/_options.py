@@ -143,7 +143,8 @@ ResponseOpt = Annotated[
         "--response",
         metavar="COLUMN",
         help="Column of the response (survival: the time). Several traits: a,b,c (one pass over the "
-        "store for all; each trait's results in OUT/traits/NAME/, a summary in OUT/traits.tsv).",
+        "store for all; each trait's results in OUT/traits/NAME/, a summary in OUT/traits.tsv); "
+        "'*': every numeric column but the covariates and the event.",
     ),
 ]
 OutOpt = Annotated[

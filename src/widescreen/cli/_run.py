@@ -176,10 +176,11 @@ def run_cmd(
     screen's shortlist) and manifest.json into the run folder; rerunning resumes pass by pass.
     """
     from ..workflow._iterate import IterateConfig
+    from ..workflow._problem import expand_response
     from ..workflow._run import run
 
     config = IterateConfig(
-        response=response,
+        response=expand_response(response, outcome, covariates_of(covariates), event),
         family=family,
         covariates=covariates_of(covariates),
         event=event,

@@ -59,10 +59,11 @@ def screen_cmd(
     quiet: QuietOpt = False,
 ) -> None:
     """Rank every feature by its marginal association with the outcome (SIS) and write the shortlist."""
+    from ..workflow._problem import expand_response
     from ..workflow._screen import ScreenConfig, screen
 
     config = ScreenConfig(
-        response=response,
+        response=expand_response(response, outcome, covariates_of(covariates), event),
         family=family,
         covariates=covariates_of(covariates),
         event=event,

@@ -26,6 +26,7 @@ from ._outcome import (
     code_covariate_frame,
     code_covariates,
     join_outcome,
+    numeric_columns,
     read_outcome_table,
 )
 from ._reader import Block, ChunkError, ChunkLayout, prepare_block, read_block
@@ -58,6 +59,7 @@ __all__ = [
     "inspect_dataset",
     "is_url",
     "join_outcome",
+    "numeric_columns",
     "open_dataset",
     "place",
     "prepare_block",

@@ -107,6 +107,19 @@ def is_missing(values: np.ndarray) -> np.ndarray:
     return np.isin(values, list(MISSING_TOKENS))
 
 
+def numeric_columns(table: OutcomeTable, exclude=()) -> list[str]:
+    """Columns of ``table`` (in file order, ``exclude`` left out) whose every cell that is not a missing
+    token is a number, with at least one such cell: the candidates for a response."""
+    found = []
+    for name, values in table.columns.items():
+        if name in exclude:
+            continue
+        present = values[~is_missing(values)]
+        if present.size and _is_numeric(present):
+            found.append(name)
+    return found
+
+
 def parse_numeric(
     table: OutcomeTable, name: str, values: np.ndarray | None = None, lines=None
 ) -> np.ndarray:

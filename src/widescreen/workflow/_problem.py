@@ -64,6 +64,29 @@ def trait_names(response: str) -> tuple[str, ...]:
     return names
 
 
+#: ``--response`` value naming every numeric column of the outcome table but the covariates and event.
+ALL_NUMERIC = "*"
+
+
+def expand_response(
+    response: str, outcome, covariates: tuple[str, ...] = (), event: str | None = None
+) -> str:
+    """``response`` as the run records it: ``"*"`` becomes every numeric column of the outcome table
+    (file order) that is not a covariate or the event, joined by commas; anything else is returned as
+    given. The manifest then holds the explicit list, so a changed table is refused on resume."""
+    if response.strip() != ALL_NUMERIC:
+        return response
+    from ..store import numeric_columns, read_outcome_table
+
+    table = read_outcome_table(outcome)
+    names = numeric_columns(table, exclude={*covariates, *([event] if event else [])})
+    if not names:
+        raise OutcomeError(
+            f"{table.path}: --response '*': no numeric column besides the covariates"
+        )
+    return ",".join(names)
+
+
 #: Largest shortlist ``"auto"`` gives, whatever n: floor(n / log n) reaches it at n of about 20,000,
 #: where a penalised path over 2000 columns already takes minutes per iteration on a few cores.
 MAX_AUTO_SHORTLIST = 2000
@@ -439,6 +462,7 @@ __all__ = [
     "check_covariates",
     "check_problem_fields",
     "check_sample_size",
+    "expand_response",
     "load_problem",
     "problem_from_arrays",
     "shortlist_size",
