@@ -356,10 +356,26 @@ def _state(out: Path) -> dict:
         return {}
 
 
+# The killed run's refits each wait 0.25 s first (patched in the child only), so the window in which some
+# halves are refitted and others not lasts seconds whatever the machine's speed; results are unchanged.
+SLOW_REFITS = (
+    "import time\n"
+    "import widescreen.workflow._stability as st\n"
+    "fit = st.fit_subset\n"
+    "def slow(*a, **k):\n"
+    "    time.sleep(0.25)\n"
+    "    return fit(*a, **k)\n"
+    "st.fit_subset = slow\n"
+    "from widescreen.cli import main\n"
+    "main()\n"
+)
+
+
 def test_a_run_killed_during_its_stability_refits_resumes_to_identical_tables(study):
     root, sim, ref = study
     out = root / "killed"
-    proc = subprocess.Popen(_args(sim, out), stdout=subprocess.PIPE, stderr=subprocess.PIPE)
+    args = [sys.executable, "-c", SLOW_REFITS, *_args(sim, out)[len(CLI) :]]
+    proc = subprocess.Popen(args, stdout=subprocess.PIPE, stderr=subprocess.PIPE)
     t0 = time.monotonic()
     try:
         while True:  # kill once some halves are refitted and others not
