@@ -271,134 +271,110 @@ def select_model(
     # Many small refits and products: BLAS threads lose more to hand-offs than they gain (the path's
     # own rule, `SolverOptions.blas_threads`; on a busy machine the tuning ran 8x slower without it).
     with blas_limit(path.options):
-        return _select_model(
-            path,
-            criterion,
-            n_candidates=n_candidates,
-            gamma=gamma,
-            cv=cv,
-            seed=seed,
-            tuning=tuning,
-            forward=forward,
-        )
-
-
-def _select_model(
-    path: PathResult,
-    criterion: str,
-    *,
-    n_candidates: int | None,
-    gamma: float | None,
-    cv: int,
-    seed: int,
-    tuning: str,
-    forward: bool,
-) -> FitResult:
-    """`select_model`'s work, under the BLAS limit of the path's solver options."""
-    if criterion not in _CRITERIA:
-        raise ValueError(f"The 'criterion' must be one of {_CRITERIA}; got {criterion!r}.")
-    if tuning not in _TUNINGS:
-        raise ValueError(f"The 'tuning' must be one of {_TUNINGS}; got {tuning!r}.")
-    n, d = path.n_samples, path.n_features
-    se = None
-    used_gamma = None
-    p = None
-    if criterion == "ebic":
-        if n_candidates is None:
-            raise ValueError(
-                "The EBIC needs 'n_candidates', the number of features the model was chosen from "
-                "(the number screened; X.shape[1] when there was no screening)."
-            )
-        p = int(n_candidates)
-        if p < d:
-            raise ValueError(
-                f"'n_candidates' ({p}) cannot be below the number of fitted features ({d})."
-            )
-        if gamma is not None:
-            used_gamma = float(gamma)
-        else:
-            used_gamma = 1.0 if tuning == "refit" else default_ebic_gamma(n, p)
-    supports, which = _supports(path)
-    extra = None
-    if tuning == "path":
+        if criterion not in _CRITERIA:
+            raise ValueError(f"The 'criterion' must be one of {_CRITERIA}; got {criterion!r}.")
+        if tuning not in _TUNINGS:
+            raise ValueError(f"The 'tuning' must be one of {_TUNINGS}; got {tuning!r}.")
+        n, d = path.n_samples, path.n_features
+        se = None
+        used_gamma = None
+        p = None
         if criterion == "ebic":
-            values = ebic(path.log_likelihood, path.df, n, p, used_gamma)
-        elif criterion == "bic":
-            values = bic(path.log_likelihood, path.df, n)
-        else:
-            values, se = cross_validate(path, cv, seed)
-    else:
-        if criterion == "cv":
-            per_support, se_support = cross_validate_supports(path, supports, cv, seed)
-            se = se_support[which]
-        else:
-            g = used_gamma if criterion == "ebic" else 0.0
-            pp = p if criterion == "ebic" else d
-
-            def penalty_of_size(k: int) -> float:
-                return k * np.log(n) + 2.0 * g * float(log_binomial(pp, k))
-
-            per_support = _refit_criterion(path, supports, penalty_of_size)
-            if forward and path.penalty.concave:
-                extra = _stepwise_choice(path, supports, per_support, penalty_of_size)
-        values = per_support[which]
-    finite = np.isfinite(values)
-    if tuning == "refit" and not np.any(finite) and criterion != "cv":
-        # No visited support has a maximum likelihood estimate (for example a constant or separated
-        # response): score the penalised estimates instead, which always exist.
+            if n_candidates is None:
+                raise ValueError(
+                    "The EBIC needs 'n_candidates', the number of features the model was chosen from "
+                    "(the number screened; X.shape[1] when there was no screening)."
+                )
+            p = int(n_candidates)
+            if p < d:
+                raise ValueError(
+                    f"'n_candidates' ({p}) cannot be below the number of fitted features ({d})."
+                )
+            if gamma is not None:
+                used_gamma = float(gamma)
+            else:
+                used_gamma = 1.0 if tuning == "refit" else default_ebic_gamma(n, p)
+        supports, which = _supports(path)
         extra = None
-        values = (
-            ebic(path.log_likelihood, path.df, n, p, used_gamma)
-            if criterion == "ebic"
-            else bic(path.log_likelihood, path.df, n)
-        )
+        if tuning == "path":
+            if criterion == "ebic":
+                values = ebic(path.log_likelihood, path.df, n, p, used_gamma)
+            elif criterion == "bic":
+                values = bic(path.log_likelihood, path.df, n)
+            else:
+                values, se = cross_validate(path, cv, seed)
+        else:
+            if criterion == "cv":
+                per_support, se_support = cross_validate_supports(path, supports, cv, seed)
+                se = se_support[which]
+            else:
+                g = used_gamma if criterion == "ebic" else 0.0
+                pp = p if criterion == "ebic" else d
+
+                def penalty_of_size(k: int) -> float:
+                    return k * np.log(n) + 2.0 * g * float(log_binomial(pp, k))
+
+                per_support = _refit_criterion(path, supports, penalty_of_size)
+                if forward and path.penalty.concave:
+                    extra = _stepwise_choice(path, supports, per_support, penalty_of_size)
+            values = per_support[which]
         finite = np.isfinite(values)
-    if not np.any(finite):
-        raise ValueError(f"The {criterion} criterion is not finite at any lambda of the path.")
-    # First minimum: ties go to the larger lambda (the sparser model).
-    best = int(np.argmin(np.where(finite, values, np.inf)))
-    if tuning == "refit":
-        # The same support at the next lambdas: report the last of the run (least shrunk).
-        while best + 1 < which.shape[0] and which[best + 1] == which[best]:
-            best += 1
-    index: int | None = best
-    lambda_ = float(path.lambdas[best])
-    coef = path.coefs[best]
-    intercept = float(path.intercepts[best])
-    unpen = path.unpenalized_coefs[best]
-    value = float(values[best])
-    support = np.flatnonzero(coef)
-    if extra is not None:
-        support, value = extra
-    fit = refit_support(path, support, with_se=True)
-    if extra is not None:
-        # A support off the path: no penalised estimate belongs to it, so its refit stands in.
-        index, lambda_ = None, float("nan")
-        coef = np.zeros(d)
-        coef[support] = fit.coef
-        intercept, unpen = fit.intercept, fit.unpenalized_coef
-    refit_coef = np.zeros(d)
-    refit_se = np.full(d, np.nan)
-    refit_coef[support] = fit.coef
-    refit_se[support] = fit.se
-    return FitResult(
-        coef=coef,
-        intercept=intercept,
-        unpenalized_coef=unpen,
-        support=support,
-        lambda_=lambda_,
-        index=index,
-        criterion=criterion,
-        criterion_value=value,
-        criterion_values=values,
-        lambdas=path.lambdas,
-        coefs=path.coefs,
-        ebic_gamma=used_gamma,
-        n_candidates=p,
-        cv_std_error=se,
-        path=path,
-        tuning=tuning,
-        refit=fit,
-        refit_coef=refit_coef,
-        refit_se=refit_se,
-    )
+        if tuning == "refit" and not np.any(finite) and criterion != "cv":
+            # No visited support has a maximum likelihood estimate (for example a constant or separated
+            # response): score the penalised estimates instead, which always exist.
+            extra = None
+            values = (
+                ebic(path.log_likelihood, path.df, n, p, used_gamma)
+                if criterion == "ebic"
+                else bic(path.log_likelihood, path.df, n)
+            )
+            finite = np.isfinite(values)
+        if not np.any(finite):
+            raise ValueError(f"The {criterion} criterion is not finite at any lambda of the path.")
+        # First minimum: ties go to the larger lambda (the sparser model).
+        best = int(np.argmin(np.where(finite, values, np.inf)))
+        if tuning == "refit":
+            # The same support at the next lambdas: report the last of the run (least shrunk).
+            while best + 1 < which.shape[0] and which[best + 1] == which[best]:
+                best += 1
+        index: int | None = best
+        lambda_ = float(path.lambdas[best])
+        coef = path.coefs[best]
+        intercept = float(path.intercepts[best])
+        unpen = path.unpenalized_coefs[best]
+        value = float(values[best])
+        support = np.flatnonzero(coef)
+        if extra is not None:
+            support, value = extra
+        fit = refit_support(path, support, with_se=True)
+        if extra is not None:
+            # A support off the path: no penalised estimate belongs to it, so its refit stands in.
+            index, lambda_ = None, float("nan")
+            coef = np.zeros(d)
+            coef[support] = fit.coef
+            intercept, unpen = fit.intercept, fit.unpenalized_coef
+        refit_coef = np.zeros(d)
+        refit_se = np.full(d, np.nan)
+        refit_coef[support] = fit.coef
+        refit_se[support] = fit.se
+        return FitResult(
+            coef=coef,
+            intercept=intercept,
+            unpenalized_coef=unpen,
+            support=support,
+            lambda_=lambda_,
+            index=index,
+            criterion=criterion,
+            criterion_value=value,
+            criterion_values=values,
+            lambdas=path.lambdas,
+            coefs=path.coefs,
+            ebic_gamma=used_gamma,
+            n_candidates=p,
+            cv_std_error=se,
+            path=path,
+            tuning=tuning,
+            refit=fit,
+            refit_coef=refit_coef,
+            refit_se=refit_se,
+        )
