@@ -303,6 +303,33 @@ def test_store_over_https_read_only(study):
         server.server_close()
 
 
+def test_simulate_writes_to_s3(s3_server, tmp_path, monkeypatch):
+    """`simulate` to a URL writes the store `simulate` writes on disk (same chunks, same fingerprint);
+    the outcome and truth tables, local files, go to the current folder."""
+    monkeypatch.chdir(tmp_path)
+    args = ["--design", "dosage", "-n", "60", "-p", "100", "--true", "3", "--seed", "5"]
+    args += ["--chunk-features", "32", "-q"]
+    url = f"s3://{BUCKET}/sim.zarr"
+    res = runner.invoke(app, ["simulate", url, *args])
+    assert res.exit_code == 0, res.output
+    res = runner.invoke(app, ["simulate", str(tmp_path / "local.zarr"), *args])
+    assert res.exit_code == 0, res.output
+    remote, local = open_dataset(url), open_dataset(tmp_path / "local.zarr")
+    assert remote.fingerprint() == local.fingerprint()
+    np.testing.assert_array_equal(np.asarray(remote.X[:]), np.asarray(local.X[:]))
+    for table in ("outcome", "truth"):
+        assert (tmp_path / f"sim.zarr.{table}.tsv").read_text() == (
+            tmp_path / f"local.zarr.{table}.tsv"
+        ).read_text()
+    # the Python function: an existing store is refused unless replaced
+    cfg = SimulationConfig(design="dosage", n_samples=60, n_features=100, n_true=3, seed=5)
+    with pytest.raises(StoreError, match=rf"^{url}: already exists"):
+        simulate(url, cfg)
+    sim = simulate(url, cfg, overwrite=True, outcome_path=tmp_path / "y.tsv")
+    assert str(sim.dataset.path) == url and sim.outcome_path == tmp_path / "y.tsv"
+    assert sim.dataset.shape == (60, 100)
+
+
 def test_run_folder_url_is_refused(study):
     res = runner.invoke(
         app,

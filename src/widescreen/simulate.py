@@ -35,6 +35,7 @@ from pathlib import Path
 
 import numpy as np
 
+from .store import place
 from .store._format import MISSING_INT8, Dataset, DatasetWriter
 
 DESIGNS = ("independent", "equicorrelated", "hidden", "dosage")
@@ -174,10 +175,14 @@ def simulate(
 
     Parameters
     ----------
-    path : path of the new store
+    path : str or path-like
+        The new store: a folder, or a URL on object storage (``s3://bucket/sim.zarr``, written like
+        ``import`` writes one).
     config : SimulationConfig
     outcome_path, truth_path : optional
-        Default to ``<store>.outcome.tsv`` and ``<store>.truth.tsv`` beside the store.
+        Default to ``<store>.outcome.tsv`` and ``<store>.truth.tsv`` beside a store folder; beside a
+        store on a URL they would be objects, which ``--outcome`` does not read, so they default to
+        the current folder (``./<store name>.outcome.tsv``).
     progress : callable(done, total), optional
 
     Returns
@@ -185,9 +190,11 @@ def simulate(
     Simulation
     """
     cfg = config
-    path = Path(path)
-    outcome_path = Path(outcome_path or path.with_name(path.name + ".outcome.tsv"))
-    truth_path = Path(truth_path or path.with_name(path.name + ".truth.tsv"))
+    path = place(path)
+    # The tables are local files: beside a store folder, in the current folder for a URL.
+    beside = path.parent if isinstance(path, Path) else Path.cwd()
+    outcome_path = Path(outcome_path or beside / (path.name + ".outcome.tsv"))
+    truth_path = Path(truth_path or beside / (path.name + ".truth.tsv"))
     root = np.random.SeedSequence(cfg.seed)
     coef_seed, pos_seed, z_seed, noise_seed, blocks_seed = root.spawn(5)
     beta, roles = _coefficients(cfg, np.random.default_rng(coef_seed))

@@ -22,7 +22,14 @@ DEMO_DROP_MISSING = 0.05
 
 @command("simulate", interrupted=NOT_RESUMABLE)
 def simulate_cmd(
-    store: Annotated[Path, typer.Argument(metavar="STORE", help="Path of the new store.")],
+    store: Annotated[
+        str,
+        typer.Argument(
+            metavar="STORE",
+            help="The new store: a folder or a URL (s3://, gs://, az://); for a URL the outcome and "
+            "truth tables go to the current folder.",
+        ),
+    ],
     design: Annotated[
         str,
         typer.Option(
