@@ -71,8 +71,22 @@ class StoreView:
 
     @property
     def feature_ids(self) -> np.ndarray:
-        """Ids of every feature of the store (reads the whole id column)."""
+        """Ids of every feature of the store (reads the whole id column; see `feature_ids_at`)."""
         return self.dataset.feature_ids()
+
+    def feature_ids_at(self, index) -> np.ndarray:
+        """Ids of the given features (e.g. a selector's ``ranking_``), reading only their entries.
+
+        Parameters
+        ----------
+        index : array-like of int
+            Feature positions, in any order.
+
+        Returns
+        -------
+        ndarray of str of shape (len(index),)
+        """
+        return self.dataset.feature_ids_at(index)
 
     def __getitem__(self, key) -> StoreView:
         # scikit-learn indexes rows as X[key, ...] (sklearn.utils._indexing._array_indexing).
