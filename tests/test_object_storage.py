@@ -206,6 +206,52 @@ def test_screen_and_run_from_s3_equal_local(study, command):
     assert f'"path": "{study["url"]}"' in (out / "manifest.json").read_text()
 
 
+def test_read_ahead_holds_one_block_per_thread_and_reads_the_same_values(study):
+    from concurrent.futures import ThreadPoolExecutor
+
+    from widescreen.engine import as_source
+    from widescreen.store import ChunkLayout, ReadAhead
+
+    ds = open_dataset(study["url"])
+    ahead = ReadAhead(ds, ChunkLayout.of(ds), range(50), depth=2)
+    held = []
+
+    def read(c: int) -> bool:
+        block = ahead.read(c)
+        held.append(ahead.held)
+        return np.array_equal(block, study["X"][:, 16 * c : 16 * c + 16])
+
+    with ThreadPoolExecutor(2) as pool:
+        assert all(pool.map(read, range(50)))
+    assert max(held) <= 2  # the bytes of at most one block ahead per thread
+    assert ahead.hits >= 50 - 2  # only the first blocks were not requested before they were read
+    ahead.close()
+    assert ahead.held == 0
+    # the memory plan counts the block's objects and the next block's (a local store: one chunk file)
+    src = as_source(ds)
+    assert src.block_shape(read_ahead=True).encoded_columns == 2
+    assert as_source(study["sim"].dataset).block_shape(read_ahead=True).encoded_columns == 0
+
+
+def test_pass_reads_ahead_in_the_order_the_scheduler_runs_blocks(study, monkeypatch):
+    from widescreen.store import ReadAhead
+
+    closed = []
+    close = ReadAhead.close
+
+    def spy(self):
+        closed.append((self.reads, self.hits, self.depth))
+        close(self)
+
+    monkeypatch.setattr(ReadAhead, "close", spy)
+    out = study["root"] / "s3-ahead"
+    res = runner.invoke(app, _args("screen", study["url"], study["sim"].outcome_path, out))
+    assert res.exit_code == 0, res.output
+    _same_outputs(out, study["refs"]["screen"])
+    [(reads, hits, depth)] = closed
+    assert reads == 50 and hits >= reads - depth
+
+
 def test_killed_and_resumed_from_s3_equals_uninterrupted(study):
     """SIGKILL mid-pass with the store in the bucket; the rerun finishes bit-identical."""
     out = study["root"] / "s3-killed"

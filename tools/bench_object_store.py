@@ -5,9 +5,13 @@ on a free port (or uses ``--endpoint`` with the credentials already in the envir
 store as it is, then measures on this machine, best of ``--repeat``:
 
 * ``floor``: every chunk column read and decoded into the reused buffers (`read_block`), on
-  ``--threads`` threads, no arithmetic;
+  ``--threads`` threads, no arithmetic; on S3 through `ReadAhead` (a pass's route: each thread's next
+  block requested while it decodes the current one) unless ``--no-read-ahead``;
 * ``screen``: the whole ``widescreen screen STORE ... --no-report`` command in a fresh process (wall
-  time, including the fingerprint and the start-up).
+  time, including the fingerprint and the start-up), and its CPU time (user + system of the child).
+
+Also printed: the load average before each measurement (the machine is shared) and the CPU time the
+moto server spent serving the S3 runs (it runs on the same cores as the pass).
 
 Usage::
 
@@ -17,7 +21,9 @@ Usage::
 from __future__ import annotations
 
 import argparse
+import json
 import os
+import resource
 import shutil
 import socket
 import subprocess
@@ -65,25 +71,52 @@ def start_server() -> subprocess.Popen:
     raise SystemExit("the S3 server did not start")
 
 
-def floor(store: str, threads: int) -> float:
-    from widescreen.store import ChunkLayout, open_dataset, read_block
+def floor(store: str, threads: int, read_ahead: bool) -> tuple[float, float]:
+    """Wall and CPU seconds (of this process) to read and decode every chunk column."""
+    from widescreen.store import ChunkLayout, is_url, open_dataset, read_block
 
     ds = open_dataset(store)
     layout = ChunkLayout.of(ds)
     n_blocks = -(-ds.n_features // layout.chunk_cols)
-    t0 = time.perf_counter()
+    read = lambda i: read_block(ds, i, layout)  # noqa: E731
+    ahead = None
+    if read_ahead and is_url(store):
+        from widescreen.store import ReadAhead
+
+        ahead = ReadAhead(ds, layout, range(n_blocks), threads)
+        read = ahead.read
+    t0, c0 = time.perf_counter(), time.process_time()
     with ThreadPoolExecutor(threads) as pool:
-        list(pool.map(lambda i: read_block(ds, i, layout).shape, range(n_blocks)))
-    return time.perf_counter() - t0
+        list(pool.map(lambda i: read(i).shape, range(n_blocks)))
+    if ahead is not None:
+        ahead.close()
+    return time.perf_counter() - t0, time.process_time() - c0
 
 
-def screen(store: str, outcome: Path, out: Path) -> float:
+def _children_cpu() -> float:
+    ru = resource.getrusage(resource.RUSAGE_CHILDREN)
+    return ru.ru_utime + ru.ru_stime
+
+
+def screen(store: str, outcome: Path, out: Path) -> tuple[float, float, float]:
+    """Wall and CPU seconds of the ``screen`` command in a fresh process, and its pass's seconds."""
     shutil.rmtree(out, ignore_errors=True)
     cmd = [sys.executable, "-m", "widescreen.cli", "screen", store, "--outcome", str(outcome)]
     cmd += ["--response", "y", "--out", str(out), "--no-report", "--quiet"]
-    t0 = time.perf_counter()
+    t0, c0 = time.perf_counter(), _children_cpu()
     subprocess.run(cmd, check=True, stdout=subprocess.DEVNULL)
-    return time.perf_counter() - t0
+    wall, cpu = time.perf_counter() - t0, _children_cpu() - c0
+    manifest = json.loads((out / "manifest.json").read_text())
+    return wall, cpu, float(manifest["passes"]["screen"]["seconds"])
+
+
+def _server_cpu(server: subprocess.Popen | None) -> float:
+    if server is None:
+        return float("nan")
+    import psutil
+
+    t = psutil.Process(server.pid).cpu_times()
+    return t.user + t.system
 
 
 def main(argv: list[str] | None = None) -> None:
@@ -94,6 +127,9 @@ def main(argv: list[str] | None = None) -> None:
     ap.add_argument("--threads", type=int, default=2)
     ap.add_argument("--repeat", type=int, default=2)
     ap.add_argument("--endpoint", help="an S3 endpoint to use instead of starting moto")
+    ap.add_argument(
+        "--no-read-ahead", action="store_true", help="floor: read each block only when asked"
+    )
     args = ap.parse_args(argv)
 
     build(args.workdir, args.samples, args.features, 0, False)
@@ -116,19 +152,40 @@ def main(argv: list[str] | None = None) -> None:
         fs.put(local, f"{BUCKET}/int8.store", recursive=True)
         print(f"upload {time.perf_counter() - t0:.1f} s")
         rows = []
+        loads = []
         for what, fn in (
-            ("floor", lambda s: floor(s, args.threads)),
+            ("floor", lambda s: floor(s, args.threads, not args.no_read_ahead)),
             ("screen", lambda s: screen(s, args.workdir / "outcome.tsv", args.workdir / "run")),
         ):
             best = {}
-            for name, store in (("local", local), ("s3", remote)):
-                best[name] = min(fn(store) for _ in range(args.repeat))
-            rows.append((what, best["local"], best["s3"]))
-        print(f"n = {args.samples}, p = {args.features}, int8, {args.threads} threads")
-        print("| measurement | local disk s | local S3 server s | ratio |")
-        print("|---|---:|---:|---:|")
-        for what, a, b in rows:
-            print(f"| {what} | {a:.2f} | {b:.2f} | {b / a:.2f} |")
+            server_cpu = 0.0
+            # Alternate the two stores, so a change of the machine's load touches both alike.
+            runs: dict[str, list] = {"local": [], "s3": []}
+            for _ in range(args.repeat):
+                for name, store in (("local", local), ("s3", remote)):
+                    loads.append(os.getloadavg()[0])
+                    s0 = _server_cpu(server)
+                    runs[name].append(fn(store))
+                    if name == "s3":
+                        server_cpu += _server_cpu(server) - s0
+            best = {name: min(r) for name, r in runs.items()}  # the fastest wall, with its CPU
+            rows.append((what, best["local"][:2], best["s3"][:2], server_cpu / args.repeat))
+            if what == "screen":  # the pass alone, as the command's manifest records it
+                best = {name: min(r[2] for r in runs[name]) for name in runs}
+                rows.append(("its pass", (best["local"], None), (best["s3"], None), None))
+        print(
+            f"n = {args.samples}, p = {args.features}, int8, {args.threads} threads, best of "
+            f"{args.repeat}; load average (1 min) {min(loads):.1f}-{max(loads):.1f}"
+        )
+        print(
+            "| measurement | local disk s (CPU s) | local S3 server s (CPU s) | ratio | server CPU s |"
+        )
+        print("|---|---:|---:|---:|---:|")
+        for what, (a, ac), (b, bc), srv in rows:
+            a_text = f"{a:.2f}" + ("" if ac is None else f" ({ac:.2f})")
+            b_text = f"{b:.2f}" + ("" if bc is None else f" ({bc:.2f})")
+            srv_text = "" if srv is None else f"{srv:.2f}"
+            print(f"| {what} | {a_text} | {b_text} | {b / a:.2f} | {srv_text} |")
     finally:
         if server is not None:
             server.terminate()

@@ -10,7 +10,10 @@ What one worker thread holds at its peak while it processes one block::
     column     = ceil(N / r) * r * C * s          the block's chunk column, decoded whole: a chunk
                                                   cannot be decoded in parts
     encoded    = 1.25 * (r * C * s * 257/256 + 64)  one chunk file, read into a reused buffer
-                                                  (at worst incompressible)
+                                                  (at worst incompressible); on object storage
+                 or e * ceil(N / r) * (r * C * s * 257/256 + 68)   e whole encoded chunk columns:
+                                                  the block's objects (e = 1), and the next block's
+                                                  requested ahead (e = 2, the local schedulers)
     sub(w)     = n * w * (s + 8 * (1 + t))        the analysed rows of one sub-block, its float64
                  + 2 * m * w * 8                  values and the kernel's temporaries; the
                                                   cross-products and null scores of the m responses
@@ -93,6 +96,10 @@ class BlockShape:
         Chunk shape of X.
     itemsize : int
         Bytes per stored value (1 for int8 dosages).
+    encoded_columns : int
+        Whole encoded chunk columns one thread holds: 0 for a store on a file system (one chunk file
+        at a time, into a reused buffer), 1 on object storage (a block's objects are fetched together),
+        2 on object storage read ahead (the next block's objects in flight too).
     """
 
     n_samples: int
@@ -100,6 +107,7 @@ class BlockShape:
     chunk_rows: int
     chunk_cols: int
     itemsize: int
+    encoded_columns: int = 0
 
     @property
     def column_bytes(self) -> int:
@@ -108,8 +116,13 @@ class BlockShape:
 
     @property
     def encoded_bytes(self) -> int:
-        # At worst incompressible (Blosc adds a little), read into a reused buffer grown by 1.25x.
         raw = self.chunk_rows * self.chunk_cols * self.itemsize
+        if self.encoded_columns:
+            # Whole objects (at worst incompressible, plus the Blosc header and the checksum) of each
+            # row chunk of the column.
+            n_row_chunks = -(-self.n_samples // self.chunk_rows)
+            return self.encoded_columns * n_row_chunks * (raw + raw // 256 + 64 + 4)
+        # At worst incompressible (Blosc adds a little), read into a reused buffer grown by 1.25x.
         return int(1.25 * (raw + raw // 256 + 64))
 
 

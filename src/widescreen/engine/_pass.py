@@ -163,7 +163,7 @@ def _choose_sub_block(
         budget, baseline = int(budget * CLUSTER_SHARE), BASELINE_BYTES
     plan = plan_memory(
         budget,
-        source.block_shape(spec.n_analysed),
+        source.block_shape(spec.n_analysed, read_ahead=ex.kind != "distributed"),
         keep=spec.keep if spec.keep_values else 0,  # no values kept: the top list is indices only
         max_threads=ex.threads_per_worker,
         max_sub_block=cap,
@@ -299,15 +299,21 @@ def _compute_blocks(
         graph, block_keys, final = build_pass(source, spec, todo, out_dir)
         if progress is not None:
             progress(n_done, source.n_blocks)
-        results = ex.run(
-            graph,
-            block_keys,
-            final,
-            progress=progress,
-            offset=n_done,
-            total=source.n_blocks,
-            want_blocks=out_dir is None,
-        )
+        if ex.kind != "distributed":
+            # A store on object storage: each thread's next block is requested while it computes.
+            source.start_reads(_read_order(graph, block_keys), ex.threads_per_worker)
+        try:
+            results = ex.run(
+                graph,
+                block_keys,
+                final,
+                progress=progress,
+                offset=n_done,
+                total=source.n_blocks,
+                want_blocks=out_dir is None,
+            )
+        finally:
+            source.end_reads()
         return _Computed(
             spec=spec,
             final=results["final"],
@@ -318,6 +324,15 @@ def _compute_blocks(
             where=ex.describe(),
             fetch_threads=ex.threads_per_worker if ex.kind == "threads" else n_cores(),
         )
+
+
+def _read_order(graph: dict, block_keys: list) -> list[int]:
+    """The blocks in the order the local schedulers start them: Dask's static priority of the graph
+    (`dask.order.order`, the order `dask.local.get_async` takes ready tasks in), not the block order."""
+    from dask.order import order
+
+    priority = order(graph)
+    return [key[1] for key in sorted(block_keys, key=priority.__getitem__)]
 
 
 def _finish(

@@ -14,7 +14,16 @@ from pathlib import Path
 
 import numpy as np
 
-from ..store import MISSING_INT8, ChunkError, ChunkLayout, Dataset, StoreError, read_block
+from ..store import (
+    MISSING_INT8,
+    ChunkError,
+    ChunkLayout,
+    Dataset,
+    ReadAhead,
+    RemotePath,
+    StoreError,
+    read_block,
+)
 from ._memory import BlockShape
 
 
@@ -38,6 +47,15 @@ class BlockSource(ABC):
     def read(self, i: int) -> np.ndarray:
         """Raw values of block ``i``: (n_samples, width), NaN or the int8 sentinel for missing."""
 
+    def start_reads(self, order: list[int], depth: int) -> None:
+        """A pass is about to read ``order`` on ``depth`` threads of this process (a hint; a source
+        in memory or on a file system has nothing to do with it)."""
+        return None
+
+    def end_reads(self) -> None:
+        """The pass started by `start_reads` ended (or stopped)."""
+        return None
+
     @abstractmethod
     def token(self) -> str:
         """A fingerprint of the data, recorded by checkpoints."""
@@ -54,8 +72,9 @@ class BlockSource(ABC):
     def itemsize(self) -> int:
         return 8
 
-    def block_shape(self, n_analysed: int | None = None) -> BlockShape:
-        """What one block costs to read, for `widescreen.engine.plan_memory`."""
+    def block_shape(self, n_analysed: int | None = None, *, read_ahead: bool = False) -> BlockShape:
+        """What one block costs to read, for `widescreen.engine.plan_memory` (``read_ahead``: the pass
+        calls `start_reads`)."""
         rows, cols = self.chunk_shape
         return BlockShape(
             n_samples=self.n_samples,
@@ -63,7 +82,12 @@ class BlockSource(ABC):
             chunk_rows=rows,
             chunk_cols=cols,
             itemsize=self.itemsize,
+            encoded_columns=self.encoded_columns(read_ahead),
         )
+
+    def encoded_columns(self, read_ahead: bool) -> int:
+        """Whole encoded chunk columns one thread holds (0: one chunk file at a time)."""
+        return 0
 
     def location(self) -> Path | None:
         """The folder the workers must reach, or None when the data travel with the tasks."""
@@ -87,9 +111,33 @@ class StoreSource(BlockSource):
         self.block_width = self.layout.chunk_cols
         self.value_kind = self.dataset.attrs.value_kind
         self._token: str | None = None
+        self._ahead: ReadAhead | None = None
+
+    @property
+    def remote(self) -> bool:
+        """On object storage, read through `read_block`'s own decoder (objects fetched whole)."""
+        return isinstance(self.dataset.path, RemotePath) and self.layout.fast
+
+    def encoded_columns(self, read_ahead: bool) -> int:
+        # On object storage a thread holds its block's objects while decoding them, and with reading
+        # ahead the next block's too.
+        return (2 if read_ahead else 1) if self.remote else 0
+
+    def start_reads(self, order: list[int], depth: int) -> None:
+        self.end_reads()
+        if self.remote and depth > 0 and order:
+            self._ahead = ReadAhead(self.dataset, self.layout, order, depth)
+
+    def end_reads(self) -> None:
+        ahead, self._ahead = self._ahead, None
+        if ahead is not None:
+            ahead.close()
 
     def read(self, i: int) -> np.ndarray:
         try:
+            ahead = self._ahead
+            if ahead is not None:
+                return ahead.read(i)
             return read_block(self.dataset, i, self.layout)
         except ChunkError:
             if not self.dataset.path.is_dir():
@@ -129,8 +177,9 @@ class StoreSource(BlockSource):
         return self._token
 
     def __getstate__(self) -> dict:
-        # Workers reopen nothing: the Dataset handle pickles as its path and attributes.
-        return self.__dict__
+        # Workers reopen nothing: the Dataset handle pickles as its path and attributes. Reading ahead
+        # belongs to the process that started it.
+        return {**self.__dict__, "_ahead": None}
 
     def describe(self) -> str:
         return f"{self.dataset.path} ({super().describe()})"

@@ -29,7 +29,7 @@ from ._outcome import (
     numeric_columns,
     read_outcome_table,
 )
-from ._reader import Block, ChunkError, ChunkLayout, prepare_block, read_block
+from ._reader import Block, ChunkError, ChunkLayout, ReadAhead, prepare_block, read_block
 
 __all__ = [
     "FORMAT_VERSION",
@@ -47,6 +47,7 @@ __all__ = [
     "JoinedOutcome",
     "OutcomeError",
     "OutcomeTable",
+    "ReadAhead",
     "RemotePath",
     "StoreError",
     "code_covariate_frame",

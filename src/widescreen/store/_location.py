@@ -5,7 +5,7 @@
 few `Path` operations the store code uses (``/``, ``name``, ``parent``, ``exists``, ``is_file``,
 ``is_dir``, ``read_text``) plus what object storage needs: a zarr store (`zarr_store`, zarr 3's
 `FsspecStore`), whole-object reads of many keys at once (`cat_many`, concurrent through fsspec's async
-``cat``), the tails of objects (`tails`, ranged reads) and the sizes of every object under a prefix in
+``cat``; `cat_many_later` requests them and returns at once, a `PendingObjects`), the tails of objects (`tails`, ranged reads) and the sizes of every object under a prefix in
 one listing (`sizes`). No other module parses URLs.
 
 Credentials and endpoints come only from the storage libraries' own environment variables and
@@ -17,6 +17,7 @@ manifest, so a URL carrying a user name or a secret (``s3://KEY:SECRET@bucket``)
 
 from __future__ import annotations
 
+import asyncio
 import re
 from pathlib import Path, PurePosixPath
 
@@ -240,6 +241,15 @@ class RemotePath:
             got = {keys[0]: got}
         return [got.get(k, FileNotFoundError(k)) for k in keys]
 
+    def cat_many_later(self, paths: list[RemotePath]) -> PendingObjects:
+        """Request every object now; `PendingObjects.result` waits and gives what `cat_many` gives.
+
+        On an asynchronous file system (s3fs, gcsfs, adlfs, http: every protocol fsspec reaches
+        remotely) the requests run on fsspec's own event loop beside the caller's work, with no thread
+        of their own; on another one they are made when the result is asked for.
+        """
+        return PendingObjects(self, paths)
+
     def tails(self, paths: list[RemotePath], n: int = 4) -> list[bytes | BaseException]:
         """The last ``n`` bytes of each object, by concurrent ranged reads."""
         keys = [p._path() for p in paths]
@@ -266,6 +276,38 @@ class RemotePath:
                 except FileNotFoundError:
                     continue
             return out
+
+
+class PendingObjects:
+    """The whole content of some objects, requested (`RemotePath.cat_many_later`), not yet waited for."""
+
+    def __init__(self, where: RemotePath, paths: list[RemotePath]) -> None:
+        self.where = where
+        self.paths = paths
+        self._future = None
+        with storage_errors(where):
+            fs = where.fs
+            if getattr(fs, "async_impl", False):
+                keys = [p._path() for p in paths]
+                self._future = asyncio.run_coroutine_threadsafe(
+                    fs._cat(keys, on_error="return"), fs.loop
+                )
+
+    def result(self) -> list[bytes | BaseException]:
+        """Each object's bytes, or the exception that reading it raised, in the order requested."""
+        if self._future is None:
+            return self.where.cat_many(self.paths)
+        keys = [p._path() for p in self.paths]
+        with storage_errors(self.where):
+            got = self._future.result()
+        if not isinstance(got, dict):  # a single key comes back as its bytes
+            got = {keys[0]: got}
+        return [got.get(k, FileNotFoundError(k)) for k in keys]
+
+    def cancel(self) -> None:
+        """Stop the requests still running (their bytes are not wanted)."""
+        if self._future is not None:
+            self._future.cancel()
 
 
 class storage_errors:

@@ -7,8 +7,9 @@ straight into a buffer kept per thread. Any other store goes through zarr's own 
 
 On object storage (a store given by URL, see `_location`) the same decoding applies: the row chunks of
 a chunk column are requested together (fsspec's concurrent ``cat``), each object's bytes verified
-(CRC-32C, position) and decoded into the thread's reused buffer; a pass's worker threads keep as many
-requests in flight as there are threads.
+(CRC-32C, position) and decoded into the thread's reused buffer. A pass reads through `ReadAhead`:
+while a thread computes a block, the objects of the next block in the scheduler's order are already
+in flight (at most one block ahead per worker thread).
 """
 
 from __future__ import annotations
@@ -23,7 +24,7 @@ import numpy as np
 
 from . import _accel, _checksum
 from ._format import MISSING_INT8, ChunkError, Dataset
-from ._location import RemotePath, describe_error
+from ._location import PendingObjects, RemotePath, describe_error
 
 # Decoding runs inside Dask worker threads; Blosc's own thread pool would oversubscribe the cores.
 blosc.use_threads = False
@@ -127,8 +128,22 @@ def _source_buffer(size: int) -> memoryview:
     return memoryview(buf)[:size]
 
 
-def read_block(ds: Dataset, col_chunk: int, layout: ChunkLayout | None = None) -> np.ndarray:
+def read_block(
+    ds: Dataset,
+    col_chunk: int,
+    layout: ChunkLayout | None = None,
+    *,
+    pending: PendingObjects | None = None,
+) -> np.ndarray:
     """Read one column of chunks of X (all samples, the features of chunk column ``col_chunk``).
+
+    Parameters
+    ----------
+    ds : Dataset
+    col_chunk : int
+    layout : ChunkLayout, optional
+    pending : PendingObjects, optional
+        The chunk column's objects already requested (`chunk_objects`; a store on object storage).
 
     Returns
     -------
@@ -155,9 +170,10 @@ def read_block(ds: Dataset, col_chunk: int, layout: ChunkLayout | None = None) -
     # zarr stores edge chunks at the full chunk shape, so every chunk decodes to the same size.
     buf = _scratch((n_row_chunks * layout.chunk_rows, layout.chunk_cols), layout.dtype, "block")
     paths = [layout.root / "c" / str(r) / str(col_chunk) for r in range(n_row_chunks)]
-    fetched = (
-        _fetch_objects(paths, layout, col_chunk) if isinstance(layout.root, RemotePath) else None
-    )
+    fetched = None
+    if isinstance(layout.root, RemotePath):
+        got = pending.result() if pending is not None else paths[0].cat_many(paths)
+        fetched = _check_objects(got, paths, layout, col_chunk)
     for r in range(n_row_chunks):
         rows = slice(r * layout.chunk_rows, (r + 1) * layout.chunk_rows)
         if fetched is None:
@@ -185,9 +201,77 @@ def _check_dosages(values: np.ndarray, layout: ChunkLayout, r: int, c: int, row0
     )
 
 
-def _fetch_objects(paths: list[RemotePath], layout: ChunkLayout, c: int) -> list[bytes]:
-    """The bytes of each chunk object of a chunk column, requested concurrently."""
-    got = paths[0].cat_many(paths)
+def chunk_objects(layout: ChunkLayout, col_chunk: int) -> PendingObjects:
+    """Request the objects of a chunk column of a store on object storage, for `read_block` later."""
+    n_row_chunks = -(-layout.n_rows // layout.chunk_rows)
+    paths = [layout.root / "c" / str(r) / str(col_chunk) for r in range(n_row_chunks)]
+    return paths[0].cat_many_later(paths)
+
+
+class ReadAhead:
+    """Chunk columns of a store on object storage requested before a worker thread asks for them.
+
+    A pass gives the blocks it will read in the order it is likely to read them (``order``) and its
+    number of worker threads (``depth``). Reading a block takes its objects if they were requested
+    already (else requests them first), then requests the next blocks of the order not yet requested
+    while fewer than ``depth`` are held ahead: at most one block ahead per worker thread, so a thread's
+    next block is in flight while it computes the current one. Only the encoded bytes are held ahead
+    (at most ``depth`` chunk columns of them, counted in the memory plan); each thread still verifies
+    and decodes its block into its own reused buffers, so the values are those of `read_block`.
+    """
+
+    def __init__(self, ds: Dataset, layout: ChunkLayout, order, depth: int) -> None:
+        if not isinstance(layout.root, RemotePath) or not layout.fast:
+            raise ValueError("reading ahead is for stores on object storage in the fast format")
+        self.ds = ds
+        self.layout = layout
+        self.depth = max(0, int(depth))
+        self._order = [int(c) for c in order]
+        self._next = 0  # position in the order of the next block that may be requested ahead
+        self._requested: set[int] = set()
+        self._ahead: dict[int, PendingObjects] = {}
+        self._lock = threading.Lock()
+        self._closed = False
+        self.reads = self.hits = 0  # blocks read, and those among them that were requested ahead
+
+    def read(self, col_chunk: int) -> np.ndarray:
+        """`read_block` of ``col_chunk`` (the same view of the thread's reused buffer)."""
+        with self._lock:
+            pending = self._ahead.pop(col_chunk, None)
+            self.reads += 1
+            self.hits += pending is not None
+            if pending is None:  # not guessed: requested before the blocks ahead, waited for first
+                pending = chunk_objects(self.layout, col_chunk)
+                self._requested.add(col_chunk)
+            self._fill()
+        return read_block(self.ds, col_chunk, self.layout, pending=pending)
+
+    def _fill(self) -> None:
+        while not self._closed and len(self._ahead) < self.depth and self._next < len(self._order):
+            c = self._order[self._next]
+            self._next += 1
+            if c not in self._requested:
+                self._requested.add(c)
+                self._ahead[c] = chunk_objects(self.layout, c)
+
+    @property
+    def held(self) -> int:
+        """Chunk columns requested ahead and not yet read."""
+        return len(self._ahead)
+
+    def close(self) -> None:
+        """Stop the requests ahead and drop their bytes (the pass ended, or stopped early)."""
+        with self._lock:
+            self._closed = True
+            for pending in self._ahead.values():
+                pending.cancel()
+            self._ahead.clear()
+
+
+def _check_objects(
+    got: list[bytes | BaseException], paths: list[RemotePath], layout: ChunkLayout, c: int
+) -> list[bytes]:
+    """The bytes of each chunk object of a chunk column, or the error naming the first unreadable."""
     for r, item in enumerate(got):
         if isinstance(item, FileNotFoundError):
             raise ChunkError(f"missing {layout.where(r, c)}: the store is damaged; import it again")
