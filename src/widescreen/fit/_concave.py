@@ -88,15 +88,20 @@ def kkt_violation(
 #: Newton steps legitimately take longer to settle.
 _IRLS_PATIENCE = 25
 
-#: Consecutive working problems of a GLM point that end unconverged (all ``max_iter`` sweeps spent)
-#: before the point is taken as not settling: each costs the whole sweep budget, and on the bench path
-#: a point that did so was always one the path then dropped.
+#: Consecutive failed IRLS iterations of a GLM point before the point is taken as not settling. An
+#: iteration fails when its working problem ends unconverged (all ``max_iter`` sweeps spent) or when no
+#: halving of its step lowers the penalised objective (the working problem's minimiser is no descent
+#: direction, and the next working problem, built at nearly the same point, is nearly the same). On the
+#: bench path such a point was always one the path then dropped after ``_IRLS_PATIENCE`` iterations.
 _STUCK_SOLVES = 2
 
-#: Coordinate descent sweeps between attempts of the Newton polish.
+#: Coordinate descent sweeps between the first attempts of the Newton polish.
 _BURST = 5
-#: Polish attempts per solve: where a pattern's quadratic is not convex (a GLM's small working weights
-#: under a concave piece) the polish cannot apply, and the sweeps alone finish the solve.
+#: Polish attempts after bursts of `_BURST` sweeps; after them the bursts double, so a solve spends
+#: at most about log2(max_iter / _BURST) more attempts. Where a pattern's quadratic is not convex (a
+#: GLM's small working weights under a concave piece) the polish cannot apply and the sweeps finish the
+#: solve; where the sweeps converge linearly with a rate near 1 (an ill-conditioned pattern, a path
+#: nearing saturation), a later attempt, once the pattern has settled, ends thousands of sweeps early.
 _POLISH_TRIES = 3
 
 
@@ -156,7 +161,31 @@ def _pieces(t: np.ndarray, lam: float, kind: int, conc: float):
     return slope, curv, lo, hi
 
 
-def _polish(st: _State, z, w, r, lam: float, kind: int, conc: float, rounds: int = 20) -> bool:
+class _Normal:
+    """Normal equations ``X_A^T W X_A / n`` and ``X_A^T W t / n`` of one working problem's columns ``A``.
+
+    Made at the first polish of a round of sweeps and shared by its later polishes and their rounds
+    (each takes its pattern's rows and columns), instead of one weighted product per polish round.
+    """
+
+    def __init__(self, st: _State, w: np.ndarray, target: np.ndarray, cols: np.ndarray):
+        self.pos = np.full(st.XC.shape[1], -1)
+        self.pos[cols] = np.arange(cols.size)
+        B = st.XC[:, cols] * np.sqrt(w)[:, None]
+        self.gram = B.T @ B / st.n  # a symmetric rank-k product (half the work of X^T W X)
+        self.rhs = st.XC[:, cols].T @ (w * target) / st.n
+
+    def take(self, U: np.ndarray):
+        """``(M, rhs)`` of the columns ``U`` (fresh arrays), or None when one is not among ``A``."""
+        at = self.pos[U]
+        if np.any(at < 0):
+            return None
+        return self.gram[np.ix_(at, at)], self.rhs[at]
+
+
+def _polish(
+    st: _State, z, w, r, lam: float, kind: int, conc: float, normal=None, rounds: int = 20
+) -> bool:
     """Exact solve on a pattern of zeros, signs and penalty pieces (a Newton step), iterated.
 
     Within one piece SCAD and MCP are linear or quadratic in ``|b_j|``, so with the zero set, the signs
@@ -164,7 +193,8 @@ def _polish(st: _State, z, w, r, lam: float, kind: int, conc: float, rounds: int
     one linear system. When the solution leaves the pattern (a sign flips, a piece changes), the pattern
     is taken from the solution and the system solved again, as primal-dual active-set methods do for the
     lasso. A solution that stays in its own pattern is kept (``st.beta`` and ``r`` updated in place;
-    returns True); the caller still confirms it with a coordinate sweep.
+    returns True); the caller still confirms it with a coordinate sweep. ``normal`` (a `_Normal` of
+    the working problem) supplies the systems of a GLM's working problem.
     """
     d, n = st.d, st.n
     beta = st.beta
@@ -178,10 +208,12 @@ def _polish(st: _State, z, w, r, lam: float, kind: int, conc: float, rounds: int
         if st.gram is not None:
             M = st.gram[np.ix_(U, U)]
             rhs = st.xtz[U]
-        else:
+        elif normal is None or (taken := normal.take(U)) is None:
             XU = st.XC[:, U]
             M = (XU.T * w) @ XU / n
             rhs = XU.T @ (w * target) / n
+        else:
+            M, rhs = taken
         m = pen_nz.size
         slope, curv, lo, hi = _pieces(t, lam, kind, conc)
         M[np.arange(m), np.arange(m)] += curv  # M and rhs are fresh arrays (fancy indexing copies)
@@ -229,23 +261,28 @@ def _solve_working(st: _State, z, w, active, lam, kind, conc, opts: SolverOption
         free = idx >= d
         args = (st.XC, r, w, st.beta, idx, xwx, free, lam, kind, conc)
         sweeps_left = opts.max_iter
-        tries = _POLISH_TRIES
+        burst = _BURST
+        tries = 0
+        normal = None
         while sweeps_left > 0:
             # A few sweeps settle which coefficients are non-zero and in which piece; the polish
             # then solves that pattern exactly, and one more sweep confirms that no coordinate moves.
-            done, change = _cd.sweeps(*args, min(_BURST, sweeps_left), opts.tol)
+            done, change = _cd.sweeps(*args, min(burst, sweeps_left), opts.tol)
             sweeps_left -= done
             if change < opts.tol:
                 ok = True
                 break
-            if tries > 0:
-                tries -= 1
-                if _polish(st, z, w, r, lam, kind, conc):
-                    done, change = _cd.sweeps(*args, 1, opts.tol)
-                    sweeps_left -= done
-                    if change < opts.tol:
-                        ok = True
-                        break
+            tries += 1
+            if tries > _POLISH_TRIES:
+                burst *= 2
+            if normal is None and st.gram is None:
+                normal = _Normal(st, w, z - st.p.offset, idx)
+            if _polish(st, z, w, r, lam, kind, conc, normal):
+                done, change = _cd.sweeps(*args, 1, opts.tol)
+                sweeps_left -= done
+                if change < opts.tol:
+                    ok = True
+                    break
         # Features outside the active set: at b_j = 0 the condition is |x_j^T W r| / n <= lambda.
         grad = np.abs(st.XC[:, :d].T @ (w * r)) / n
         viol = st.eligible & ~active & (grad > lam * (1.0 + 1e-9))
@@ -282,7 +319,8 @@ def concave_path(
     lam_prev = float(lam[0])
     kkt_scale = opts.kkt_tol * float(lam[0])
     outer_max = opts.outer_max_iter
-    if loss.name in ("binomial", "poisson"):
+    glm = loss.name in ("binomial", "poisson")
+    if glm:
         outer_max = min(outer_max, _IRLS_PATIENCE)
     for level in lam:
         level = float(level)
@@ -301,15 +339,18 @@ def concave_path(
             if loss.quadratic:
                 settled = True
                 break
-            stuck = 0 if solved else stuck + 1
-            if loss.name in ("binomial", "poisson") and stuck >= _STUCK_SOLVES:
-                # Working problems that exhaust their sweeps one after another: the coefficients
-                # are drifting along a flat direction (a point running away), as `_IRLS_PATIENCE`.
-                break
+            if not solved:
+                stuck += 1
+                if glm and stuck >= _STUCK_SOLVES:
+                    # Working problems that exhaust their sweeps one after another: the coefficients
+                    # are drifting along a flat direction (a point running away), as `_IRLS_PATIENCE`.
+                    break
             st.eta = st.linear_predictor(st.beta)  # exact, free of the sweeps' rounding
             new_obj = st.objective(pen, st.beta, st.eta, level)
+            descended = False
             for _ in range(20):  # step halving: the penalised objective must not rise
                 if np.isfinite(new_obj) and new_obj <= obj + 1e-12 * abs(obj):
+                    descended = True
                     break
                 st.beta = 0.5 * (st.beta + beta_old)
                 st.eta = st.linear_predictor(st.beta)
@@ -329,6 +370,12 @@ def concave_path(
             if small or flat:
                 settled = True
                 break
+            if solved and descended:
+                stuck = 0
+            elif solved:  # every halving raised the objective (see `_STUCK_SOLVES`)
+                stuck += 1
+                if glm and stuck >= _STUCK_SOLVES:
+                    break
         b = st.beta[:d]
         if stop or not np.all(np.isfinite(st.beta)):
             break
