@@ -162,24 +162,35 @@ def _pieces(t: np.ndarray, lam: float, kind: int, conc: float):
 
 
 class _Normal:
-    """Normal equations ``X_A^T W X_A / n`` and ``X_A^T W t / n`` of one working problem's columns ``A``.
+    """Normal equations ``X_U^T W X_U / n`` and ``X_U^T W t / n`` of one working problem's columns.
 
-    Made at the first polish of a round of sweeps and shared by its later polishes and their rounds
-    (each takes its pattern's rows and columns), instead of one weighted product per polish round.
+    Shared by the polishes of one round of sweeps, instead of one weighted product per polish round:
+    made first for the pattern polished first (often the only one), then, if a later pattern leaves
+    it, for every column of the round (``cols``: the sweeps keep the non-zeros among them).
     """
 
     def __init__(self, st: _State, w: np.ndarray, target: np.ndarray, cols: np.ndarray):
+        self.st, self.w, self.target, self.cols = st, w, target, cols
         self.pos = np.full(st.XC.shape[1], -1)
-        self.pos[cols] = np.arange(cols.size)
-        B = st.XC[:, cols] * np.sqrt(w)[:, None]
-        self.gram = B.T @ B / st.n  # a symmetric rank-k product (half the work of X^T W X)
-        self.rhs = st.XC[:, cols].T @ (w * target) / st.n
+        self.gram = self.rhs = None
+
+    def _make(self, U: np.ndarray) -> None:
+        st = self.st
+        XU = st.XC[:, U]
+        B = XU * np.sqrt(self.w)[:, None]
+        self.gram = B.T @ B / st.n  # a symmetric rank-k product: half the work of X^T W X
+        self.rhs = XU.T @ (self.w * self.target) / st.n
+        self.pos[:] = -1
+        self.pos[U] = np.arange(U.size)
 
     def take(self, U: np.ndarray):
-        """``(M, rhs)`` of the columns ``U`` (fresh arrays), or None when one is not among ``A``."""
+        """``(M, rhs)`` of the columns ``U`` (fresh arrays)."""
+        if self.gram is None:
+            self._make(U)
+        elif np.any(self.pos[U] < 0):
+            self._make(np.union1d(self.cols, U) if self.cols is not None else U)
+            self.cols = None
         at = self.pos[U]
-        if np.any(at < 0):
-            return None
         return self.gram[np.ix_(at, at)], self.rhs[at]
 
 
@@ -208,12 +219,12 @@ def _polish(
         if st.gram is not None:
             M = st.gram[np.ix_(U, U)]
             rhs = st.xtz[U]
-        elif normal is None or (taken := normal.take(U)) is None:
+        elif normal is not None:
+            M, rhs = normal.take(U)
+        else:
             XU = st.XC[:, U]
             M = (XU.T * w) @ XU / n
             rhs = XU.T @ (w * target) / n
-        else:
-            M, rhs = taken
         m = pen_nz.size
         slope, curv, lo, hi = _pieces(t, lam, kind, conc)
         M[np.arange(m), np.arange(m)] += curv  # M and rhs are fresh arrays (fancy indexing copies)
