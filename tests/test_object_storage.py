@@ -376,15 +376,6 @@ def test_simulate_writes_to_s3(s3_server, tmp_path, monkeypatch):
     assert sim.dataset.shape == (60, 100)
 
 
-def test_run_folder_url_is_refused(study):
-    res = runner.invoke(
-        app,
-        _args("screen", study["url"], study["sim"].outcome_path, f"s3://{BUCKET}/run"),  # type: ignore[arg-type]
-    )
-    assert res.exit_code != 0
-    assert "a run folder cannot be on object storage" in res.output
-
-
 # ------------------------------------------------------------------------------------------------
 # a Dask cluster of separate processes, reading the store from the S3 server
 

@@ -9,6 +9,7 @@ from __future__ import annotations
 import functools
 import os
 import sys
+from pathlib import Path
 from typing import Annotated
 
 import typer
@@ -213,6 +214,15 @@ def first_lambda_gc(iterations: list[dict]) -> float | None:
     """lambda_GC of a run's first screening pass, as its iteration record holds it."""
     first = iterations[0]["threshold"] if iterations else []
     return first[0].get("lambda_gc") if first else None
+
+
+def shown_path(out, here, path) -> str:
+    """``path`` (a file of the local folder ``here`` a run worked in) as the user names it: under
+    ``out``, the run folder as given (a URL for a run folder on object storage)."""
+    try:
+        return str(out / Path(path).relative_to(here))
+    except ValueError:
+        return str(path)
 
 
 def lambda_gc_line(value: float) -> str:

@@ -112,14 +112,15 @@ def cv_folds_check(value: int) -> int:
 # options shared by `screen` and `run`
 
 
-def run_folder(value: str | None) -> Path | None:
-    """The run folder as a Path; an object-storage URL is refused with the reason."""
+def run_folder(value: str | None):
+    """The run folder: a Path, or a `RemotePath` on object storage that can hold a run folder (a
+    protocol without conditional writes is refused with the reason)."""
     if value is None:
         return None
-    from ..engine import RunFolderError, run_folder_path
+    from ..engine import RunFolderError, run_folder_target
 
     try:
-        return run_folder_path(value)
+        return run_folder_target(value)
     except RunFolderError as exc:
         raise typer.BadParameter(str(exc)) from None
 
@@ -152,7 +153,8 @@ OutOpt = Annotated[
     typer.Option(
         "--out",
         metavar="FOLDER",
-        help="Run folder for the results (resumed if it exists); a local or shared folder.",
+        help="Run folder for the results (resumed if it exists): a folder, or an s3:// URL "
+        "(worked on in a local copy, uploaded as the run goes).",
         callback=run_folder,
     ),
 ]

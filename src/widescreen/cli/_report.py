@@ -2,19 +2,23 @@
 
 from __future__ import annotations
 
-from pathlib import Path
 from typing import Annotated
 
 import typer
 
-from ._app import command, lambda_gc_line
-from ._options import at_least
+from ._app import command, lambda_gc_line, shown_path
+from ._options import at_least, run_folder
 
 
 @command("report")
 def report_cmd(
     run: Annotated[
-        Path, typer.Argument(metavar="RUN", help="Run folder of a finished `screen` or `run`.")
+        str,
+        typer.Argument(
+            metavar="RUN",
+            help="Run folder of a finished `screen` or `run` (a folder or an s3:// URL).",
+            callback=run_folder,
+        ),
     ],
     top: Annotated[
         int,
@@ -27,11 +31,13 @@ def report_cmd(
     ] = 50,
 ) -> None:
     """Write RUN/report.html (pictures embedded) and the pictures as PNG under RUN/figures/."""
+    from ..engine import staged_run_folder
     from ..report._build import make_report
 
-    files = make_report(run, top)
-    typer.echo(f"report: {files.html}")
-    for path in files.figures:
-        typer.echo(f"figure: {path}")
+    with staged_run_folder(run) as here:
+        files = make_report(here, top)
+        typer.echo(f"report: {shown_path(run, here, files.html)}")
+        for path in files.figures:
+            typer.echo(f"figure: {shown_path(run, here, path)}")
     if files.lambda_gc is not None:
         typer.echo(lambda_gc_line(files.lambda_gc))

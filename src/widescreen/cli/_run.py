@@ -13,6 +13,7 @@ from ._app import (
     first_lambda_gc,
     lambda_gc_line,
     scheduler_of,
+    shown_path,
 )
 from ._options import (
     CovariatesOpt,
@@ -199,49 +200,57 @@ def run_cmd(
         stability_threshold=stability_threshold,
         cv_folds=cv_folds,
     )
-    result = run(
-        store,
-        outcome,
-        config,
-        out,
-        scheduler=scheduler_of(workers, scheduler),
-        progress=lambda name: progress_display(
-            name, quiet, unit="refits" if name.endswith("refits") else "blocks"
-        ),
-        restart=restart,
-        memory_budget=budget_of(memory_budget),
-    )
-    if hasattr(result, "names"):  # several traits
-        from ._traits import echo_traits
+    from ..engine import staged_run_folder
 
-        echo_traits(result, out, report)
-        return
-    rep = result.problem.samples
-    shown = ", ".join(str(f) for f in result.feature_ids[:10])
-    more = f" and {result.index.size - 10} more" if result.index.size > 10 else ""
-    typer.echo(
-        f"{len(result.iterations)} iteration(s) on {rep['n_analysed']} samples, size budget "
-        f"{result.budget}; stopped: {result.stop_reason}; selected {result.index.size} "
-        f"feature(s){': ' + shown + more if shown else ''}; model in {out / 'model.tsv'}"
-    )
-    lam = first_lambda_gc(result.iterations)
-    if lam is not None:
-        typer.echo(lambda_gc_line(lam))
-    stab = result.extra.get("stability")
-    if stab is not None:
-        ss = "" if stab.bound_ss is None else f", {stab.bound_ss:.3g} if unimodal (Shah-Samworth)"
-        typer.echo(
-            f"stability selection over {2 * stab.n_pairs} half-samples: {stab.stable.size} "
-            f"feature(s) selected in at least {stab.threshold:g} of them; expected false "
-            f"selections <= {stab.bound_mb:.3g} (Meinshausen-Buhlmann){ss}; "
-            f"in {out / 'stability.tsv'}"
+    # A run folder on object storage is worked on in a local copy, uploaded as the run goes.
+    with staged_run_folder(out) as here:
+        result = run(
+            store,
+            outcome,
+            config,
+            here,
+            scheduler=scheduler_of(workers, scheduler),
+            progress=lambda name: progress_display(
+                name, quiet, unit="refits" if name.endswith("refits") else "blocks"
+            ),
+            restart=restart,
+            memory_budget=budget_of(memory_budget),
         )
-    cv = result.extra.get("cv")
-    if cv is not None:
-        typer.echo(f"{cv.text()}; per fold in {out / 'cv.tsv'}")
-    for warning in result.warnings:
-        typer.echo(f"warning: {warning}", err=True)
-    if report:
-        from ..report import build_report
+        if hasattr(result, "names"):  # several traits
+            from ._traits import echo_traits
 
-        typer.echo(f"report: {build_report(out)}")
+            echo_traits(result, out, report, here)
+            return
+        rep = result.problem.samples
+        shown = ", ".join(str(f) for f in result.feature_ids[:10])
+        more = f" and {result.index.size - 10} more" if result.index.size > 10 else ""
+        typer.echo(
+            f"{len(result.iterations)} iteration(s) on {rep['n_analysed']} samples, size budget "
+            f"{result.budget}; stopped: {result.stop_reason}; selected {result.index.size} "
+            f"feature(s){': ' + shown + more if shown else ''}; model in {out / 'model.tsv'}"
+        )
+        lam = first_lambda_gc(result.iterations)
+        if lam is not None:
+            typer.echo(lambda_gc_line(lam))
+        stab = result.extra.get("stability")
+        if stab is not None:
+            ss = (
+                ""
+                if stab.bound_ss is None
+                else f", {stab.bound_ss:.3g} if unimodal (Shah-Samworth)"
+            )
+            typer.echo(
+                f"stability selection over {2 * stab.n_pairs} half-samples: {stab.stable.size} "
+                f"feature(s) selected in at least {stab.threshold:g} of them; expected false "
+                f"selections <= {stab.bound_mb:.3g} (Meinshausen-Buhlmann){ss}; "
+                f"in {out / 'stability.tsv'}"
+            )
+        cv = result.extra.get("cv")
+        if cv is not None:
+            typer.echo(f"{cv.text()}; per fold in {out / 'cv.tsv'}")
+        for warning in result.warnings:
+            typer.echo(f"warning: {warning}", err=True)
+        if report:
+            from ..report import build_report
+
+            typer.echo(f"report: {shown_path(out, here, build_report(here))}")

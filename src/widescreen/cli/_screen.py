@@ -6,7 +6,7 @@ from typing import Annotated
 
 import typer
 
-from ._app import budget_of, command, covariates_of, lambda_gc_line, scheduler_of
+from ._app import budget_of, command, covariates_of, lambda_gc_line, scheduler_of, shown_path
 from ._options import (
     CovariatesOpt,
     DropMissingOpt,
@@ -72,40 +72,44 @@ def screen_cmd(
         drop_missing=drop_missing,
         drop_rare=drop_rare,
     )
-    result = screen(
-        store,
-        outcome,
-        config,
-        out,
-        scheduler=scheduler_of(workers, scheduler),
-        progress=progress_display("screen", quiet),
-        restart=restart,
-        memory_budget=budget_of(memory_budget),
-    )
-    if hasattr(result, "names"):  # several traits
-        from ._traits import echo_traits
+    from ..engine import staged_run_folder
 
-        echo_traits(result, out, report)
-        return
-    s = result.pass_result
-    rep = result.problem.samples
-    typer.echo(
-        f"screened {s.n_features} features on {rep['n_analysed']} samples "
-        f"({rep['n_dropped_missing']} dropped for missing values, {rep['n_unknown_ids']} unknown ids); "
-        f"{s.n_filtered} filtered, {s.n_constant} constant, {s.n_degenerate} degenerate, "
-        f"{s.n_nonfinite} not finite; shortlist of {result.index.size} "
-        f"in {out / 'ranking.tsv'}"
-        + (
-            f" [resumed {s.blocks_reused} of {s.blocks_reused + s.blocks_computed} blocks]"
-            if s.blocks_reused
-            else ""
+    # A run folder on object storage is worked on in a local copy, uploaded as the run goes.
+    with staged_run_folder(out) as here:
+        result = screen(
+            store,
+            outcome,
+            config,
+            here,
+            scheduler=scheduler_of(workers, scheduler),
+            progress=progress_display("screen", quiet),
+            restart=restart,
+            memory_budget=budget_of(memory_budget),
         )
-    )
-    if result.lambda_gc is not None:
-        typer.echo(lambda_gc_line(result.lambda_gc))
-    if result.notice:
-        typer.echo(f"note: {result.notice}", err=True)
-    if report:
-        from ..report import build_report
+        if hasattr(result, "names"):  # several traits
+            from ._traits import echo_traits
 
-        typer.echo(f"report: {build_report(out)}")
+            echo_traits(result, out, report, here)
+            return
+        s = result.pass_result
+        rep = result.problem.samples
+        typer.echo(
+            f"screened {s.n_features} features on {rep['n_analysed']} samples "
+            f"({rep['n_dropped_missing']} dropped for missing values, {rep['n_unknown_ids']} unknown ids); "
+            f"{s.n_filtered} filtered, {s.n_constant} constant, {s.n_degenerate} degenerate, "
+            f"{s.n_nonfinite} not finite; shortlist of {result.index.size} "
+            f"in {out / 'ranking.tsv'}"
+            + (
+                f" [resumed {s.blocks_reused} of {s.blocks_reused + s.blocks_computed} blocks]"
+                if s.blocks_reused
+                else ""
+            )
+        )
+        if result.lambda_gc is not None:
+            typer.echo(lambda_gc_line(result.lambda_gc))
+        if result.notice:
+            typer.echo(f"note: {result.notice}", err=True)
+        if report:
+            from ..report import build_report
+
+            typer.echo(f"report: {shown_path(out, here, build_report(here))}")

@@ -6,9 +6,16 @@ from pathlib import Path
 
 import typer
 
+from ._app import shown_path
 
-def echo_traits(result, out: Path, report: bool) -> None:
-    """One line for the shared pass, one per trait, then a report per trait folder."""
+
+def echo_traits(result, out, report: bool, here: Path | None = None) -> None:
+    """One line for the shared pass, one per trait, then a report per trait folder.
+
+    ``out`` is the run folder as given (a path or a URL), ``here`` the local folder the run worked in
+    (its local copy for a URL; ``out`` itself by default).
+    """
+    here = Path(out) if here is None else here
     s = result.pass_result
     if s is not None:
         typer.echo(
@@ -33,4 +40,4 @@ def echo_traits(result, out: Path, report: bool) -> None:
         from ..report import build_report
 
         for name in result.names:
-            typer.echo(f"report: {build_report(out / 'traits' / name)}")
+            typer.echo(f"report: {shown_path(out, here, build_report(here / 'traits' / name))}")

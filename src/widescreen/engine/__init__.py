@@ -3,6 +3,7 @@ memory plans."""
 
 from ._block import process_block, read_marker
 from ._columns import Columns, read_columns
+from ._lease import Lease, LeaseLost
 from ._memory import (
     BASELINE_BYTES,
     BlockShape,
@@ -26,6 +27,7 @@ from ._runfolder import (
 from ._scheduler import Executor, WorkerAccessError, execute, n_cores, open_executor
 from ._source import ArraySource, BlockSource, StoreSource, as_source
 from ._spec import ENGINE_COLUMNS, FeatureFilter, PassResult, PassSpec
+from ._staging import StagedRun, local_copy_path, run_folder_target, staged_run_folder
 from ._topk import MultiTopK, TopK, block_topk, block_topk_multi, merge_all, merge_multi, merge_topk
 
 __all__ = [
@@ -37,6 +39,8 @@ __all__ = [
     "Columns",
     "Executor",
     "FeatureFilter",
+    "Lease",
+    "LeaseLost",
     "MemoryBudgetError",
     "MemoryPlan",
     "MultiTopK",
@@ -45,6 +49,7 @@ __all__ = [
     "RunFolder",
     "RunFolderError",
     "RunLock",
+    "StagedRun",
     "StoreSource",
     "TopK",
     "WorkerAccessError",
@@ -56,6 +61,7 @@ __all__ = [
     "build_pass",
     "diff_config",
     "execute",
+    "local_copy_path",
     "merge_all",
     "merge_multi",
     "merge_topk",
@@ -70,7 +76,9 @@ __all__ = [
     "read_stats",
     "reduce_blocks",
     "run_folder_path",
+    "run_folder_target",
     "run_pass",
+    "staged_run_folder",
     "stream_combine",
     "sum_arrays",
     "thread_bytes",

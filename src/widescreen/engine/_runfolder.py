@@ -192,20 +192,19 @@ class RunLock:
 
 
 def run_folder_path(target: str | os.PathLike) -> Path:
-    """The folder of a run, refusing an object-storage URL with the reason.
+    """The local folder of a run, refusing a URL.
 
-    A run folder's guarantees rest on an ``flock`` held for the life of the process (dropped by the
+    A `RunFolder`'s guarantees rest on an ``flock`` held for the life of the process (dropped by the
     kernel when it dies) and on atomic renames (a table, a manifest or a statistics chunk is whole or
-    absent). Object storage has neither: no lock that ends with its holder, no rename. Until a lease on
-    a conditionally created lock object replaces them, a run folder must be a local or shared folder;
-    the store may still be a URL (the common case: data in a bucket, results on this machine).
+    absent), so it is always a local or shared folder. A run folder on object storage is worked on
+    in a local copy (`widescreen.engine.staged_run_folder`, which `open_session` and the CLI use).
     """
     from ..store import is_url
 
     if is_url(str(target)):
         raise RunFolderError(
-            f"{target}: a run folder cannot be on object storage (its lock and its whole-or-absent "
-            "files need a file system); give a local or shared folder, the store may stay a URL"
+            f"{target}: a RunFolder is a local or shared folder; a run folder on object storage is "
+            "worked on through its local copy (widescreen.engine.staged_run_folder)"
         )
     return Path(target)
 

@@ -27,6 +27,7 @@ from ..schema import (
     RunLayout,
     read_table,
 )
+from ..store import is_url
 from . import _plots
 from ._scan import Counts, PValueScan, RankSelector, ScoreHistogram, scan
 from ._stats import GENOME_WIDE, lambda_from_middle, order_band, qq_from_histogram
@@ -585,7 +586,8 @@ def make_report(
 
     Parameters
     ----------
-    run_dir : path of the run folder
+    run_dir : path of the run folder, or its s3:// URL (the report is built in the folder's local
+        copy, `widescreen.engine.local_copy_path`, and uploaded; the paths returned are the copy's)
     top : int
         Rows of the ranking table shown on the page.
     threshold : float
@@ -597,6 +599,11 @@ def make_report(
 
     if isinstance(top, bool) or not isinstance(top, int | np.integer) or top < 1:
         raise ReportError(f"The 'top' parameter must be a positive int; got {top!r}.")
+    if is_url(str(run_dir)):
+        from ..engine import staged_run_folder
+
+        with staged_run_folder(run_dir) as here:
+            return make_report(here, top, threshold=threshold, max_points=max_points)
     run, manifest = open_finished_run(run_dir)
     layout = RunLayout(run.path)
     summary = RunSummary(

@@ -20,6 +20,7 @@ from dataclasses import dataclass, field
 from pathlib import Path
 
 from .._version import __version__
+from ..engine import StagedRun, local_copy_path, run_folder_target
 from ..engine._runfolder import (
     RESERVE_BYTES,
     RunFolder,
@@ -126,6 +127,8 @@ class RunSession:
     manifest: dict
     resumed: bool
     t0: float = field(default_factory=time.perf_counter)
+    #: For a run folder on object storage: the bucket side of the local copy this session works in.
+    staged: StagedRun | None = None
 
     def save(self) -> None:
         self.run.write_manifest(self.manifest)
@@ -166,6 +169,9 @@ class RunSession:
     def close(self) -> None:
         self.run.release_reserve()
         self.lock.release()
+        if self.staged is not None:
+            staged, self.staged = self.staged, None
+            staged.close()  # the last upload, then the lease is released
 
     def __enter__(self) -> RunSession:
         return self
@@ -209,12 +215,29 @@ def open_session(
 
     Parameters
     ----------
-    out : path of the run folder
+    out : path of the run folder, or its URL on object storage (s3://...): the session then works
+        in a local copy kept in step with the bucket (`widescreen.engine.StagedRun`)
     command : the workflow ("screen" or "run")
     config : the full configuration, as recorded
     dataset : {"path": ..., "fingerprint": ...} of the store
     restart : discard whatever the folder holds and start over
     """
+    staged = None
+    where = run_folder_target(out)
+    if not isinstance(where, Path):
+        staged = StagedRun(where, local_copy_path(where))
+        out = staged.open()
+    try:
+        session = _open_local(out, command, config, dataset, restart=restart)
+    except BaseException:
+        if staged is not None:
+            staged.close()
+        raise
+    session.staged = staged
+    return session
+
+
+def _open_local(out, command: str, config: dict, dataset: dict, *, restart: bool) -> RunSession:
     run = RunFolder(out)
     if run.path.exists() and not run.path.is_dir():
         raise RunFolderError(f"{run.path}: exists and is not a folder")
