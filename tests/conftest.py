@@ -8,6 +8,8 @@ import pytest
 from widescreen.families import FAMILY_NAMES
 from widescreen.store import DatasetWriter
 
+from .s3_kit import s3_server  # noqa: F401  (one S3 server per session, for the tests that ask)
+
 
 def write_store(path, X, *, chunk_features=None, sample_ids=None, feature_ids=None):
     """Write an array to a store (int8 -> dosage, float -> continuous)."""

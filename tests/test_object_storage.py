@@ -1,7 +1,7 @@
 """Stores on object storage, and a real Dask cluster, against servers started here on localhost.
 
-An S3-compatible server (moto's server mode) runs as a subprocess for this module; the endpoint and
-dummy credentials reach the storage library through its usual environment variables
+An S3-compatible server (moto's server mode, `s3_kit`) runs as a subprocess for the test session; the
+endpoint and dummy credentials reach the storage library through its usual environment variables
 (``AWS_ENDPOINT_URL``, ``AWS_ACCESS_KEY_ID``, ...), as a user's would. A Dask scheduler and two
 single-threaded workers run as separate processes (the ``dask scheduler`` / ``dask worker``
 commands). Small data: 200 samples x 800 int8 features in chunks of 16 (50 blocks).
@@ -15,11 +15,9 @@ from __future__ import annotations
 import os
 import shutil
 import signal
-import socket
 import subprocess
 import sys
 import time
-import urllib.request
 from pathlib import Path
 
 import numpy as np
@@ -30,75 +28,14 @@ from widescreen.cli import app
 from widescreen.simulate import SimulationConfig, simulate
 from widescreen.store import ChunkError, StoreError, open_dataset
 
+from .s3_kit import BUCKET, free_port, stop_process
+
 pytestmark = pytest.mark.slow
 pytest.importorskip("s3fs")
 pytest.importorskip("moto.server")
 
-BUCKET = "widescreen-test"
 CLI = [sys.executable, "-c", "from widescreen.cli import main; main()"]
 runner = CliRunner()
-
-
-def _free_port() -> int:
-    with socket.socket() as s:
-        s.bind(("127.0.0.1", 0))
-        return int(s.getsockname()[1])
-
-
-def _stop(proc: subprocess.Popen) -> None:
-    if proc.poll() is None:
-        proc.terminate()
-        try:
-            proc.wait(timeout=10)
-        except subprocess.TimeoutExpired:
-            proc.kill()
-            proc.wait()
-
-
-@pytest.fixture(scope="module")
-def s3_server(tmp_path_factory):
-    """A moto S3 server on a free port; its endpoint and dummy credentials in the environment."""
-    port = _free_port()
-    log = open(tmp_path_factory.mktemp("moto") / "server.log", "w")
-    proc = subprocess.Popen(
-        [sys.executable, "-m", "moto.server", "-H", "127.0.0.1", "-p", str(port)],
-        stdout=log,
-        stderr=subprocess.STDOUT,
-    )
-    endpoint = f"http://127.0.0.1:{port}"
-    env = {
-        "AWS_ENDPOINT_URL": endpoint,
-        "AWS_ACCESS_KEY_ID": "testing",
-        "AWS_SECRET_ACCESS_KEY": "testing",
-        "AWS_DEFAULT_REGION": "us-east-1",
-        "AWS_EC2_METADATA_DISABLED": "true",
-        "AWS_SHARED_CREDENTIALS_FILE": os.devnull,
-        "AWS_CONFIG_FILE": os.devnull,
-    }
-    saved = {k: os.environ.get(k) for k in env}
-    os.environ.update(env)
-    try:
-        deadline = time.monotonic() + 60
-        while True:
-            try:
-                urllib.request.urlopen(endpoint, timeout=2).close()
-                break
-            except OSError:
-                assert proc.poll() is None, "the S3 server did not start"
-                assert time.monotonic() < deadline, "the S3 server did not answer"
-                time.sleep(0.2)
-        import fsspec
-
-        fsspec.filesystem("s3").mkdir(BUCKET)
-        yield endpoint
-    finally:
-        _stop(proc)
-        log.close()
-        for k, v in saved.items():
-            if v is None:
-                os.environ.pop(k, None)
-            else:
-                os.environ[k] = v
 
 
 @pytest.fixture(scope="module")
@@ -268,7 +205,7 @@ def test_killed_and_resumed_from_s3_equals_uninterrupted(study):
         proc.send_signal(signal.SIGKILL)
         proc.communicate(timeout=60)
     finally:
-        _stop(proc)
+        stop_process(proc)
     assert proc.returncode == -signal.SIGKILL
     assert 5 <= _markers(out) < 50
     res = runner.invoke(app, _args("screen", study["url"], study["sim"].outcome_path, out))
@@ -390,7 +327,7 @@ def cluster(s3_server, tmp_path_factory):
     if dask_cli is None:
         pytest.skip("the dask command is not installed")
     logs = tmp_path_factory.mktemp("cluster")
-    port = _free_port()
+    port = free_port()
     address = f"tcp://127.0.0.1:{port}"
     env = {
         **os.environ,
@@ -431,7 +368,7 @@ def cluster(s3_server, tmp_path_factory):
         yield {"address": address, "procs": procs}
     finally:
         for proc in procs.values():
-            _stop(proc)
+            stop_process(proc)
 
 
 @pytest.mark.parametrize("command", ["screen", "run"])
@@ -464,7 +401,7 @@ def test_killed_worker_costs_only_its_blocks(study, cluster):
         victim.send_signal(signal.SIGKILL)
         _stdout, stderr = proc.communicate(timeout=180)
     finally:
-        _stop(proc)
+        stop_process(proc)
     assert victim.wait(timeout=10) == -signal.SIGKILL
     assert proc.returncode == 0, stderr
     _same_outputs(out, study["refs"]["screen"])

@@ -25,14 +25,15 @@ from widescreen.engine import Lease, LeaseLost, RunFolderError, local_copy_path
 from widescreen.simulate import SimulationConfig, simulate
 from widescreen.store import place
 
-from .test_object_storage import BUCKET, _same_outputs, _stop, s3_server  # noqa: F401
+from .s3_kit import BUCKET, stop_process
+from .test_object_storage import _same_outputs
 
 pytestmark = pytest.mark.slow
 runner = CliRunner()
 
 
 @pytest.fixture(scope="module")
-def study(s3_server, tmp_path_factory):  # noqa: F811
+def study(s3_server, tmp_path_factory):
     """A small simulated study on local disk and the local reference runs."""
     root = tmp_path_factory.mktemp("s3run")
     cfg = SimulationConfig(
@@ -153,7 +154,7 @@ def test_killed_run_resumes_from_the_bucket_on_another_copy(study, tmp_path, mon
         proc.send_signal(signal.SIGKILL)
         proc.communicate(timeout=60)
     finally:
-        _stop(proc)
+        stop_process(proc)
     assert proc.returncode == -signal.SIGKILL
     uploaded = _remote_markers(url)
     assert 5 <= uploaded < 50
@@ -173,7 +174,7 @@ def _lease(url: str, **kw) -> Lease:
     return Lease(place(f"{url}/.lease"), **kw)
 
 
-def test_lease_refuses_a_second_holder_until_released(s3_server):  # noqa: F811
+def test_lease_refuses_a_second_holder_until_released(s3_server):
     url = f"s3://{BUCKET}/runs/leased"
     first = _lease(url)
     first.acquire()
@@ -191,7 +192,7 @@ def test_lease_refuses_a_second_holder_until_released(s3_server):  # noqa: F811
     second.release()
 
 
-def test_expired_lease_of_another_host_is_taken_over(s3_server):  # noqa: F811
+def test_expired_lease_of_another_host_is_taken_over(s3_server):
     url = f"s3://{BUCKET}/runs/expired"
     key = f"{BUCKET}/runs/expired/.lease"
     record = {"owner": "x", "host": "elsewhere", "pid": 1, "renewed": 0.0}
@@ -205,7 +206,7 @@ def test_expired_lease_of_another_host_is_taken_over(s3_server):  # noqa: F811
     taker.release()
 
 
-def test_a_replaced_lease_is_lost_and_stops_writes(s3_server):  # noqa: F811
+def test_a_replaced_lease_is_lost_and_stops_writes(s3_server):
     url = f"s3://{BUCKET}/runs/lost"
     lease = _lease(url, seconds=4.0, margin=1.0)
     lease.acquire()
@@ -223,7 +224,7 @@ def test_a_replaced_lease_is_lost_and_stops_writes(s3_server):  # noqa: F811
     assert _fs().cat_file(f"{BUCKET}/runs/lost/.lease") == b'{"owner": "someone else"}'
 
 
-def test_storage_that_ignores_conditions_is_refused(s3_server, monkeypatch):  # noqa: F811
+def test_storage_that_ignores_conditions_is_refused(s3_server, monkeypatch):
     import widescreen.engine._lease as lease_module
 
     real = lease_module.create_object
