@@ -17,11 +17,13 @@ from ._memory import (
 from ._pass import build_pass, read_stats, run_pass
 from ._reduce import add_tree, reduce_blocks, stream_combine, sum_arrays, tree_combine
 from ._runfolder import (
+    RESERVE_BYTES,
     RunFolder,
     RunFolderError,
     RunLock,
     atomic_write,
     diff_config,
+    remove_partial_files,
     run_folder_path,
 )
 from ._scheduler import Executor, WorkerAccessError, execute, n_cores, open_executor
@@ -33,6 +35,7 @@ from ._topk import MultiTopK, TopK, block_topk, block_topk_multi, merge_all, mer
 __all__ = [
     "BASELINE_BYTES",
     "ENGINE_COLUMNS",
+    "RESERVE_BYTES",
     "ArraySource",
     "BlockShape",
     "BlockSource",
@@ -75,6 +78,7 @@ __all__ = [
     "read_marker",
     "read_stats",
     "reduce_blocks",
+    "remove_partial_files",
     "run_folder_path",
     "run_folder_target",
     "run_pass",

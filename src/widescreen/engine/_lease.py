@@ -35,8 +35,9 @@ import uuid
 from dataclasses import dataclass, field
 
 from ..schema import RunFolderError
-from ..store import RemotePath, StoreError
-from ..store._conditional import (
+from ..store import (
+    RemotePath,
+    StoreError,
     check_conditional,
     create_object,
     delete_object,

@@ -33,8 +33,7 @@ from dataclasses import dataclass, field
 from pathlib import Path
 
 from ..schema import RunFolderError
-from ..store import RemotePath, StoreError, is_url, place
-from ..store._conditional import check_conditional
+from ..store import RemotePath, StoreError, check_conditional, is_url, place
 from ._lease import LEASE_SECONDS, Lease, LeaseLost
 from ._runfolder import atomic_write, is_partial_file
 

@@ -1,5 +1,12 @@
 """The dataset store: on-disk format, block reader and ingest converters."""
 
+from ._conditional import (
+    check_conditional,
+    create_object,
+    delete_object,
+    read_object,
+    replace_object,
+)
 from ._format import (
     FORMAT_VERSION,
     MISSING_INT8,
@@ -50,10 +57,13 @@ __all__ = [
     "ReadAhead",
     "RemotePath",
     "StoreError",
+    "check_conditional",
     "code_covariate_frame",
     "code_covariates",
+    "create_object",
     "default_chunks",
     "default_codec",
+    "delete_object",
     "import_npy",
     "import_table",
     "import_vcf",
@@ -65,5 +75,7 @@ __all__ = [
     "place",
     "prepare_block",
     "read_block",
+    "read_object",
     "read_outcome_table",
+    "replace_object",
 ]

@@ -20,14 +20,16 @@ from dataclasses import dataclass, field
 from pathlib import Path
 
 from .._version import __version__
-from ..engine import StagedRun, local_copy_path, run_folder_target
-from ..engine._runfolder import (
+from ..engine import (
     RESERVE_BYTES,
     RunFolder,
     RunFolderError,
     RunLock,
+    StagedRun,
     diff_config,
+    local_copy_path,
     remove_partial_files,
+    run_folder_target,
 )
 
 
