@@ -119,6 +119,28 @@ def test_run_on_s3_equals_local_and_resumes_from_another_copy(study, monkeypatch
     assert local_copy_path(url) == tmp_path / "second" / "runs" / "s3" / BUCKET / "runs" / "whole"
 
 
+def test_report_of_one_trait_on_s3_stages_the_whole_run(study, monkeypatch, tmp_path):
+    """A trait's folder reads its screening statistics from the run's shared pass: its report from a
+    fresh local copy stages the run around it."""
+    url = f"s3://{BUCKET}/runs/traits"
+    outcome = tmp_path / "two.tsv"
+    lines = study["sim"].outcome_path.read_text().splitlines()
+    outcome.write_text(
+        "\n".join([lines[0] + "\tw"] + [f"{r}\t{i % 7}" for i, r in enumerate(lines[1:])]) + "\n"
+    )
+    args = _args("screen", study["sim"], url)
+    args[args.index("--outcome") + 1] = str(outcome)
+    args[args.index("--response") + 1] = "y,w"
+    monkeypatch.setenv("WIDESCREEN_CACHE_DIR", str(tmp_path / "first"))
+    res = runner.invoke(app, args)
+    assert res.exit_code == 0, res.output
+    monkeypatch.setenv("WIDESCREEN_CACHE_DIR", str(tmp_path / "second"))
+    res = runner.invoke(app, ["report", f"{url}/traits/w"])
+    assert res.exit_code == 0, res.output
+    assert f"report: {url}/traits/w/report.html" in res.output
+    assert _fs().exists(f"{BUCKET}/runs/traits/traits/w/figures/manhattan.png")
+
+
 # The killed run's blocks each wait 0.1 s and it uploads every 0.2 s (patched in the child only), so
 # the window with some blocks in the bucket and others not lasts seconds on any machine.
 SLOW_BLOCKS = (

@@ -297,15 +297,23 @@ def run_folder_target(target) -> Path | RemotePath:
 @contextmanager
 def staged_run_folder(out, **options) -> Iterator[Path]:
     """The local folder to run in: ``out`` itself, or for a URL its local copy, kept in step with
-    the bucket while the block runs (`StagedRun`)."""
+    the bucket while the block runs (`StagedRun`).
+
+    A trait's folder of a several-traits run (``RUN/traits/NAME``, whose screening pass lives in
+    ``RUN``) is staged with its run: the lease and the copy are the whole run's, and the folder
+    given is the trait's within the copy.
+    """
     where = run_folder_target(out)
     if isinstance(where, Path):
         yield where
         return
+    inside: tuple[str, ...] = ()
+    if where.parent.name == "traits" and (where.parent.parent / "traits.tsv").is_file():
+        where, inside = where.parent.parent, ("traits", where.name)
     staged = StagedRun(where, local_copy_path(where), **options)
     staged.open()
     try:
-        yield staged.local
+        yield staged.local.joinpath(*inside)
     finally:
         staged.close()
 
