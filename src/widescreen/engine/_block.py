@@ -41,6 +41,29 @@ def _filter_mask(
     return mask
 
 
+def screen_out(
+    spec: PassSpec, out: dict, off: np.ndarray, lo: int, hi: int
+) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
+    """Scores and eligibility of features ``lo:hi`` (a one- or a K-response pass alike).
+
+    ``off`` (filtered or constant; shape (width,) or (width, K)) scores 0. Of the rest, a feature the
+    kernel marks ``degenerate`` or whose score is not finite cannot enter the top list, nor can one
+    the pass excludes.
+
+    Returns
+    -------
+    score, degenerate, nonfinite, eligible : ndarray, each of the shape of ``off``
+    """
+    score = np.where(off, 0.0, out["score"])
+    degenerate = np.asarray(out.get("degenerate", False)) & ~off
+    nonfinite = ~np.isfinite(score) & ~(off | degenerate)
+    eligible = ~(off | degenerate | nonfinite)
+    if spec.exclude.size:
+        excluded = np.isin(np.arange(lo, hi), spec.exclude)
+        eligible &= ~(excluded if off.ndim == 1 else excluded[:, None])
+    return score, degenerate, nonfinite, eligible
+
+
 def process_block(source: BlockSource, spec: PassSpec, i: int, out_dir: str | None) -> dict:
     """Read block ``i``, compute its statistics, record them, return its top k.
 
@@ -70,15 +93,11 @@ def process_block(source: BlockSource, spec: PassSpec, i: int, out_dir: str | No
         block = prepare_block(raw[:, a:b], start + a, spec.rows)
         out = spec.kernel(block, spec.state)
         filtered = _filter_mask(spec, block.missing_rate, block.mean, dosage)
-        score = np.where(filtered | block.constant, 0.0, out["score"])
+        off = filtered | block.constant
+        score, degenerate, nonfinite, eligible = screen_out(spec, out, off, start + a, start + b)
         out["score"] = score
-        degenerate = np.asarray(out.get("degenerate", False)) & ~(filtered | block.constant)
-        nonfinite = ~np.isfinite(score) & ~(filtered | block.constant | degenerate)
-        eligible = ~(filtered | block.constant | degenerate | nonfinite)
         n_degenerate += int(np.count_nonzero(degenerate))
         n_nonfinite += int(np.count_nonzero(nonfinite))
-        if spec.exclude.size:
-            eligible &= ~np.isin(np.arange(start + a, start + b), spec.exclude)
         n_constant += int(block.constant.sum())
         for c in spec.columns:
             cols[c].append(np.asarray(out[c], dtype=np.float64))
@@ -110,14 +129,33 @@ def process_block(source: BlockSource, spec: PassSpec, i: int, out_dir: str | No
         "sub_block": int(min(spec.sub_block, stop - start)),
         "seconds": time.perf_counter() - t0,
     }
+    kept = None if kept_raw is None else (best.index, kept_raw, stats["mean"][best.index - start])
+    return finish_block(record, stats, out_dir, source.block_width, t0, write_marker, kept)
+
+
+def finish_block(
+    record: dict,
+    stats: dict[str, np.ndarray],
+    out_dir: str | None,
+    width: int,
+    t0: float,
+    mark,
+    kept: tuple[np.ndarray, np.ndarray, np.ndarray] | None = None,
+) -> dict:
+    """A block task's last step: its statistics in the record, or on disk with its marker last.
+
+    With a run folder, the block's statistic chunks are written, then its kept columns (``kept``:
+    index, stored values, means; see `write_kept`), then its completion marker by ``mark`` (a
+    function of ``out_dir`` and the record), so a block with a marker is whole.
+    """
     if out_dir is None:
         record["stats"] = stats
         return record
-    write_stats(out_dir, i, stats, source.block_width)
-    if kept_raw is not None:
-        write_kept(out_dir, i, best.index, kept_raw, stats["mean"][best.index - start])
+    write_stats(out_dir, record["block"], stats, width)
+    if kept is not None:
+        write_kept(out_dir, record["block"], *kept)
     record["seconds"] = time.perf_counter() - t0
-    write_marker(out_dir, record)
+    mark(out_dir, record)
     return record
 
 
@@ -170,18 +208,31 @@ def write_stats(out_dir: str | Path, block: int, stats: dict[str, np.ndarray], w
 
 def write_marker(out_dir: str | Path, record: dict) -> None:
     top: TopK = record["topk"]
-    marker = {
-        "block": record["block"],
-        "start": record["start"],
-        "stop": record["stop"],
+    lists = {
         "index": top.index.tolist(),
         # repr of floats round-trips exactly, so a resumed merge is bit-identical
         "score": [float(s) for s in top.score],
         "null_max": [float(s) for s in top.null_max],
-        "n_filtered": record["n_filtered"],
-        "n_constant": record["n_constant"],
-        "n_degenerate": record.get("n_degenerate", 0),
-        "n_nonfinite": record.get("n_nonfinite", 0),
+    }
+    save_marker(out_dir, record, lists)
+
+
+#: The counts of a block's record kept in its marker (numbers; K of them for a K-response pass).
+MARKER_COUNTS = ("n_filtered", "n_constant", "n_degenerate", "n_nonfinite")
+
+
+def save_marker(out_dir: str | Path, record: dict, lists: dict) -> None:
+    """Write a block's completion marker (atomically): its range, its top lists, counts and timing.
+
+    ``lists`` holds the pass's top-list entries (one-response or K-response form), placed after the
+    block's range; the counts are written as plain integers (lists of them when per response).
+    """
+    marker = {
+        "block": record["block"],
+        "start": record["start"],
+        "stop": record["stop"],
+        **lists,
+        **{c: np.asarray(record.get(c, 0)).tolist() for c in MARKER_COUNTS},
         "sub_block": record.get("sub_block"),
         "seconds": record["seconds"],
     }
@@ -228,11 +279,6 @@ def read_kept(out_dir: str | Path, block: int) -> tuple[np.ndarray, np.ndarray] 
         return None
 
 
-def stats_chunk(out_dir: str | Path, column: str, block: int) -> Path:
-    """File of one block's chunk of a statistic (see `widescreen.schema.PassLayout.stats_chunk`)."""
-    return PassLayout(Path(out_dir)).stats_chunk(column, block)
-
-
 def read_marker(
     out_dir: str | Path, block: int, k: int, bounds: tuple[int, int], columns: tuple[str, ...]
 ) -> dict | None:
@@ -257,11 +303,22 @@ def read_marker(
     except (OSError, ValueError, KeyError, TypeError):
         return None
     need = (int(bounds[1]) - int(bounds[0])) * 8  # float64 values of the block's features
+    if not chunks_whole(out_dir, block, columns, need):
+        return None
+    return {**m, "topk": top}
+
+
+def chunks_whole(
+    out_dir: str | Path, block: int, columns: tuple[str, ...], need: int, *, wide: bool = False
+) -> bool:
+    """Whether every statistic's chunk file of a block exists and holds ``need`` bytes or more (of
+    whole float64 values): an empty or truncated file is what a crash of the machine can leave."""
+    layout = PassLayout(Path(out_dir))
     for c in columns:
         try:
-            size = os.stat(stats_chunk(out_dir, c, block)).st_size
+            size = os.stat(layout.stats_chunk(c, block, wide=wide)).st_size
         except OSError:
-            return None
-        if size < need or size % 8:  # empty or truncated: what a machine crash can leave
-            return None
-    return {**m, "topk": top}
+            return False
+        if size < need or size % 8:
+            return False
+    return True

@@ -11,7 +11,6 @@ caller reads the columns it needs once the pass is merged (`widescreen.engine.re
 from __future__ import annotations
 
 import json
-import os
 import time
 from pathlib import Path
 
@@ -19,8 +18,7 @@ import numpy as np
 
 from ..schema import PassLayout
 from ..store import prepare_block
-from ._block import _filter_mask, write_stats
-from ._runfolder import atomic_write
+from ._block import MARKER_COUNTS, _filter_mask, chunks_whole, finish_block, save_marker, screen_out
 from ._source import BlockSource
 from ._spec import PassSpec
 from ._topk import MultiTopK, block_topk_multi, merge_multi
@@ -56,13 +54,8 @@ def process_multi_block(source: BlockSource, spec: PassSpec, i: int, out_dir: st
         constant = out.get("constant", np.broadcast_to(block.constant[:, None], shape))
         filtered = _filter_mask(spec, missing, mean, dosage)
         off = filtered | constant
-        score = np.where(off, 0.0, out["score"])
+        score, degenerate, nonfinite, eligible = screen_out(spec, out, off, start + a, start + b)
         out["score"] = score
-        degenerate = np.asarray(out.get("degenerate", False)) & ~off
-        nonfinite = ~np.isfinite(score) & ~(off | degenerate)
-        eligible = ~(off | degenerate | nonfinite)
-        if spec.exclude.size:
-            eligible &= ~np.isin(np.arange(start + a, start + b), spec.exclude)[:, None]
         n_filtered += np.count_nonzero(filtered, axis=0)
         n_degenerate += np.count_nonzero(degenerate, axis=0)
         n_nonfinite += np.count_nonzero(nonfinite, axis=0)
@@ -86,35 +79,20 @@ def process_multi_block(source: BlockSource, spec: PassSpec, i: int, out_dir: st
         "sub_block": int(min(spec.sub_block, stop - start)),
         "seconds": time.perf_counter() - t0,
     }
-    if out_dir is None:
-        record["stats"] = stats
-        return record
-    write_stats(out_dir, i, stats, source.block_width)
-    record["seconds"] = time.perf_counter() - t0
-    write_multi_marker(out_dir, record)
-    return record
+    return finish_block(record, stats, out_dir, source.block_width, t0, write_multi_marker)
 
 
 def write_multi_marker(out_dir: str | Path, record: dict) -> None:
     top: MultiTopK = record["topk"]
     lengths = (top.index >= 0).sum(axis=1)
-    marker = {
-        "block": record["block"],
-        "start": record["start"],
-        "stop": record["stop"],
+    lists = {
         "n_responses": int(top.n_responses),
         # Each response's list without its padding; repr of floats round-trips exactly, so a resumed
         # merge is identical.
         "index": [row[:c].tolist() for row, c in zip(top.index, lengths, strict=True)],
         "score": [row[:c].tolist() for row, c in zip(top.score, lengths, strict=True)],
-        "n_filtered": [int(v) for v in record["n_filtered"]],
-        "n_constant": [int(v) for v in record["n_constant"]],
-        "n_degenerate": [int(v) for v in record["n_degenerate"]],
-        "n_nonfinite": [int(v) for v in record["n_nonfinite"]],
-        "sub_block": record.get("sub_block"),
-        "seconds": record["seconds"],
     }
-    atomic_write(PassLayout(Path(out_dir)).marker(record["block"]), json.dumps(marker))
+    save_marker(out_dir, record, lists)
 
 
 def read_multi_marker(
@@ -136,28 +114,13 @@ def read_multi_marker(
                 return None
             top.index[r, : len(ix)] = ix
             top.score[r, : len(sc)] = sc
-        n_degenerate = np.asarray(m["n_degenerate"], dtype=np.int64).reshape(K)
-        n_nonfinite = np.asarray(m["n_nonfinite"], dtype=np.int64).reshape(K)
-        n_filtered = np.asarray(m["n_filtered"], dtype=np.int64).reshape(K)
-        n_constant = np.asarray(m["n_constant"], dtype=np.int64).reshape(K)
+        counts = {c: np.asarray(m[c], dtype=np.int64).reshape(K) for c in MARKER_COUNTS}
     except (OSError, ValueError, KeyError, TypeError):
         return None
     rows = int(bounds[1]) - int(bounds[0])
-    for c in spec.all_columns:
-        try:
-            size = os.stat(layout.stats_chunk(c, block, wide=True)).st_size
-        except OSError:
-            return None
-        if size < rows * 8 * K or size % 8:  # empty or truncated: what a machine crash can leave
-            return None
-    return {
-        **m,
-        "topk": top,
-        "n_filtered": n_filtered,
-        "n_constant": n_constant,
-        "n_degenerate": n_degenerate,
-        "n_nonfinite": n_nonfinite,
-    }
+    if not chunks_whole(out_dir, block, spec.all_columns, rows * 8 * K, wide=True):
+        return None
+    return {**m, "topk": top, **counts}
 
 
 __all__ = ["process_multi_block", "read_multi_marker", "write_multi_marker"]
