@@ -299,12 +299,7 @@ class Problem:
                 Z = None if Z is None else Z[order]
         elif n != source.n_samples:
             raise OutcomeError(f"y has {n} values but X has {source.n_samples} samples")
-        if (
-            rows is not None
-            and rows.size == source.n_samples
-            and np.array_equal(rows, np.arange(rows.size))
-        ):
-            rows = None
+        rows = None if rows is None else analysed_rows(rows, source.n_samples)
         check_sample_size(n, 0 if Z is None else Z.shape[1], "")
         resp = fam.response_from_arrays(y, ev, ids)
         names = tuple(covariate_names) if covariate_names is not None else ()
@@ -325,6 +320,13 @@ class Problem:
             samples={"n_analysed": n, "n_store": source.n_samples},
             covariate_coding={} if coding is None else coding.record(),
         )
+
+
+def analysed_rows(rows: np.ndarray, n_samples: int) -> np.ndarray | None:
+    """Store rows of the analysed samples, or None when they are all of the store's rows in order."""
+    if rows.size == n_samples and np.array_equal(rows, np.arange(rows.size)):
+        return None
+    return rows
 
 
 def _rows_by_id(source: BlockSource, ids: np.ndarray) -> np.ndarray | None:
@@ -388,18 +390,10 @@ def load_problem(
         raise ValueError("an outcome table can only be joined to a dataset store")
     joined = join_outcome(dataset.sample_ids(), table, needed)
     resp = fam.response(joined, response, event)
-    Z, names, coding = None, (), {}
-    if covariates:
-        for c in covariates:
-            _refuse_stray_text(joined, c)
-        # Numeric columns as they are; text columns dummy-coded (first sorted level the reference).
-        coded = code_covariates({c: joined.values[c] for c in covariates}, where=str(table.path))
-        Z, names, coding = coded.matrix, coded.names, coded.record()
+    Z, names, coding = table_covariates(joined, covariates, table.path)
+    if Z is not None:
         check_covariates(Z, names, f"{table.path}: ")
     _check_response_varies(table.path, response, np.asarray(resp.y, dtype=np.float64), Z)
-    rows = joined.rows
-    if rows.size == source.n_samples and np.array_equal(rows, np.arange(rows.size)):
-        rows = None
     check_sample_size(joined.n, len(names), f"{table.path}: ")
     return Problem(
         source=source,
@@ -407,12 +401,29 @@ def load_problem(
         response=resp,
         covariates=Z,
         covariate_names=names,
-        rows=rows,
+        rows=analysed_rows(joined.rows, source.n_samples),
         sample_ids=joined.sample_ids,
         samples=joined.report(),
         joined=joined,
         covariate_coding=coding,
     )
+
+
+def table_covariates(
+    joined: JoinedOutcome, covariates: tuple[str, ...], path
+) -> tuple[np.ndarray | None, tuple[str, ...], dict[str, Any]]:
+    """The outcome table's covariates of the joined samples as a design: (Z or None, names, coding).
+
+    Numeric columns as they are; text columns dummy-coded (first sorted level the reference); a
+    numeric column with stray text cells is refused. Not checked for constant columns (the caller
+    knows on which samples).
+    """
+    if not covariates:
+        return None, (), {}
+    for c in covariates:
+        _refuse_stray_text(joined, c)
+    coded = code_covariates({c: joined.values[c] for c in covariates}, where=str(path))
+    return coded.matrix, coded.names, coded.record()
 
 
 def _refuse_stray_text(joined: JoinedOutcome, column: str) -> None:
@@ -459,6 +470,7 @@ def problem_from_arrays(X, y, family: str | Family = "linear", covariates=None, 
 
 __all__ = [
     "Problem",
+    "analysed_rows",
     "check_covariates",
     "check_problem_fields",
     "check_sample_size",
@@ -466,5 +478,6 @@ __all__ = [
     "load_problem",
     "problem_from_arrays",
     "shortlist_size",
+    "table_covariates",
     "trait_names",
 ]

@@ -17,9 +17,9 @@ import numpy as np
 from ..schema import CV, ENTRIES, ITERATIONS, MODEL, RANKING, STABILITY, IterationRecord
 from ._crossval import cross_validate
 from ._iterate import IterateConfig, IterativeResult, iterate
-from ._problem import load_problem, trait_names
-from ._screen import dataset_record
-from ._session import RunSession, open_session
+from ._problem import trait_names
+from ._screen import open_problem
+from ._session import RunSession
 from ._stability import stability_selection
 from ._subsets import SubsetScreen
 from ._tables import (
@@ -79,22 +79,8 @@ def run(
             memory_budget=memory_budget,
         )
     t0 = time.perf_counter()
-    problem = load_problem(
-        store,
-        outcome,
-        response=config.response,
-        family=config.family,
-        covariates=config.covariates,
-        event=config.event,
-    )
-    config.filters.check(problem.source.value_kind)
-    with open_session(
-        out, "run", config.to_dict(), dataset_record(problem), restart=restart
-    ) as session:
-        session.manifest["samples"] = problem.samples
-        session.manifest["covariates"] = problem.covariate_coding
-        if problem.response.mapping:
-            session.manifest["response_coding"] = problem.response.mapping
+    problem, session = open_problem(store, outcome, config, out, "run", restart=restart)
+    with session:
         session.manifest["memory_budget"] = memory_budget
         result = iterate(
             problem,

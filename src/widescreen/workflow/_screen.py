@@ -21,7 +21,7 @@ from ._problem import (
     shortlist_size,
     trait_names,
 )
-from ._session import open_session
+from ._session import RunSession, open_session
 from ._tables import ranking_text
 
 
@@ -118,6 +118,35 @@ def dataset_record(problem: Problem) -> dict:
         "shape": list(ds.shape),
         "outcome": {"path": str(problem.joined.table.path), **problem.joined.digest()},
     }
+
+
+def record_problem(session: RunSession, problem: Problem) -> None:
+    """Record in the session's manifest how the samples were matched and the covariates and
+    response coded."""
+    session.manifest["samples"] = problem.samples
+    session.manifest["covariates"] = problem.covariate_coding
+    if problem.response.mapping:
+        session.manifest["response_coding"] = problem.response.mapping
+
+
+def open_problem(
+    store, outcome, config, out, command: str, *, restart: bool
+) -> tuple[Problem, RunSession]:
+    """The file route's start of `screen` and `run`: the problem ``config`` names (the store joined to
+    the outcome table, the filters checked against the store), and its run session, opened under the
+    folder's lock with the problem recorded (`record_problem`)."""
+    problem = load_problem(
+        store,
+        outcome,
+        response=config.response,
+        family=config.family,
+        covariates=config.covariates,
+        event=config.event,
+    )
+    config.filters.check(problem.source.value_kind)
+    session = open_session(out, command, config.to_dict(), dataset_record(problem), restart=restart)
+    record_problem(session, problem)
+    return problem, session
 
 
 def screen_problem(
@@ -217,22 +246,8 @@ def screen(
             memory_budget=memory_budget,
         )
     t0 = time.perf_counter()
-    problem = load_problem(
-        store,
-        outcome,
-        response=config.response,
-        family=config.family,
-        covariates=config.covariates,
-        event=config.event,
-    )
-    config.filters.check(problem.source.value_kind)
-    with open_session(
-        out, "screen", config.to_dict(), dataset_record(problem), restart=restart
-    ) as session:
-        session.manifest["samples"] = problem.samples
-        session.manifest["covariates"] = problem.covariate_coding
-        if problem.response.mapping:
-            session.manifest["response_coding"] = problem.response.mapping
+    problem, session = open_problem(store, outcome, config, out, "screen", restart=restart)
+    with session:
         keep = shortlist_size(config.shortlist, problem.n, problem.source.n_features, memory_budget)
         session.manifest["shortlist_size"] = keep
         capped = shortlist_notice(config.shortlist, problem.n, memory_budget)

@@ -36,22 +36,23 @@ import numpy as np
 from ..engine import RunFolder, as_source, atomic_write
 from ..families import Response, get_family
 from ..schema import RANKING, TRAITS, format_table, shared_record
-from ..store import OutcomeError, code_covariates, join_outcome, read_outcome_table
+from ..store import OutcomeError, join_outcome, read_outcome_table
 from ..store._outcome import is_missing
 from ._candidates import pass_lambda_gc
 from ._iterate import IterateConfig, iterate
 from ._problem import (
     Problem,
     _check_response_varies,
-    _refuse_stray_text,
+    analysed_rows,
     check_covariates,
     check_sample_size,
     shortlist_size,
+    table_covariates,
     trait_names,
 )
 from ._responses import screen_responses, shortlist_values
 from ._run import finish_run
-from ._screen import ScreenConfig, dataset_record
+from ._screen import ScreenConfig, dataset_record, record_problem
 from ._session import RunSession, _session_entry, open_session, versions
 from ._tables import ranking_text
 
@@ -86,13 +87,11 @@ class Traits:
         base, sel = self.problem, self.rows_of(k)
         joined = _subjoin(base.joined, sel)
         rows = sel if base.rows is None else base.rows[sel]
-        if rows.size == base.source.n_samples and np.array_equal(rows, np.arange(rows.size)):
-            rows = None
         return replace(
             base,
             response=self.responses[k],
             covariates=None if base.covariates is None else base.covariates[sel],
-            rows=rows,
+            rows=analysed_rows(rows, base.source.n_samples),
             sample_ids=None if base.sample_ids is None else base.sample_ids[sel],
             samples=joined.report(),
             joined=joined,
@@ -133,12 +132,7 @@ def load_traits(
     if dataset is None:
         raise ValueError("an outcome table can only be joined to a dataset store")
     joined = join_outcome(dataset.sample_ids(), table, list(covariates), any_of=list(responses))
-    Z, names, coding = None, (), {}
-    if covariates:
-        for c in covariates:
-            _refuse_stray_text(joined, c)
-        coded = code_covariates({c: joined.values[c] for c in covariates}, where=str(table.path))
-        Z, names, coding = coded.matrix, coded.names, coded.record()
+    Z, names, coding = table_covariates(joined, covariates, table.path)
     n = joined.n
     Y = np.full((n, len(responses)), np.nan)
     coded_responses = []
@@ -153,16 +147,13 @@ def load_traits(
         _check_response_varies(table.path, name, np.asarray(resp.y, dtype=np.float64), Zk)
         Y[sel, k] = resp.y
         coded_responses.append(resp)
-    rows = joined.rows
-    if rows.size == source.n_samples and np.array_equal(rows, np.arange(rows.size)):
-        rows = None
     problem = Problem(
         source=source,
         family=fam,
         response=Response(y=Y[:, 0]),
         covariates=Z,
         covariate_names=names,
-        rows=rows,
+        rows=analysed_rows(joined.rows, source.n_samples),
         sample_ids=joined.sample_ids,
         samples=joined.report(),
         joined=joined,
@@ -230,13 +221,6 @@ def trait_session(
     return session
 
 
-def _record_problem(session: RunSession, problem: Problem) -> None:
-    session.manifest["samples"] = problem.samples
-    session.manifest["covariates"] = problem.covariate_coding
-    if problem.response.mapping:
-        session.manifest["response_coding"] = problem.response.mapping
-
-
 def traits_text(rows: list[dict]) -> str:
     cols = {c.name: [r[c.name] for r in rows] for c in TRAITS.fixed}
     return format_table(TRAITS, cols)
@@ -274,16 +258,55 @@ def _open(store, outcome, config, out, command, restart):
     session = open_session(
         out, command, config.to_dict(), dataset_record(traits.problem), restart=restart
     )
-    session.manifest["samples"] = traits.problem.samples
-    session.manifest["covariates"] = traits.problem.covariate_coding
+    record_problem(session, traits.problem)  # each trait's response coding is in its own folder
     session.manifest["traits"] = list(names)
     return traits, session
 
 
-def _top(problem: Problem, top) -> tuple[object, object]:
-    if top.index.size == 0:
-        return None, None
-    return str(problem.feature_ids(top.index[:1])[0]), float(top.score[0])
+def _shared_pass(
+    traits: Traits,
+    config,
+    session: RunSession,
+    *,
+    scheduler,
+    progress,
+    memory_budget,
+    list_top: int | None = None,
+) -> tuple[list, object]:
+    """The one pass of every trait into ``passes/screen/``: each trait's `ScreenResult` and the pass."""
+    found = screen_responses(
+        traits.problem,
+        traits.Y,
+        shortlist=config.shortlist,
+        names=traits.names,
+        list_top=list_top,
+        filters=config.filters,
+        sub_block=config.sub_block,
+        keep_values=False,
+        run=session.run,
+        scheduler=scheduler,
+        progress=progress,
+        memory_budget=memory_budget,
+    )
+    merged = found[0].extra["pass"]
+    session.record_pass("screen", merged.summary())
+    return found, merged
+
+
+def _trait_row(name: str, problem: Problem, top, shortlist: int, selected, lam) -> dict:
+    """A trait's row of traits.tsv (its strongest feature: the first of its pass's top list)."""
+    feature = score = None
+    if top.index.size:
+        feature, score = str(problem.feature_ids(top.index[:1])[0]), float(top.score[0])
+    return {
+        "trait": name,
+        "n": problem.n,
+        "shortlist_size": int(shortlist),
+        "selected_size": selected,
+        "top_feature": feature,
+        "top_score": score,
+        "lambda_gc": lam,
+    }
 
 
 def screen_traits(
@@ -302,22 +325,15 @@ def screen_traits(
     traits, session = _open(store, outcome, config, out, "screen", restart)
     with session:
         session.manifest["memory_budget"] = memory_budget
-        found = screen_responses(
-            traits.problem,
-            traits.Y,
-            shortlist=config.shortlist,
-            names=traits.names,
+        found, merged = _shared_pass(
+            traits,
+            config,
+            session,
             list_top=config.list_top,
-            filters=config.filters,
-            sub_block=config.sub_block,
-            keep_values=False,
-            run=session.run,
             scheduler=scheduler,
             progress=progress,
             memory_budget=memory_budget,
         )
-        merged = found[0].extra["pass"]
-        session.record_pass("screen", merged.summary())
         rows = []
         for k, (name, res) in enumerate(zip(traits.names, found, strict=True)):
             problem = traits.problem_of(k)
@@ -325,7 +341,7 @@ def screen_traits(
             with trait_session(
                 session, name, "screen", conf.to_dict(), dataset_record(problem), response=k
             ) as sub:
-                _record_problem(sub, problem)
+                record_problem(sub, problem)
                 view = res.pass_result
                 sub.manifest["shortlist_size"] = int(res.index.size)
                 sub.record_pass("screen", view.summary())
@@ -337,18 +353,7 @@ def screen_traits(
                 text = ranking_text(problem, sub.run, view, top.index, top.score, shortlisted)
                 sub.run.write_table(RANKING.file, text)
                 sub.finish()
-            feature, score = _top(problem, top)
-            rows.append(
-                {
-                    "trait": name,
-                    "n": problem.n,
-                    "shortlist_size": int(res.index.size),
-                    "selected_size": None,
-                    "top_feature": feature,
-                    "top_score": score,
-                    "lambda_gc": lam,
-                }
-            )
+            rows.append(_trait_row(name, problem, top, res.index.size, None, lam))
         session.run.write_table(TRAITS.file, traits_text(rows))
         session.manifest["lambda_gc"] = {r["trait"]: r["lambda_gc"] for r in rows}
         session.finish(seconds_total=round(time.perf_counter() - t0, 3))
@@ -374,21 +379,14 @@ def run_traits(
         share = not config.split and config.rule.kind != "permutation"
         found, merged = None, None
         if share:
-            found = screen_responses(
-                traits.problem,
-                traits.Y,
-                shortlist=config.shortlist,
-                names=traits.names,
-                filters=config.filters,
-                sub_block=config.sub_block,
-                keep_values=False,
-                run=session.run,
+            found, merged = _shared_pass(
+                traits,
+                config,
+                session,
                 scheduler=scheduler,
                 progress=None if progress is None else progress("screen"),
                 memory_budget=memory_budget,
             )
-            merged = found[0].extra["pass"]
-            session.record_pass("screen", merged.summary())
         rows, results = [], []
         p = traits.problem.source.n_features
         for k, name in enumerate(traits.names):
@@ -417,7 +415,7 @@ def run_traits(
                 dataset_record(problem),
                 response=k if share else None,
             ) as sub:
-                _record_problem(sub, problem)
+                record_problem(sub, problem)
                 sub.manifest["memory_budget"] = memory_budget
                 result = iterate(
                     problem,
@@ -434,19 +432,9 @@ def run_traits(
                 if not config.split:
                     lam = pass_lambda_gc(problem, sub.run, screen0, np.empty(0, dtype=np.int64))
                 sub.finish()
-            feature, score = _top(problem, screen0.topk)
             results.append(result)
-            rows.append(
-                {
-                    "trait": name,
-                    "n": problem.n,
-                    "shortlist_size": int(result.budget),
-                    "selected_size": int(result.index.size),
-                    "top_feature": feature,
-                    "top_score": score,
-                    "lambda_gc": lam,
-                }
-            )
+            top = screen0.topk
+            rows.append(_trait_row(name, problem, top, result.budget, int(result.index.size), lam))
         session.run.write_table(TRAITS.file, traits_text(rows))
         session.finish(seconds_total=round(time.perf_counter() - t0, 3))
         return TraitsResult(traits.names, results, rows, merged, session.run)
