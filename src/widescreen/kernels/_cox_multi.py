@@ -23,7 +23,6 @@ from __future__ import annotations
 from dataclasses import dataclass
 
 import numpy as np
-from scipy import special
 
 from ..store import Block, _accel
 from ._cox import _tie_groups, prepare_cox
@@ -35,6 +34,7 @@ from ._multi import (
     _with_missing,
     missing_indicator,
     response_masks,
+    score_test_columns,
 )
 
 
@@ -242,22 +242,10 @@ def cox_multi_statistics(block: Block, state: MultiCoxState) -> dict[str, np.nda
     # No information left: constant within every risk set that matters, or explained by the covariates.
     dead = constant | ~(info > 1e-10 * np.maximum(np.abs(info_raw), 1e-300)) | ~(info_raw > 0)
     info = np.where(dead, 1.0, info)
-    chi2 = np.where(dead, 0.0, u * u / info)
-    beta = np.where(dead, 0.0, u / info)
     mean, missing = _summaries(block, P[:K], nob, state.n_obs)
-    return {
-        "mean": mean.T,
-        "missing_rate": missing.T,
-        "constant": (constant | block.constant).T,
-        "score": (0.5 * chi2).T,
-        "score_chi2": chi2.T,
-        "z": np.where(dead, 0.0, u / np.sqrt(info)).T,
-        "p_value": np.where(dead, 1.0, special.chdtrc(1, chi2)).T,
-        "beta": beta.T,
-        "std_error": np.where(dead, np.inf, 1.0 / np.sqrt(info)).T,
-        "std_beta": (beta * np.sqrt(np.maximum(sumsq, 0.0) / state.n_obs[:, None])).T,
-        "degenerate": dead.T,
-    }
+    return score_test_columns(
+        block, state.n_obs, u, info, info, 1.0 / np.sqrt(info), dead, constant, sumsq, mean, missing
+    )
 
 
 __all__ = ["MultiCoxState", "cox_multi_statistics", "prepare_cox_multi"]

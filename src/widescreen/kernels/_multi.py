@@ -482,9 +482,54 @@ def score_multi_statistics(block: Block, state: MultiScoreState) -> dict[str, np
         var_u = np.where(dead, 1.0, var_u)
     else:
         var_u = state.dispersion[:, None] * info
+    mean, missing = _summaries(block, P[K : 2 * K], nob, state.n_obs)
+    return score_test_columns(
+        block,
+        state.n_obs,
+        u,
+        info,
+        var_u,
+        np.sqrt(var_u) / info,
+        dead,
+        constant,
+        sumsq,
+        mean,
+        missing,
+    )
+
+
+def score_test_columns(
+    block: Block,
+    n_obs: np.ndarray,
+    u: np.ndarray,
+    info: np.ndarray,
+    var_u: np.ndarray,
+    std_error: np.ndarray,
+    dead: np.ndarray,
+    constant: np.ndarray,
+    sumsq: np.ndarray,
+    mean: np.ndarray,
+    missing: np.ndarray,
+) -> dict[str, np.ndarray]:
+    """The statistics of a K-response score test (GLM or Cox), shape (width, K) each.
+
+    Parameters
+    ----------
+    block : Block
+    n_obs : ndarray of shape (K,)
+        Samples of each response.
+    u, info, var_u : ndarray of shape (K, width)
+        The score, the (efficient) information and the score's variance (``info`` for a model-based
+        variance); 1 where ``dead``.
+    std_error : ndarray of shape (K, width)
+        Of the one-step estimate ``u / info`` (``sqrt(var_u) / info``; Cox: ``1 / sqrt(info)``).
+    dead : ndarray of bool of shape (K, width)
+        No information left: the feature scores 0 and is ``degenerate``.
+    constant, sumsq, mean, missing : ndarray of shape (K, width)
+        Per response: a constant feature, its centred sum of squares, mean and missing rate.
+    """
     chi2 = np.where(dead, 0.0, u * u / var_u)
     beta = np.where(dead, 0.0, u / info)
-    mean, missing = _summaries(block, P[K : 2 * K], nob, state.n_obs)
     return {
         "mean": mean.T,
         "missing_rate": missing.T,
@@ -494,8 +539,8 @@ def score_multi_statistics(block: Block, state: MultiScoreState) -> dict[str, np
         "z": np.where(dead, 0.0, u / np.sqrt(var_u)).T,
         "p_value": np.where(dead, 1.0, special.chdtrc(1, chi2)).T,
         "beta": beta.T,
-        "std_error": np.where(dead, np.inf, np.sqrt(var_u) / info).T,
-        "std_beta": (beta * np.sqrt(np.maximum(sumsq, 0.0) / state.n_obs[:, None])).T,
+        "std_error": np.where(dead, np.inf, std_error).T,
+        "std_beta": (beta * np.sqrt(np.maximum(sumsq, 0.0) / n_obs[:, None])).T,
         "degenerate": dead.T,
     }
 
