@@ -170,6 +170,37 @@ def test_read_ahead_holds_one_block_per_thread_and_reads_the_same_values(study):
     assert as_source(study["sim"].dataset).block_shape(read_ahead=True).encoded_columns == 0
 
 
+def test_one_request_per_object(study, monkeypatch):
+    """Opening a store reads each array's metadata once; a block is one GET per chunk object (s3fs
+    would ask each object's size first: `PROTOCOL_OPTIONS`)."""
+    import aiobotocore.client
+
+    from widescreen.store import ChunkLayout, read_block
+
+    calls = []
+    call = aiobotocore.client.AioBaseClient._make_api_call
+
+    async def spy(self, name, params):
+        calls.append((name, params.get("Key", "")))
+        return await call(self, name, params)
+
+    monkeypatch.setattr(aiobotocore.client.AioBaseClient, "_make_api_call", spy)
+    ds = open_dataset(study["url"])
+    opened = list(calls)
+    layout = ChunkLayout.of(ds)  # reads the checksum table
+    calls.clear()
+    np.testing.assert_array_equal(read_block(ds, 3, layout), study["X"][:, 48:64])
+    assert calls == [("GetObject", "geno.zarr/X/c/0/3")]
+    assert [c for c in opened if c[0] == "HeadObject"] == [("HeadObject", "geno.zarr/zarr.json")]
+    metadata = [key for name, key in opened if key.endswith("zarr.json")]
+    assert (
+        len(metadata) == len(set(metadata)) + 1
+    )  # the group's (tested, then read), each array's once
+    calls.clear()
+    ds.fingerprint()
+    assert not [c for c in calls if c[0] == "HeadObject" or c[1].endswith("zarr.json")]
+
+
 def test_pass_reads_ahead_in_the_order_the_scheduler_runs_blocks(study, monkeypatch):
     from widescreen.store import ReadAhead
 

@@ -21,6 +21,7 @@ Usage::
 from __future__ import annotations
 
 import argparse
+import asyncio
 import json
 import os
 import resource
@@ -119,6 +120,51 @@ def _server_cpu(server: subprocess.Popen | None) -> float:
     return t.user + t.system
 
 
+async def _relay(reader, writer, delay: float) -> None:
+    try:
+        while data := await reader.read(1 << 16):
+            if delay:
+                await asyncio.sleep(delay)
+            writer.write(data)
+            await writer.drain()
+    except ConnectionError:
+        pass
+    finally:
+        writer.close()
+
+
+async def _serve_latency(listen: int, target: int, delay: float) -> None:
+    """Forward TCP to ``target``, holding each piece the client sends ``delay`` seconds: a request
+    (a GET's headers arrive in one piece) reaches the server ``delay`` later, like a storage service's
+    time to first byte; the answers flow back at once."""
+
+    async def handle(client_r, client_w):
+        server_r, server_w = await asyncio.open_connection("127.0.0.1", target)
+        await asyncio.gather(_relay(client_r, server_w, delay), _relay(server_r, client_w, 0.0))
+
+    server = await asyncio.start_server(handle, "127.0.0.1", listen)
+    async with server:
+        await server.serve_forever()
+
+
+def start_latency(target: str, ms: float) -> tuple[subprocess.Popen, str]:
+    """A process adding ``ms`` to every request to the endpoint ``target``; its own endpoint."""
+    port = _free_port()
+    target_port = target.rsplit(":", 1)[1]
+    proc = subprocess.Popen(
+        [sys.executable, __file__, "--serve-latency", str(port), target_port, str(ms)]
+    )
+    endpoint = f"http://127.0.0.1:{port}"
+    for _ in range(300):
+        try:
+            with socket.create_connection(("127.0.0.1", port), timeout=1):
+                return proc, endpoint
+        except OSError:
+            time.sleep(0.1)
+    proc.kill()
+    raise SystemExit("the latency relay did not start")
+
+
 def main(argv: list[str] | None = None) -> None:
     ap = argparse.ArgumentParser(description=__doc__.split("\n\n")[0])
     ap.add_argument("--samples", type=int, default=2000)
@@ -130,11 +176,23 @@ def main(argv: list[str] | None = None) -> None:
     ap.add_argument(
         "--no-read-ahead", action="store_true", help="floor: read each block only when asked"
     )
+    ap.add_argument(
+        "--latency-ms",
+        type=float,
+        default=0.0,
+        help="add this time to every request (a relay in front of the server), as a storage "
+        "service far from the machine would",
+    )
+    ap.add_argument("--serve-latency", nargs=3, help=argparse.SUPPRESS)
     args = ap.parse_args(argv)
+    if args.serve_latency:
+        listen, target, ms = args.serve_latency
+        asyncio.run(_serve_latency(int(listen), int(target), float(ms) / 1000.0))
+        return
 
     build(args.workdir, args.samples, args.features, 0, False)
     local = str(args.workdir / "int8.store")
-    server = None
+    server = relay = None
     if args.endpoint:
         os.environ["AWS_ENDPOINT_URL"] = args.endpoint
     else:
@@ -151,6 +209,12 @@ def main(argv: list[str] | None = None) -> None:
         t0 = time.perf_counter()
         fs.put(local, f"{BUCKET}/int8.store", recursive=True)
         print(f"upload {time.perf_counter() - t0:.1f} s")
+        if args.latency_ms:
+            relay, endpoint = start_latency(os.environ["AWS_ENDPOINT_URL"], args.latency_ms)
+            os.environ["AWS_ENDPOINT_URL"] = (
+                endpoint  # the runs (and the screen commands) go through it
+            )
+            type(fs).clear_instance_cache()
         rows = []
         loads = []
         for what, fn in (
@@ -175,7 +239,8 @@ def main(argv: list[str] | None = None) -> None:
                 rows.append(("its pass", (best["local"], None), (best["s3"], None), None))
         print(
             f"n = {args.samples}, p = {args.features}, int8, {args.threads} threads, best of "
-            f"{args.repeat}; load average (1 min) {min(loads):.1f}-{max(loads):.1f}"
+            f"{args.repeat}; {args.latency_ms:g} ms added per S3 request; load average (1 min) "
+            f"{min(loads):.1f}-{max(loads):.1f}"
         )
         print(
             "| measurement | local disk s (CPU s) | local S3 server s (CPU s) | ratio | server CPU s |"
@@ -187,9 +252,10 @@ def main(argv: list[str] | None = None) -> None:
             srv_text = "" if srv is None else f"{srv:.2f}"
             print(f"| {what} | {a_text} | {b_text} | {b / a:.2f} | {srv_text} |")
     finally:
-        if server is not None:
-            server.terminate()
-            server.wait()
+        for proc in (relay, server):
+            if proc is not None:
+                proc.terminate()
+                proc.wait()
 
 
 if __name__ == "__main__":

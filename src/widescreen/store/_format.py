@@ -560,6 +560,17 @@ class Dataset:
         # Opened once: on object storage each opening costs requests.
         return open_group(self.path, mode="r")
 
+    def array(self, node: str) -> zarr.Array | None:
+        """The array at ``node`` (``"features/id"``, ...), or None when the store has none.
+
+        Opened once per handle: on object storage each opening (and each test whether a node exists)
+        is a request, tens of milliseconds on a storage service.
+        """
+        arrays = self.__dict__.setdefault("_arrays", {"X": self.X})
+        if node not in arrays:
+            arrays[node] = _open_node(self.group, node)
+        return arrays[node]
+
     @property
     def checksummed(self) -> bool:
         """Whether X's chunks carry CRC-32C checksums (format version 2)."""
@@ -578,7 +589,7 @@ class Dataset:
 
     def checksum_table(self) -> np.ndarray | None:
         """CRC-32C recorded at import for each chunk of X, shape (row chunks, column chunks)."""
-        if _checksum.TABLE not in self.group:
+        if self.array(_checksum.TABLE) is None:
             return None
         return np.asarray(self._read(_checksum.TABLE, slice(None)), dtype=np.uint32)
 
@@ -589,7 +600,9 @@ class Dataset:
         is held whatever the array's length.
         """
         try:
-            arr = self.group[node]
+            arr = self.array(node)
+            if arr is None:
+                raise KeyError(node)
             if isinstance(sel, np.ndarray):
                 if arr.ndim != 1 or sel.size < 2:
                     return arr.get_coordinate_selection(sel)
@@ -619,8 +632,7 @@ class Dataset:
     @property
     def has_annotations(self) -> bool:
         """Whether the store has chromosome and position annotations (reads none of them)."""
-        g = self.group
-        return "features/chrom" in g and "features/pos" in g
+        return self.array("features/chrom") is not None and self.array("features/pos") is not None
 
     def feature_ids_at(self, index) -> np.ndarray:
         """Ids of the given features, reading only their entries (memory independent of p).
@@ -639,8 +651,7 @@ class Dataset:
 
     def annotations_at(self, index) -> dict[str, np.ndarray] | None:
         """Chromosome and position of the given features only, or None without annotations."""
-        g = self.group
-        if "features/chrom" not in g or "features/pos" not in g:
+        if not self.has_annotations:
             return None
         index = np.asarray(index, dtype=np.int64)
         order = np.argsort(index, kind="stable")
@@ -667,8 +678,7 @@ class Dataset:
 
     def annotations(self) -> dict[str, np.ndarray] | None:
         """Chromosome and position per feature, or None when the store has none."""
-        g = self.group
-        if "features/chrom" not in g or "features/pos" not in g:
+        if not self.has_annotations:
             return None
         return {
             "chrom": as_unicode(self._read("features/chrom", slice(None))),
@@ -676,9 +686,8 @@ class Dataset:
         }
 
     def _nodes(self) -> list[tuple[str, zarr.Array]]:
-        g = self.group
         names = ["X", *(n for n, _ in ID_NODES), _checksum.TABLE]
-        return [(n, g[n]) for n in names if n in g]
+        return [(n, a) for n in names if (a := self.array(n)) is not None]
 
     def check_chunks(self) -> list[tuple[str, Path]]:
         """Every chunk file of every array, checked to exist: (node, path) pairs.
@@ -838,10 +847,12 @@ def open_dataset(path: str | os.PathLike) -> Dataset:
         )
     if not attrs.complete:
         raise StoreError(f"{path}: incomplete store (its import did not finish); import it again")
+    # Each node opened once and kept by the handle (on object storage an opening is a request).
+    arrays = {name: _open_node(group, name) for name in ("X", *(n for n, _ in ID_NODES))}
     for name in ("X", "samples/id", "features/id"):
-        if name not in group:
+        if arrays[name] is None:
             raise StoreError(f"{path}: missing array {name!r}")
-    X = group["X"]
+    X = arrays["X"]
     _check_kind(path, attrs, X)
     if tuple(X.shape) != (attrs.n_samples, attrs.n_features):
         raise StoreError(
@@ -849,25 +860,34 @@ def open_dataset(path: str | os.PathLike) -> Dataset:
             f"({attrs.n_samples}, {attrs.n_features})"
         )
     for name, required in ID_NODES:
-        if name not in group:
+        arr = arrays[name]
+        if arr is None:
             if required:  # pragma: no cover - checked above
                 raise StoreError(f"{path}: missing array {name!r}")
             continue
-        arr = group[name]
         want = attrs.n_samples if name.startswith("samples") else attrs.n_features
         if tuple(arr.shape) != (want,):
             raise StoreError(
                 f"{path}/{name}: has shape {tuple(arr.shape)}; X's attributes need ({want},)"
             )
-    if ("features/chrom" in group) != ("features/pos" in group):
+    if (arrays["features/chrom"] is None) != (arrays["features/pos"] is None):
         raise StoreError(f"{path}: features/chrom and features/pos must come together")
     ds = Dataset(path=path, attrs=attrs, X=X)
+    ds.__dict__.update(group=group, _arrays=arrays)
     sids = ds.sample_ids()
     _check_ids(sids, "sample", f"{path}/samples/id")
     if not attrs.creator.startswith("widescreen"):
         # Written elsewhere: its ids never went through our import checks.
         _check_feature_ids_streamed(ds, f"{path}/features/id")
     return ds
+
+
+def _open_node(group: zarr.Group, node: str) -> zarr.Array | None:
+    """``group[node]``, or None when there is no such node (one lookup, not a test and a lookup)."""
+    try:
+        return group[node]
+    except KeyError:
+        return None
 
 
 def _check_feature_ids_streamed(ds: Dataset, where: str) -> None:
