@@ -64,6 +64,19 @@ def screen_out(
     return score, degenerate, nonfinite, eligible
 
 
+def check_reachable(out_dir: str | None) -> None:
+    """Raise a `WorkerAccessError` naming this host when a block's run folder is not visible here.
+
+    Checked before the block's read, so a cluster worker that does not see the run folder (no shared
+    file system) says so plainly instead of failing on its first write.
+    """
+    if out_dir is not None and not PassLayout(Path(out_dir)).stats.is_dir():
+        raise WorkerAccessError(
+            f"run folder {Path(out_dir).parent.parent} is not reachable from host "
+            f"{socket.gethostname()} (pid {os.getpid()}): no {PassLayout(Path(out_dir)).stats}"
+        )
+
+
 def process_block(source: BlockSource, spec: PassSpec, i: int, out_dir: str | None) -> dict:
     """Read block ``i``, compute its statistics, record them, return its top k.
 
@@ -76,12 +89,7 @@ def process_block(source: BlockSource, spec: PassSpec, i: int, out_dir: str | No
         (dict of arrays of shape (width,)) without a run folder.
     """
     t0 = time.perf_counter()
-    if out_dir is not None and not PassLayout(Path(out_dir)).stats.is_dir():
-        # Checked before the read so a worker that does not see the run folder says so plainly.
-        raise WorkerAccessError(
-            f"run folder {Path(out_dir).parent.parent} is not reachable from host "
-            f"{socket.gethostname()} (pid {os.getpid()}): no {PassLayout(Path(out_dir)).stats}"
-        )
+    check_reachable(out_dir)
     start, stop = source.bounds(i)
     raw = source.read(i)
     dosage = source.value_kind == "dosage"

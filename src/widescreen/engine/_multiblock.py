@@ -18,7 +18,15 @@ import numpy as np
 
 from ..schema import PassLayout
 from ..store import prepare_block
-from ._block import MARKER_COUNTS, _filter_mask, chunks_whole, finish_block, save_marker, screen_out
+from ._block import (
+    MARKER_COUNTS,
+    _filter_mask,
+    check_reachable,
+    chunks_whole,
+    finish_block,
+    save_marker,
+    screen_out,
+)
 from ._source import BlockSource
 from ._spec import PassSpec
 from ._topk import MultiTopK, block_topk_multi, merge_multi
@@ -34,6 +42,7 @@ def process_multi_block(source: BlockSource, spec: PassSpec, i: int, out_dir: st
         of shape (K,) (per response); ``stats`` holds (width, K) arrays for the kernel's columns.
     """
     t0 = time.perf_counter()
+    check_reachable(out_dir)
     K = spec.n_responses
     start, stop = source.bounds(i)
     raw = source.read(i)
