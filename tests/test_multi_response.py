@@ -167,3 +167,37 @@ def test_refusals(data):
     # Cox: the responses share the times and events (they differ in their samples only).
     with pytest.raises(ValueError, match="same time in every response"):
         screen_responses(cox, Ys["linear"])
+
+
+def test_mask_sums_from_lists_of_samples(data, monkeypatch):
+    # Masks that leave out few samples are summed over lists of samples (the left-out ones
+    # subtracted from the block's totals): the same exact integers as the masks' float32 product,
+    # checked here against numpy's sums by definition, and the same statistics to the last bit.
+    from widescreen.kernels import _multi
+    from widescreen.store import _accel, prepare_block
+
+    if not _accel.use_numba:
+        pytest.skip("the lists of samples are summed by compiled loops")
+    ds, Z, Ys = data
+    rng = np.random.default_rng(3)
+    raw = np.asarray(ds.X[:, :50])
+    # Masks leaving out none, 5%, 30% (lists of left-out samples), 60%, 95% (lists of their own).
+    masks = rng.random((N, 5)) > np.array([0.0, 0.05, 0.3, 0.6, 0.95])
+    lists = _multi.MaskRows.of(masks)
+    assert lists is not None and lists.complement.tolist() == [True, True, True, False, False]
+    s1, s2, n_miss = _multi._gathered_sums(raw, lists)
+    x = np.where(raw == -128, 0, raw).astype(np.int64)
+    m = masks.T.astype(np.int64)
+    np.testing.assert_array_equal(s1, m @ x)
+    np.testing.assert_array_equal(s2, m @ (x * x))
+    np.testing.assert_array_equal(n_miss, m @ (raw == -128))
+    block = prepare_block(raw, 0, None)
+    st = _multi.prepare_linear_multi(Ys["linear"], Z)
+    assert st.gather is None  # 15% and more left out: the product is cheaper
+    by_product = _multi.linear_multi_statistics(block, st)
+    monkeypatch.setattr(_multi, "_GATHER_COST", 0.0)
+    st = _multi.prepare_linear_multi(Ys["linear"], Z)
+    assert st.gather is not None
+    by_lists = _multi.linear_multi_statistics(block, st)
+    for c in by_product:
+        np.testing.assert_array_equal(by_lists[c], by_product[c], err_msg=c)

@@ -29,7 +29,7 @@ from ._block import (
 )
 from ._source import BlockSource
 from ._spec import PassSpec
-from ._topk import MultiTopK, block_topk_multi, merge_multi
+from ._topk import MultiTopK, block_topk_multi
 
 
 def process_multi_block(source: BlockSource, spec: PassSpec, i: int, out_dir: str | None) -> dict:
@@ -47,14 +47,19 @@ def process_multi_block(source: BlockSource, spec: PassSpec, i: int, out_dir: st
     start, stop = source.bounds(i)
     raw = source.read(i)
     dosage = source.value_kind == "dosage"
-    cols: dict[str, list[np.ndarray]] = {c: [] for c in spec.all_columns}
-    parts: list[MultiTopK] = []
+    rows = stop - start
+    # Each statistic is filled in place, sub-block by sub-block, in the (width, K) layout it is written
+    # in; the top k of each response is chosen once for the whole block (the same lists as merging
+    # per-sub-block lists: the selection is exact, ties broken by index).
+    stats = {c: np.empty((rows, K)) for c in spec.all_columns}
+    scores = np.empty((rows, K))
+    ok = np.empty((rows, K), dtype=bool)
     n_constant = np.zeros(K, np.int64)
     n_filtered = np.zeros(K, np.int64)
     n_degenerate = np.zeros(K, np.int64)
     n_nonfinite = np.zeros(K, np.int64)
-    for a in range(0, stop - start, spec.sub_block):
-        b = min(a + spec.sub_block, stop - start)
+    for a in range(0, rows, spec.sub_block):
+        b = min(a + spec.sub_block, rows)
         block = prepare_block(raw[:, a:b], start + a, spec.rows)
         out = spec.kernel(block, spec.state)
         shape = (block.width, K)
@@ -65,27 +70,27 @@ def process_multi_block(source: BlockSource, spec: PassSpec, i: int, out_dir: st
         off = filtered | constant
         score, degenerate, nonfinite, eligible = screen_out(spec, out, off, start + a, start + b)
         out["score"] = score
+        ok[a:b] = eligible
         n_filtered += np.count_nonzero(filtered, axis=0)
         n_degenerate += np.count_nonzero(degenerate, axis=0)
         n_nonfinite += np.count_nonzero(nonfinite, axis=0)
         n_constant += np.count_nonzero(constant, axis=0)
         for c in spec.columns:
-            cols[c].append(np.asarray(out[c], dtype=np.float64))
-        cols["missing_rate"].append(np.asarray(missing, dtype=np.float64))
-        cols["mean"].append(np.asarray(mean, dtype=np.float64))
-        cols["filtered"].append(filtered.astype(np.float64))
-        parts.append(block_topk_multi(spec.keep, start + a, score, eligible))
-    stats = {c: np.concatenate(v) for c, v in cols.items()}
+            stats[c][a:b] = out[c]
+        stats["missing_rate"][a:b] = missing
+        stats["mean"][a:b] = mean
+        stats["filtered"][a:b] = filtered
+        scores[a:b] = score
     record = {
         "block": i,
         "start": start,
         "stop": stop,
-        "topk": merge_multi(parts, spec.keep, K),
+        "topk": block_topk_multi(spec.keep, start, scores, ok),
         "n_filtered": n_filtered,
         "n_constant": n_constant,
         "n_degenerate": n_degenerate,
         "n_nonfinite": n_nonfinite,
-        "sub_block": int(min(spec.sub_block, stop - start)),
+        "sub_block": int(min(spec.sub_block, rows)),
         "seconds": time.perf_counter() - t0,
     }
     return finish_block(record, stats, out_dir, source.block_width, t0, write_multi_marker)

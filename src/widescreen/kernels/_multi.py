@@ -32,7 +32,7 @@ from dataclasses import dataclass, field
 import numpy as np
 from scipy import special
 
-from ..store import MISSING_INT8, Block
+from ..store import MISSING_INT8, Block, _accel
 from ._glm_state import as_covariates, prepare_glm
 from ._linear import _orthonormal_basis
 
@@ -90,6 +90,97 @@ def _squares(block: Block, lhs_t: np.ndarray) -> np.ndarray:
 
 
 # --------------------------------------------------------------------------------------------
+# Sums over each mask's samples of an int8 block, from lists of samples
+
+
+#: A gathered row of an int8 block costs about this many rows of a mask's float32 product (measured:
+#: 0.10 us against 0.043 us a sample per 1024 features, one core).
+_GATHER_COST = 2.5
+
+
+@dataclass(frozen=True)
+class MaskRows:
+    """The samples of each mask as a list: its own samples, or (``complement``) those it leaves out,
+    whichever is shorter; the sums of a complement mask are the block's totals minus theirs.
+
+    Attributes
+    ----------
+    rows : ndarray of intp
+        The lists of every mask, one after the other.
+    offsets : ndarray of intp of shape (G + 1,)
+        Mask g's list is ``rows[offsets[g]:offsets[g + 1]]``.
+    complement : ndarray of bool of shape (G,)
+    """
+
+    rows: np.ndarray
+    offsets: np.ndarray
+    complement: np.ndarray
+
+    @classmethod
+    def of(cls, mask: np.ndarray) -> MaskRows | None:
+        """The lists of the (n, G) boolean masks, or None when the float32 product of the masks is
+        cheaper (masks that leave out many samples, such as half-samples) or numba is off."""
+        if not _accel.use_numba:
+            return None
+        n, G = mask.shape
+        n_in = mask.sum(axis=0)
+        complement = n - n_in < n_in
+        rows = [np.flatnonzero(~mask[:, g] if c else mask[:, g]) for g, c in enumerate(complement)]
+        cost = sum(r.size for r in rows) + (n if complement.any() else 0)
+        if _GATHER_COST * cost > G * n:
+            return None
+        offsets = np.concatenate([[0], np.cumsum([r.size for r in rows])]).astype(np.intp)
+        return cls(np.concatenate(rows).astype(np.intp), offsets, complement)
+
+
+@_accel._jit
+def _add_rows(raw, rows, a0, a1, a2):  # pragma: no cover - compiled
+    # Missing count, sum and sum of squares of the listed rows; exact in int32 (|x| <= 127).
+    w = raw.shape[1]
+    for r in rows:
+        for j in range(w):
+            v = np.int32(raw[r, j])
+            m = v == MISSING_INT8
+            v = np.int32(0) if m else v
+            a0[j] += m
+            a1[j] += v
+            a2[j] += v * v
+
+
+@_accel._jit
+def _gathered_sums_loop(raw, rows, offsets, complement, s0, s1, s2):  # pragma: no cover - compiled
+    n, w = raw.shape
+    t0, t1, t2 = np.zeros(w, np.int32), np.zeros(w, np.int32), np.zeros(w, np.int32)
+    a0, a1, a2 = np.zeros(w, np.int32), np.zeros(w, np.int32), np.zeros(w, np.int32)
+    if complement.any():
+        _add_rows(raw, np.arange(n), t0, t1, t2)
+    for g in range(offsets.size - 1):
+        a0[:] = 0
+        a1[:] = 0
+        a2[:] = 0
+        _add_rows(raw, rows[offsets[g] : offsets[g + 1]], a0, a1, a2)
+        if complement[g]:
+            for j in range(w):
+                s0[g, j] = t0[j] - a0[j]
+                s1[g, j] = t1[j] - a1[j]
+                s2[g, j] = t2[j] - a2[j]
+        else:
+            for j in range(w):
+                s0[g, j] = a0[j]
+                s1[g, j] = a1[j]
+                s2[g, j] = a2[j]
+
+
+def _gathered_sums(raw: np.ndarray, lists: MaskRows):
+    """Per mask, the sums of x, of x^2 and of the missing indicator over its samples (int8 block),
+    exact integers: the same values as the masks' float32 product."""
+    G, w = lists.complement.size, raw.shape[1]
+    s0, s1, s2 = np.empty((G, w)), np.empty((G, w)), np.empty((G, w))
+    _gathered_sums_loop(raw, lists.rows, lists.offsets, lists.complement, s0, s1, s2)
+    return s1, s2, s0
+
+
+# --------------------------------------------------------------------------------------------
 # Linear family
 
 
@@ -129,6 +220,8 @@ class MultiLinearState:
     resp_t: np.ndarray = field(default=None, repr=False, compare=False)  # type: ignore[assignment]
     #: The masks as float32 (G, n), for their exact integer sums over int8 blocks.
     masks32: np.ndarray = field(default=None, repr=False, compare=False)  # type: ignore[assignment]
+    #: The masks as lists of samples for `_gathered_sums` (None: the float32 product is cheaper).
+    gather: MaskRows | None = field(default=None, repr=False, compare=False)
 
     def __post_init__(self) -> None:
         if self.lhs_t is None:
@@ -138,6 +231,7 @@ class MultiLinearState:
             resp = np.vstack([parts[0], parts[2]])
             object.__setattr__(self, "resp_t", np.ascontiguousarray(resp))
             object.__setattr__(self, "masks32", np.ascontiguousarray(self.groups.T, np.float32))
+            object.__setattr__(self, "gather", MaskRows.of(self.groups > 0))
 
     @property
     def n_responses(self) -> int:
@@ -225,15 +319,18 @@ def _summaries(block: Block, sums_v: np.ndarray, nob: np.ndarray, n: np.ndarray)
     return sums / np.maximum(nob, 1.0), (n[:, None] - nob) / np.maximum(n[:, None], 1.0)
 
 
-def _int8_mask_sums(block: Block, masks32: np.ndarray):
+def _int8_mask_sums(block: Block, masks32: np.ndarray, lists: MaskRows | None = None):
     """Per mask, the sums of x, of x^2 and of the missing indicator over its samples, for an int8 block:
     one float32 product of the 0/1 masks with ``[x | x^2 | missing]``, exact (sums of small integers
-    below 2^24), or None when the block is not int8 or its sums could exceed that."""
+    below 2^24), or None when the block is not int8 or its sums could exceed that. With ``lists`` (masks
+    that leave out few samples) the same integers are summed over the listed samples instead."""
     if block.raw.dtype != np.int8:
         return None
     n_obs = block.n_samples - block.n_missing
     if block.width == 0 or np.max(block.sumsq + n_obs * block.mean**2) >= 2.0**23:
         return None
+    if lists is not None:
+        return _gathered_sums(block.raw, lists)
     w = block.width
     cols = np.flatnonzero(block.n_missing)
     xs = np.empty((block.n_samples, 2 * w + cols.size), np.float32)
@@ -262,7 +359,7 @@ def linear_multi_statistics(block: Block, state: MultiLinearState) -> dict[str, 
     """
     K, G = state.n_responses, state.groups.shape[1]
     q = state.basis.shape[2]
-    sums = _int8_mask_sums(block, state.masks32)
+    sums = _int8_mask_sums(block, state.masks32, state.gather)
     if sums is not None:
         # int8: the masks' counts and sums are exact integers (float32 product), so each response's
         # mean, centred sum of squares and constant flag are those of its own pass, bit for bit.

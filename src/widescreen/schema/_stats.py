@@ -72,6 +72,8 @@ def _codecs_ok(array) -> bool:
 def stats_chunk_bytes(values: np.ndarray, width: int) -> bytes:
     """The bytes of one block's chunk file: little-endian float64, NaN-padded to the chunk length
     (a statistic of K responses: (width, K) values, row by row)."""
+    if values.shape[0] == width:  # a whole block: one copy
+        return np.asarray(values, dtype="<f8").tobytes()
     buf = np.full((width, *values.shape[1:]), np.nan, dtype="<f8")
     buf[: values.shape[0]] = values
     return buf.tobytes()
