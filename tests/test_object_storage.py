@@ -132,6 +132,10 @@ def test_import_to_s3_then_inspect(study):
     assert f"store        {study['url']}" in res.output
     assert "200 samples x 800 features" in res.output
     assert "CRC-32C per chunk" in res.output
+    from widescreen.store import inspect_dataset
+
+    # every block read (ahead, on object storage): the missing rate of the values themselves
+    assert inspect_dataset(study["url"]).missing_rate == float(np.mean(study["X"] == -128))
 
 
 @pytest.mark.parametrize("command", ["screen", "run"])

@@ -317,12 +317,18 @@ def plan_memory(
         f"a memory budget of {format_bytes(total)} is too small for this pass: one worker thread "
         f"needs at least {format_bytes(per)} (a chunk column of {n_row_chunks * shape.chunk_rows} x "
         f"{shape.chunk_cols} values of {shape.itemsize} byte(s), {format_bytes(shape.column_bytes)}, "
-        f"is decoded whole; its chunk file takes up to {format_bytes(shape.encoded_bytes)}; the "
+        f"is decoded whole; {_encoded_what(shape)} up to {format_bytes(shape.encoded_bytes)}; the "
         f"top-{keep} values {format_bytes(2 * shape.n_analysed * min(keep, shape.chunk_cols) * shape.itemsize)}) on top of "
         f"{format_bytes(shared)} for the process ({format_bytes(baseline)} of its own) and pending "
         "merges; give at least "
         f"{format_bytes(per + shared)}, or store X with fewer features per chunk"
     )
+
+
+def _encoded_what(shape: BlockShape) -> str:
+    if shape.encoded_columns > 1:
+        return "its objects and the next block's (read ahead) take"
+    return "its objects take" if shape.encoded_columns else "its chunk file takes"
 
 
 __all__ = [

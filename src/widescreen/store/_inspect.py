@@ -9,7 +9,7 @@ import numpy as np
 
 from ._format import MISSING_INT8, open_dataset
 from ._location import RemotePath
-from ._reader import ChunkLayout, read_block
+from ._reader import ChunkLayout, ReadAhead, read_block
 
 
 @dataclass(frozen=True)
@@ -168,12 +168,19 @@ def inspect_dataset(path: str | os.PathLike, *, sample_blocks: int | None = None
     else:
         chosen = np.unique(np.linspace(0, n_blocks - 1, sample_blocks).round().astype(int))
     missing, seen = 0, 0
-    for b in chosen:
-        block = read_block(ds, int(b), layout)
-        missing += int(
-            np.count_nonzero(block == MISSING_INT8 if ds.dtype == np.int8 else np.isnan(block))
-        )
-        seen += block.size
+    # On object storage the next block is fetched while this one is counted.
+    remote = isinstance(ds.path, RemotePath) and layout.fast
+    ahead = ReadAhead(ds, layout, chosen, depth=1) if remote else None
+    try:
+        for b in chosen:
+            block = read_block(ds, int(b), layout) if ahead is None else ahead.read(int(b))
+            missing += int(
+                np.count_nonzero(block == MISSING_INT8 if ds.dtype == np.int8 else np.isnan(block))
+            )
+            seen += block.size
+    finally:
+        if ahead is not None:
+            ahead.close()
     return InspectReport(
         path=str(ds.path),
         n_samples=ds.n_samples,
