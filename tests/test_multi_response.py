@@ -201,3 +201,25 @@ def test_mask_sums_from_lists_of_samples(data, monkeypatch):
     by_lists = _multi.linear_multi_statistics(block, st)
     for c in by_product:
         np.testing.assert_array_equal(by_lists[c], by_product[c], err_msg=c)
+
+
+@pytest.mark.parametrize("covariates", [False, True])
+def test_compiled_columns_equal_the_numpy_route(data, monkeypatch, covariates):
+    # The linear columns are written by one compiled loop doing the numpy route's arithmetic:
+    # the same values bit for bit (constant and degenerate features included).
+    from widescreen.kernels import _multi
+    from widescreen.store import _accel, prepare_block
+
+    if not _accel.use_numba:
+        pytest.skip("the compiled loop needs numba")
+    ds, Z, Ys = data
+    monkeypatch.setattr(_accel, "FUSED_MAX_ROWS", 0)  # the same products (BLAS) for both routes
+    st = _multi.prepare_linear_multi(Ys["linear"], Z if covariates else None)
+    block = prepare_block(np.asarray(ds.X[:, :60]), 0, None)
+    compiled = _multi.linear_multi_statistics(block, st)
+    monkeypatch.setattr(_accel, "use_numba", False)
+    ref = _multi.linear_multi_statistics(block, st)
+    assert set(compiled) == set(ref) and ref["degenerate"].any()
+    for c in ref:
+        assert compiled[c].dtype == ref[c].dtype, c
+        np.testing.assert_array_equal(compiled[c], ref[c], err_msg=c)

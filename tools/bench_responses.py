@@ -7,6 +7,8 @@ values of a tenth of the features missing), then measures, each in its own subpr
 * ``K = k``: `widescreen.workflow.screen_responses` of k traits (each missing 5% of its samples) with a
   run folder (statistics of shape (features, k) written to disk), as ``screen --response a,b,...``
   runs its pass, threaded scheduler;
+* ``single``: the one-response pass of the first trait (`widescreen.workflow.screen_problem` on its own
+  samples, linear family, run folder), the pass the goals compare K responses with;
 * ``floor``: every chunk read, checked and decoded (`widescreen.engine` block source), nothing else;
 * ``product K``: the floor plus each block converted to float32 and multiplied by an n x K float32
   matrix (BLAS), the arithmetic a K-response pass cannot avoid.
@@ -73,7 +75,7 @@ def measure(store: Path, what: str, k: int, threads: int, workdir: Path) -> dict
     from concurrent.futures import ThreadPoolExecutor
 
     from widescreen.engine import RunFolder, as_source
-    from widescreen.workflow import Problem, screen_responses
+    from widescreen.workflow import Problem, screen_problem, screen_responses
 
     src = as_source(store)
     n = src.n_samples
@@ -89,6 +91,13 @@ def measure(store: Path, what: str, k: int, threads: int, workdir: Path) -> dict
             run=RunFolder(out),
             scheduler=f"threads:{threads}",
         )
+    elif what == "single":
+        out = workdir / "run-single"
+        shutil.rmtree(out, ignore_errors=True)
+        y = _traits(n, 1)[:, 0]
+        rows = np.flatnonzero(np.isfinite(y))
+        problem = Problem.from_arrays(store, y[rows], sample_ids=[f"s{i}" for i in rows])
+        screen_problem(problem, run=RunFolder(out), scheduler=f"threads:{threads}")
     else:
         lhs = np.ascontiguousarray(np.nan_to_num(_traits(n, k)).T, dtype=np.float32)
 
@@ -100,8 +109,10 @@ def measure(store: Path, what: str, k: int, threads: int, workdir: Path) -> dict
         with ThreadPoolExecutor(threads) as pool:
             list(pool.map(one, range(src.n_blocks)))
     seconds = time.perf_counter() - t0
-    if what == "pass":
-        shutil.rmtree(workdir / f"run-{k}", ignore_errors=True)
+    if what in ("pass", "single"):
+        shutil.rmtree(
+            workdir / ("run-single" if what == "single" else f"run-{k}"), ignore_errors=True
+        )
     return {"seconds": seconds, "cpu": _cpu() - c0, "rss_mib": _rss_mib()}
 
 
@@ -121,7 +132,11 @@ def main() -> None:
         print(json.dumps(measure(store, what, int(k), args.threads, workdir)))
         return
     ks = [int(v) for v in args.responses.split(",")]
-    todo = [("floor", 1)] + [("pass", k) for k in ks] + [("product", k) for k in ks if k > 1]
+    todo = (
+        [("floor", 1), ("single", 1)]
+        + [("pass", k) for k in ks]
+        + [("product", k) for k in ks if k > 1]
+    )
     print(f"int8 store n = {args.samples}, p = {args.features}, {args.threads} threads")
     print(f"{'measurement':<22}{'wall s':>9}{'CPU s':>9}{'peak RSS MiB':>14}")
     for what, k in todo:
@@ -134,6 +149,7 @@ def main() -> None:
         r = json.loads(proc.stdout.strip().splitlines()[-1])
         label = {
             "floor": "codec floor",
+            "single": "one-response pass",
             "pass": f"pass, K = {k}",
             "product": f"float32 product K={k}",
         }
