@@ -117,6 +117,13 @@ def test_run_on_s3_equals_local_and_resumes_from_another_copy(study, monkeypatch
     assert f"report: {url}/report.html" in res.output
     assert _fs().exists(f"{BUCKET}/runs/whole/report.html")
     assert local_copy_path(url) == tmp_path / "second" / "runs" / "s3" / BUCKET / "runs" / "whole"
+    # The bucket emptied by hand: the next run starts over, whatever the local copy still holds.
+    _fs().rm(f"{BUCKET}/runs/whole", recursive=True)
+    res = runner.invoke(app, _args("run", study["sim"], url))
+    assert res.exit_code == 0, res.output
+    manifest = json.loads(_fs().cat_file(f"{BUCKET}/runs/whole/manifest.json"))
+    assert len(manifest["sessions"]) == 1
+    assert manifest["passes"]["screen"]["blocks_reused"] == 0
 
 
 def test_report_of_one_trait_on_s3_stages_the_whole_run(study, monkeypatch, tmp_path):

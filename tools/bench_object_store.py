@@ -8,7 +8,9 @@ store as it is, then measures on this machine, best of ``--repeat``:
   ``--threads`` threads, no arithmetic; on S3 through `ReadAhead` (a pass's route: each thread's next
   block requested while it decodes the current one) unless ``--no-read-ahead``;
 * ``screen``: the whole ``widescreen screen STORE ... --no-report`` command in a fresh process (wall
-  time, including the fingerprint and the start-up), and its CPU time (user + system of the child).
+  time, including the fingerprint and the start-up), and its CPU time (user + system of the child);
+* ``screen, run folder local or on S3``: the same command on the store on disk, once with a local run
+  folder and once with ``--out s3://...`` (worked on in a local copy and uploaded as it goes).
 
 Also printed: the load average before each measurement (the machine is shared) and the CPU time the
 moto server spent serving the S3 runs (it runs on the same cores as the pass).
@@ -99,15 +101,28 @@ def _children_cpu() -> float:
     return ru.ru_utime + ru.ru_stime
 
 
-def screen(store: str, outcome: Path, out: Path) -> tuple[float, float, float]:
-    """Wall and CPU seconds of the ``screen`` command in a fresh process, and its pass's seconds."""
-    shutil.rmtree(out, ignore_errors=True)
+def screen(store: str, outcome: Path, out: Path | str) -> tuple[float, float, float]:
+    """Wall and CPU seconds of the ``screen`` command in a fresh process, and its pass's seconds
+    (``out`` may be an s3:// run folder: emptied first, its manifest read from the bucket)."""
+    import fsspec
+
+    if str(out).startswith("s3://"):
+        fs = fsspec.filesystem("s3")
+        key = str(out).removeprefix("s3://")
+        if fs.exists(key):
+            fs.rm(key, recursive=True)
+    else:
+        shutil.rmtree(out, ignore_errors=True)
     cmd = [sys.executable, "-m", "widescreen.cli", "screen", store, "--outcome", str(outcome)]
     cmd += ["--response", "y", "--out", str(out), "--no-report", "--quiet"]
     t0, c0 = time.perf_counter(), _children_cpu()
     subprocess.run(cmd, check=True, stdout=subprocess.DEVNULL)
     wall, cpu = time.perf_counter() - t0, _children_cpu() - c0
-    manifest = json.loads((out / "manifest.json").read_text())
+    if str(out).startswith("s3://"):
+        text = fsspec.filesystem("s3").cat_file(f"{str(out).removeprefix('s3://')}/manifest.json")
+    else:
+        text = (Path(out) / "manifest.json").read_text()
+    manifest = json.loads(text)
     return wall, cpu, float(manifest["passes"]["screen"]["seconds"])
 
 
@@ -217,16 +232,25 @@ def main(argv: list[str] | None = None) -> None:
             type(fs).clear_instance_cache()
         rows = []
         loads = []
-        for what, fn in (
-            ("floor", lambda s: floor(s, args.threads, not args.no_read_ahead)),
-            ("screen", lambda s: screen(s, args.workdir / "outcome.tsv", args.workdir / "run")),
+        # The run folder on S3 (its local copy under the work folder): the store on local disk for
+        # both, the run folder local or in the bucket.
+        os.environ["WIDESCREEN_CACHE_DIR"] = str(args.workdir / "cache")
+        outcome = args.workdir / "outcome.tsv"
+        for what, fn, stores in (
+            ("floor", lambda s: floor(s, args.threads, not args.no_read_ahead), (local, remote)),
+            ("screen", lambda s: screen(s, outcome, args.workdir / "run"), (local, remote)),
+            (
+                "screen, run folder local or on S3 (store on disk)",
+                lambda out: screen(local, outcome, out),
+                (args.workdir / "run", f"s3://{BUCKET}/runs/screen"),
+            ),
         ):
             best = {}
             server_cpu = 0.0
             # Alternate the two stores, so a change of the machine's load touches both alike.
             runs: dict[str, list] = {"local": [], "s3": []}
             for _ in range(args.repeat):
-                for name, store in (("local", local), ("s3", remote)):
+                for name, store in zip(("local", "s3"), stores, strict=True):
                     loads.append(os.getloadavg()[0])
                     s0 = _server_cpu(server)
                     runs[name].append(fn(store))
@@ -234,7 +258,7 @@ def main(argv: list[str] | None = None) -> None:
                         server_cpu += _server_cpu(server) - s0
             best = {name: min(r) for name, r in runs.items()}  # the fastest wall, with its CPU
             rows.append((what, best["local"][:2], best["s3"][:2], server_cpu / args.repeat))
-            if what == "screen":  # the pass alone, as the command's manifest records it
+            if what.startswith("screen"):  # the pass alone, as the command's manifest records it
                 best = {name: min(r[2] for r in runs[name]) for name in runs}
                 rows.append(("its pass", (best["local"], None), (best["s3"], None), None))
         print(

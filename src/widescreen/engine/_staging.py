@@ -204,6 +204,7 @@ class StagedRun:
         self.local.mkdir(parents=True, exist_ok=True)
         for rel in set(local) - set(remote):
             (self.local / rel).unlink(missing_ok=True)
+        _remove_empty_folders(self.local)
         want = []
         for rel, info in remote.items():
             st = local.get(rel)
@@ -258,6 +259,17 @@ class StagedRun:
                         self._sent[rel] = _key(st)
                     n += len(data)
             return n
+
+
+def _remove_empty_folders(root: Path) -> None:
+    """Remove the folders under ``root`` left empty (a folder that exists counts as content for a
+    run folder's checks, so a copy of an emptied bucket must not keep them)."""
+    for dirpath, _dirs, _files in os.walk(root, topdown=False):
+        if Path(dirpath) != root and not os.listdir(dirpath):  # its empty children are gone now
+            try:
+                os.rmdir(dirpath)
+            except OSError:
+                pass  # filled meanwhile
 
 
 def _key(st: os.stat_result) -> tuple[int, int, int]:
