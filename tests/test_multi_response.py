@@ -197,10 +197,26 @@ def test_mask_sums_from_lists_of_samples(data, monkeypatch):
     by_product = _multi.linear_multi_statistics(block, st)
     monkeypatch.setattr(_multi, "_GATHER_COST", 0.0)
     st = _multi.prepare_linear_multi(Ys["linear"], Z)
-    assert st.gather is not None
+    assert st.gather is not None and st.cov_lists is not None
     by_lists = _multi.linear_multi_statistics(block, st)
     for c in by_product:
+        # The sums are the same integers; the covariates' products, taken from shared rows and the
+        # lists (`CovariateLists`), differ by rounding only.
+        np.testing.assert_allclose(by_lists[c], by_product[c], rtol=1e-11, atol=1e-14, err_msg=c)
+    for c in ("mean", "missing_rate", "constant", "degenerate"):
         np.testing.assert_array_equal(by_lists[c], by_product[c], err_msg=c)
+
+
+def test_every_response_equals_its_own_pass_from_lists_of_samples(data, monkeypatch):
+    # The same comparison with every mask summed over lists of samples and the covariates' products
+    # from shared rows (the route of traits that miss few samples), on the odd chunking and filters.
+    from widescreen.kernels import _multi
+    from widescreen.store import _accel
+
+    if not _accel.use_numba:
+        pytest.skip("the lists of samples are summed by compiled loops")
+    monkeypatch.setattr(_multi, "_GATHER_COST", 0.0)
+    test_every_response_equals_its_own_pass(data, "linear", True)
 
 
 @pytest.mark.parametrize("covariates", [False, True])

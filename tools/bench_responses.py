@@ -6,7 +6,8 @@ values of a tenth of the features missing), then measures, each in its own subpr
 
 * ``K = k``: `widescreen.workflow.screen_responses` of k traits (each missing 5% of its samples) with a
   run folder (statistics of shape (features, k) written to disk), as ``screen --response a,b,...``
-  runs its pass, threaded scheduler;
+  runs its pass, threaded scheduler (``--covariates q``: q shared covariates, each trait adjusted on
+  its own samples);
 * ``single``: the one-response pass of the first trait (`widescreen.workflow.screen_problem` on its own
   samples, linear family, run folder), the pass the goals compare K responses with;
 * ``floor``: every chunk read, checked and decoded (`widescreen.engine` block source), nothing else;
@@ -62,6 +63,14 @@ def _traits(n: int, k: int) -> np.ndarray:
     return Y
 
 
+def _covariates(n: int, q: int) -> np.ndarray | None:
+    """q shared covariates (standard normal plus an offset), or None."""
+    if not q:
+        return None
+    rng = np.random.default_rng(1)
+    return rng.normal(size=(n, q)) + 50 * rng.random(q)
+
+
 def _cpu() -> float:
     ru = resource.getrusage(resource.RUSAGE_SELF)
     return ru.ru_utime + ru.ru_stime
@@ -71,7 +80,9 @@ def _rss_mib() -> float:
     return resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024
 
 
-def measure(store: Path, what: str, k: int, threads: int, workdir: Path) -> dict:
+def measure(
+    store: Path, what: str, k: int, threads: int, workdir: Path, covariates: int = 0
+) -> dict:
     from concurrent.futures import ThreadPoolExecutor
 
     from widescreen.engine import RunFolder, as_source
@@ -83,7 +94,8 @@ def measure(store: Path, what: str, k: int, threads: int, workdir: Path) -> dict
     if what == "pass":
         out = workdir / f"run-{k}"
         shutil.rmtree(out, ignore_errors=True)
-        problem = Problem.from_arrays(store, np.zeros(n) + np.arange(n) % 3)
+        Z = _covariates(n, covariates)
+        problem = Problem.from_arrays(store, np.zeros(n) + np.arange(n) % 3, covariates=Z)
         screen_responses(
             problem,
             _traits(n, k),
@@ -96,7 +108,13 @@ def measure(store: Path, what: str, k: int, threads: int, workdir: Path) -> dict
         shutil.rmtree(out, ignore_errors=True)
         y = _traits(n, 1)[:, 0]
         rows = np.flatnonzero(np.isfinite(y))
-        problem = Problem.from_arrays(store, y[rows], sample_ids=[f"s{i}" for i in rows])
+        Z = _covariates(n, covariates)
+        problem = Problem.from_arrays(
+            store,
+            y[rows],
+            covariates=None if Z is None else Z[rows],
+            sample_ids=[f"s{i}" for i in rows],
+        )
         screen_problem(problem, run=RunFolder(out), scheduler=f"threads:{threads}")
     else:
         lhs = np.ascontiguousarray(np.nan_to_num(_traits(n, k)).T, dtype=np.float32)
@@ -123,13 +141,15 @@ def main() -> None:
     ap.add_argument("--features", type=int, default=100_000)
     ap.add_argument("--responses", default="1,20,100,200")
     ap.add_argument("--threads", type=int, default=2)
+    ap.add_argument("--covariates", type=int, default=0, help="shared covariates of every trait")
     ap.add_argument("--child", help=argparse.SUPPRESS)
     args = ap.parse_args()
     workdir = Path(args.workdir)
     store = build(workdir, args.samples, args.features)
     if args.child:
         what, k = args.child.split(":")
-        print(json.dumps(measure(store, what, int(k), args.threads, workdir)))
+        r = measure(store, what, int(k), args.threads, workdir, args.covariates)
+        print(json.dumps(r))
         return
     ks = [int(v) for v in args.responses.split(",")]
     todo = (
@@ -137,11 +157,15 @@ def main() -> None:
         + [("pass", k) for k in ks]
         + [("product", k) for k in ks if k > 1]
     )
-    print(f"int8 store n = {args.samples}, p = {args.features}, {args.threads} threads")
+    print(
+        f"int8 store n = {args.samples}, p = {args.features}, {args.threads} threads, "
+        f"{args.covariates} covariates"
+    )
     print(f"{'measurement':<22}{'wall s':>9}{'CPU s':>9}{'peak RSS MiB':>14}")
     for what, k in todo:
         cmd = [sys.executable, __file__, "--workdir", str(workdir), "--samples", str(args.samples)]
         cmd += ["--features", str(args.features), "--threads", str(args.threads)]
+        cmd += ["--covariates", str(args.covariates)]
         cmd += ["--child", f"{what}:{k}"]
         proc = subprocess.run(cmd, capture_output=True, text=True, env=dict(os.environ))
         if proc.returncode:

@@ -171,6 +171,88 @@ def _gathered_sums_loop(raw, rows, offsets, complement, s0, s1, s2):  # pragma: 
                 s2[g, j] = a2[j]
 
 
+@dataclass(frozen=True)
+class CovariateLists:
+    """Each mask's basis products from q0 shared rows and lists of samples.
+
+    With ``zs`` the covariates centred over all samples and scaled to unit norm, mask g's basis is
+    ``Q_g = diag(m_g) (zs - 1 mu_g') C_g`` (``mu_g`` the mean of ``zs`` over its samples). For a
+    feature ``u`` centred on the mask's own samples (so ``m_g' u = 0``), ``Q_g' u = C_g' zs' diag(m_g) u``,
+    and ``zs' diag(m_g) u`` is the shared product ``zs' v`` less the sum over the samples the mask
+    leaves out (or the sum over its own, whichever list is shorter), corrected for the shift of the
+    feature's mean: q0 rows of the product instead of G q, and ``sum |list|`` samples gathered.
+
+    Attributes
+    ----------
+    zs : ndarray of shape (n, q0), C-contiguous
+    zsum : ndarray of shape (G, q0)
+        ``m_g' zs``.
+    coef : ndarray of shape (G, q0, q)
+        ``C_g``, by least squares (the basis lies in the span of the centred covariates).
+    """
+
+    zs: np.ndarray
+    zsum: np.ndarray
+    coef: np.ndarray
+
+    @classmethod
+    def of(cls, Z, groups: np.ndarray, basis: np.ndarray, lists: MaskRows | None):
+        if lists is None or Z is None or Z.shape[1] == 0 or basis.shape[2] == 0:
+            return None
+        zc = Z - Z.mean(axis=0)
+        norm = np.linalg.norm(zc, axis=0)
+        zs = np.ascontiguousarray(zc / np.where(norm > 0, norm, 1.0))
+        G, q0, q = groups.shape[1], zs.shape[1], basis.shape[2]
+        zsum = groups.T @ zs
+        coef = np.zeros((G, q0, q))
+        for g in range(G):  # once per pass
+            rows = np.flatnonzero(groups[:, g])
+            zg = zs[rows] - zs[rows].mean(axis=0)
+            coef[g] = np.linalg.lstsq(zg, basis[g][rows], rcond=None)[0]
+        return cls(zs, zsum, coef)
+
+
+@_accel._jit
+def _gathered_cov_loop(raw, mean, zs, rows, offsets, lv, lm):  # pragma: no cover - compiled
+    # Per mask: sum over its listed samples of zs_i v_i and zs_i M_i (v: values centred on the mean
+    # over all samples, 0 where missing; M: the missing indicator, added where it is 1).
+    w, q0 = raw.shape[1], zs.shape[1]
+    vv = np.empty(w)
+    for g in range(offsets.size - 1):
+        for idx in range(offsets[g], offsets[g + 1]):
+            i = rows[idx]
+            n_miss = 0
+            for j in range(w):
+                x = raw[i, j]
+                miss = x == MISSING_INT8
+                n_miss += miss
+                vv[j] = 0.0 if miss else x - mean[j]
+            for c in range(q0):
+                z = zs[i, c]
+                for j in range(w):
+                    lv[g, c, j] += z * vv[j]
+            if n_miss:
+                for j in range(w):
+                    if raw[i, j] == MISSING_INT8:
+                        for c in range(q0):
+                            lm[g, c, j] += zs[i, c]
+
+
+def _basis_products(block: Block, state: MultiLinearState, P, ML, d, K: int) -> np.ndarray:
+    """``Q_g' u_g`` (G, q, w) for each mask's centred feature, from the shared rows ``P[K:]``,
+    ``ML[K:]`` and the lists of samples (`CovariateLists`)."""
+    cl, lists = state.cov_lists, state.gather
+    G, q0 = cl.zsum.shape
+    lv, lm = np.zeros((G, q0, block.width)), np.zeros((G, q0, block.width))
+    _gathered_cov_loop(block.raw, block.mean, cl.zs, lists.rows, lists.offsets, lv, lm)
+    comp = lists.complement[:, None, None]
+    a = np.where(comp, P[None, K:] - lv, lv)  # zs' diag(m_g) v
+    am = np.where(comp, ML[None, K:] - lm, lm)  # zs' diag(m_g) M
+    # u = v - d on the mask's observed samples: zs' diag(m_g) u = a - d (zsum - am)
+    wg = a - d[:, None, :] * (cl.zsum[:, :, None] - am)
+    return np.matmul(cl.coef.transpose(0, 2, 1), wg)
+
+
 def _gathered_sums(raw: np.ndarray, lists: MaskRows):
     """Per mask, the sums of x, of x^2 and of the missing indicator over its samples (int8 block),
     exact integers: the same values as the masks' float32 product."""
@@ -214,6 +296,9 @@ class MultiLinearState:
     basis: np.ndarray
     n_obs: np.ndarray
     df: np.ndarray
+    #: The covariates (n, q0) the bases were built from (optional: they let masks given as lists of
+    #: samples replace the G q basis rows of the product by q0 shared rows, `CovariateLists`).
+    covariates: np.ndarray | None = field(default=None, repr=False, compare=False)
     lhs_t: np.ndarray = field(default=None, repr=False, compare=False)  # type: ignore[assignment]
 
     #: ``[r, basis]`` transposed: the float64 rows of the int8 route (`_int8_mask_sums` does the masks).
@@ -232,6 +317,16 @@ class MultiLinearState:
             object.__setattr__(self, "resp_t", np.ascontiguousarray(resp))
             object.__setattr__(self, "masks32", np.ascontiguousarray(self.groups.T, np.float32))
             object.__setattr__(self, "gather", MaskRows.of(self.groups > 0))
+            lists = CovariateLists.of(self.covariates, self.groups, self.basis, self.gather)
+            object.__setattr__(self, "cov_lists", lists)
+            if lists is not None:
+                rows = np.ascontiguousarray(np.vstack([parts[0], lists.zs.T]))
+                object.__setattr__(self, "resp_lists_t", rows)
+
+    #: The covariates' share of the products from lists of samples (None: the basis rows are used).
+    cov_lists: CovariateLists | None = field(default=None, repr=False, compare=False)
+    #: ``[r, zs]`` transposed: the float64 rows of the product when ``cov_lists`` is set.
+    resp_lists_t: np.ndarray | None = field(default=None, repr=False, compare=False)
 
     @property
     def n_responses(self) -> int:
@@ -295,7 +390,13 @@ def prepare_linear_multi(Y, covariates: np.ndarray | None = None) -> MultiLinear
             "covariates"
         )
     return MultiLinearState(
-        r=r / norms, groups=groups.astype(np.float64), group=group, basis=basis, n_obs=n_obs, df=df
+        r=r / norms,
+        groups=groups.astype(np.float64),
+        group=group,
+        basis=basis,
+        n_obs=n_obs,
+        df=df,
+        covariates=Z,
     )
 
 
@@ -360,6 +461,8 @@ def linear_multi_statistics(block: Block, state: MultiLinearState) -> dict[str, 
     K, G = state.n_responses, state.groups.shape[1]
     q = state.basis.shape[2]
     sums = _int8_mask_sums(block, state.masks32, state.gather)
+    # Masks given as lists of samples: the covariates' products from q0 shared rows (`CovariateLists`).
+    lists = sums is not None and state.cov_lists is not None and state.gather is not None
     if sums is not None:
         # int8: the masks' counts and sums are exact integers (float32 product), so each response's
         # mean, centred sum of squares and constant flag are those of its own pass, bit for bit.
@@ -372,8 +475,8 @@ def linear_multi_statistics(block: Block, state: MultiLinearState) -> dict[str, 
         ss = num / safe
         constant = (nob < 2) | (num == 0)
         missing = n_miss / np.maximum(state.n_obs[:, None], 1.0)
-        lhs_t = state.resp_t
-        P = block.cross(lhs_t)  # (K + G q, w)
+        lhs_t = state.resp_lists_t if lists else state.resp_t
+        P = block.cross(lhs_t)  # (K + G q, w), or (K + q0, w) with the lists
         ML = _with_missing(block, lhs_t, P)
         B = K  # the basis rows start here
     else:
@@ -388,7 +491,10 @@ def linear_multi_statistics(block: Block, state: MultiLinearState) -> dict[str, 
         mean, missing = _summaries(block, P[gsl], nob, state.n_obs)
         B = K + G
     ss_full = ss
-    if q:
+    if q and lists:
+        Qx = _basis_products(block, state, P, ML, d, K)
+        ss = ss - np.einsum("gqw,gqw->gw", Qx, Qx)
+    elif q:
         Qx = (P[B:] + ML[B:] * np.repeat(d, q, axis=0)).reshape(G, q, -1)
         ss = ss - np.einsum("gqw,gqw->gw", Qx, Qx)
     degenerate_g = constant | (ss <= 1e-10 * np.maximum(ss_full, 1e-300))
