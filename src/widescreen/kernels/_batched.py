@@ -13,6 +13,8 @@ from dataclasses import dataclass
 
 import numpy as np
 
+from ..store import _accel
+
 
 def _nuisance_solve(A: np.ndarray, rhs: np.ndarray) -> np.ndarray:
     """``A^-1 rhs`` for a stack A (m, k, k) and rhs (m, k, r); a singular member gets a ridge."""
@@ -45,7 +47,141 @@ def schur(H: np.ndarray, g: np.ndarray | None = None):
     return s, (None if g is None else sol[:, :, 1], Ainv_h)
 
 
-def _solve(H: np.ndarray, g: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+@_accel._jit
+def _cholesky_schur(H, r, L, U, ridge):  # pragma: no cover - compiled
+    """Cholesky factor L of ``H[r]``'s nuisance block (+ ridge I) and ``U[:, 0] = A^-1 h``; False if
+    the block is not positive definite."""
+    k = H.shape[1] - 1
+    for a in range(k):
+        for b in range(a + 1):
+            v = H[r, a, b]
+            if a == b:
+                v += ridge
+            for c in range(b):
+                v -= L[a, c] * L[b, c]
+            if a == b:
+                if not v > 0.0:
+                    return False
+                L[a, a] = np.sqrt(v)
+            else:
+                L[a, b] = v / L[b, b]
+    return True
+
+
+@_accel._jit
+def _chol_solve(L, U, col):  # pragma: no cover - compiled
+    """``U[:, col] = (L L')^-1 U[:, col]`` in place."""
+    k = L.shape[0]
+    for a in range(k):
+        v = U[a, col]
+        for c in range(a):
+            v -= L[a, c] * U[c, col]
+        U[a, col] = v / L[a, a]
+    for a in range(k - 1, -1, -1):
+        v = U[a, col]
+        for c in range(a + 1, k):
+            v -= L[c, a] * U[c, col]
+        U[a, col] = v / L[a, a]
+
+
+@_accel._jit
+def _factor(H, r, L, U):  # pragma: no cover - compiled
+    """Factor the nuisance block of ``H[r]`` (a ridge of 1e-10 of its trace if it is singular)."""
+    k = H.shape[1] - 1
+    if _cholesky_schur(H, r, L, U, 0.0):
+        return True
+    tr = 0.0
+    for a in range(k):
+        tr += H[r, a, a]
+    return _cholesky_schur(H, r, L, U, 1e-10 * tr + 1e-300)
+
+
+@_accel._jit
+def _solve_compiled(H, g, step, lam, ok):  # pragma: no cover - compiled
+    m, p, _ = H.shape
+    k = p - 1
+    L = np.empty((max(k, 1), max(k, 1)))
+    U = np.empty((max(k, 1), 2))
+    for r in range(m):
+        good = True
+        tr = 0.0
+        for a in range(p):
+            tr += H[r, a, a]
+            if not np.isfinite(g[r, a]):
+                good = False
+            for b in range(p):
+                if not np.isfinite(H[r, a, b]):
+                    good = False
+        hbb = H[r, k, k]
+        if not (hbb > 0.0 and tr > 0.0):
+            good = False
+        for a in range(k):
+            if not H[r, a, a] > 0.0:
+                good = False
+        if good and k:
+            good = _factor(H, r, L, U)
+        if not good:
+            step[r, :] = 0.0
+            lam[r] = 0.0
+            ok[r] = False
+            continue
+        s = hbb
+        hg = 0.0
+        if k:
+            for a in range(k):
+                U[a, 0] = H[r, a, k]
+                U[a, 1] = g[r, a]
+            _chol_solve(L, U, 0)
+            _chol_solve(L, U, 1)
+            for a in range(k):
+                s -= H[r, a, k] * U[a, 0]
+                hg += H[r, a, k] * U[a, 1]
+        if not s > 1e-12 * hbb:
+            s = max(s, 0.0) + 1e-6 * tr
+        sb = (g[r, k] - hg) / s
+        step[r, k] = sb
+        total = g[r, k] * sb
+        for a in range(k):
+            step[r, a] = U[a, 1] - U[a, 0] * sb
+            total += g[r, a] * step[r, a]
+        if np.isfinite(total):
+            lam[r] = total
+            ok[r] = True
+        else:
+            step[r, :] = 0.0
+            lam[r] = 0.0
+            ok[r] = False
+
+
+@_accel._jit
+def _last_variance_compiled(H, out):  # pragma: no cover - compiled
+    m, p, _ = H.shape
+    k = p - 1
+    L = np.empty((max(k, 1), max(k, 1)))
+    U = np.empty((max(k, 1), 2))
+    for r in range(m):
+        good = True
+        for a in range(p):
+            for b in range(p):
+                if not np.isfinite(H[r, a, b]):
+                    good = False
+        if not good:
+            out[r] = np.nan
+            continue
+        s = H[r, k, k]
+        if k:
+            if not _factor(H, r, L, U):
+                out[r] = np.nan
+                continue
+            for a in range(k):
+                U[a, 0] = H[r, a, k]
+            _chol_solve(L, U, 0)
+            for a in range(k):
+                s -= H[r, a, k] * U[a, 0]
+        out[r] = 1.0 / s if s != 0.0 else np.inf
+
+
+def newton_steps(H: np.ndarray, g: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     """Newton steps ``H^-1 g`` of a stack of systems, damped where ``b`` has (almost) no information left.
 
     Under separation the information along the separating direction fades geometrically while the
@@ -57,6 +193,10 @@ def _solve(H: np.ndarray, g: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.nda
     False where no step exists (non-finite or zero information).
     """
     m, p = g.shape
+    if _accel.use_numba:
+        step, lam, ok = np.empty((m, p)), np.empty(m), np.empty(m, dtype=bool)
+        _solve_compiled(np.ascontiguousarray(H), np.ascontiguousarray(g), step, lam, ok)
+        return step, lam, ok
     finite = np.all(np.isfinite(H), axis=(1, 2)) & np.all(np.isfinite(g), axis=1)
     H = np.where(finite[:, None, None], H, np.eye(p))
     g = np.where(finite[:, None], g, 0.0)
@@ -83,6 +223,10 @@ def _solve(H: np.ndarray, g: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.nda
 
 def last_variance(H: np.ndarray) -> np.ndarray:
     """The last diagonal element of each ``H^-1`` (the variance of ``b``); NaN where H is not finite."""
+    if _accel.use_numba:
+        out = np.empty(H.shape[0])
+        _last_variance_compiled(np.ascontiguousarray(H), out)
+        return out
     ok = np.all(np.isfinite(H), axis=(1, 2))
     s, _ = schur(np.where(ok[:, None, None], H, np.eye(H.shape[1])))
     with np.errstate(divide="ignore"):
@@ -110,7 +254,25 @@ class NewtonResult:
     n_iter: np.ndarray
 
 
-def newton(evaluate, start, dev0, g0, H0, *, max_iter: int, tol: float) -> NewtonResult:
+#: Lazy nuisance information (`newton` with ``lazy=True``): a column's step is taken with the nuisance
+#: block of its last accepted point until its predicted decrease comes within this factor of ``tol``
+#: (a convergence candidate), its step fails, or it has taken `LAZY_ITER` evaluations.
+LAZY_FACTOR = 10.0
+LAZY_ITER = 3
+
+
+def newton(
+    evaluate,
+    start,
+    dev0,
+    g0,
+    H0,
+    *,
+    max_iter: int,
+    tol: float,
+    lazy: bool = False,
+    first=None,
+) -> NewtonResult:
     """Batched Newton-Raphson with step halving for m independent smooth convex problems.
 
     Parameters
@@ -126,13 +288,30 @@ def newton(evaluate, start, dev0, g0, H0, *, max_iter: int, tol: float) -> Newto
     tol : float
         A column converges when ``g' H^-1 g``, the predicted deviance decrease of the next step, is at most
         ``tol``; that step is taken without another evaluation and its predicted decrease subtracted.
+    lazy : bool
+        ``evaluate(cols, params, nuisance)`` takes the nuisance block (c, p - 1, p - 1) to use in place of
+        the exact one and returns a fourth value, ``exact(sel)``, the exact block of ``cols[sel]``. Steps
+        far from convergence use the block of the column's last accepted point (the gradient and the
+        feature's row of the information stay exact, so the iterations reach the same maximum, in as many
+        evaluations for nearly every column); a column converges, stops, and gets its variance only with
+        the exact information (`LAZY_FACTOR`, `LAZY_ITER`).
+    first : callable, optional
+        ``first(step) -> step1`` (m, p) from the Newton steps at ``start``: the columns not converged
+        there take ``step1`` as their first trial step (a higher-order step from ``start``); the
+        convergence test at ``start`` stays ``g0``'s.
     """
-    m, _ = start.shape
+    m, p = start.shape
+    k = p - 1
     acc, acc_dev, acc_H = start.copy(), np.asarray(dev0, dtype=np.float64).copy(), H0.copy()
-    step, lam, ok = _solve(H0, g0)
+    exact_H = np.ones(m, dtype=bool)  # acc_H is the exact information at acc
+    step, lam, ok = newton_steps(H0, g0)
     out, out_dev = acc + step, acc_dev - lam
     converged = ok & (lam <= tol)
     active = ok & ~converged
+    if first is not None:
+        step1 = first(step)
+        use = active & np.all(np.isfinite(step1), axis=1)
+        step[use] = step1[use]
     scale = np.ones(m)
     n_iter = np.zeros(m, dtype=np.int64)
     while True:
@@ -140,7 +319,10 @@ def newton(evaluate, start, dev0, g0, H0, *, max_iter: int, tol: float) -> Newto
         if idx.size == 0:
             break
         trial = acc[idx] + scale[idx, None] * step[idx]
-        dev, g, H = evaluate(idx, trial)
+        if lazy:
+            dev, g, H, exact = evaluate(idx, trial, acc_H[idx, :k, :k])
+        else:
+            dev, g, H = evaluate(idx, trial)
         n_iter[idx] += 1
         base = acc_dev[idx]
         # Slack for rounding in the deviance sums, so a converging step is not mistaken for a rise.
@@ -149,8 +331,16 @@ def newton(evaluate, start, dev0, g0, H0, *, max_iter: int, tol: float) -> Newto
         scale[worse] *= 0.5
         active[worse[scale[worse] < 2.0**-30]] = False
         good = idx[better]
-        s, lam, okh = _solve(H[better], g[better])
-        acc[good], acc_dev[good], acc_H[good] = trial[better], dev[better], H[better]
+        H, g = H[better], g[better]
+        s, lam, okh = newton_steps(H, g)
+        if lazy:
+            need = ~okh | (lam <= LAZY_FACTOR * tol) | (n_iter[good] >= LAZY_ITER)
+            if need.any():
+                sel = np.flatnonzero(need)
+                H[sel, :k, :k] = exact(np.flatnonzero(better)[sel])
+                s[sel], lam[sel], okh[sel] = newton_steps(H[sel], g[sel])
+            exact_H[good] = need
+        acc[good], acc_dev[good], acc_H[good] = trial[better], dev[better], H
         step[good], scale[good] = s, 1.0
         active[good[~okh]] = False
         fin = okh & (lam <= tol)
@@ -158,5 +348,13 @@ def newton(evaluate, start, dev0, g0, H0, *, max_iter: int, tol: float) -> Newto
         converged[done], active[done] = True, False
         out[done], out_dev[done] = acc[done] + s[fin], acc_dev[done] - lam[fin]
     stopped = ~converged
+    if lazy:
+        # A column stopped (max_iter, halvings) at a point whose nuisance block was not exact: one more
+        # evaluation there for its information.
+        redo = np.flatnonzero(stopped & ~exact_H)
+        if redo.size:
+            _, _, H, exact = evaluate(redo, acc[redo], acc_H[redo, :k, :k])
+            H[:, :k, :k] = exact(np.arange(redo.size))
+            acc_H[redo] = H
     out[stopped], out_dev[stopped] = acc[stopped], acc_dev[stopped]
     return NewtonResult(out, out_dev, acc_H, converged, n_iter)

@@ -37,8 +37,17 @@ def design_pairs(D: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     return np.ascontiguousarray(D[:, rows] * D[:, cols]), rows, cols
 
 
-def evaluate_joint(st: GLMState, ws: Workspace, pairs, yx: np.ndarray, sx: np.ndarray, idx, params):
-    """Deviance, score and information of ``eta0 + D gamma + b x`` at ``params`` = [gamma, b]."""
+def evaluate_joint(
+    st: GLMState, ws: Workspace, pairs, yx: np.ndarray, sx: np.ndarray, idx, params, nuisance=None
+):
+    """Deviance, score and information of ``eta0 + D gamma + b x`` at ``params`` = [gamma, b].
+
+    The nuisance block ``D' W D`` of the information is the one product whose size grows with the
+    square of the number of covariates. Given ``nuisance`` (len(idx), k, k), that block is taken from it
+    instead and a fourth value is returned: ``exact(sel)``, the exact block of the columns ``idx[sel]``
+    at these ``params`` (valid until the next evaluation of the workspace); the score, the cross column
+    ``D' W x`` and ``x' W x`` are always exact.
+    """
     pos = ws.take(idx)
     x = ws.x
     D, k = st.design, st.design.shape[1]
@@ -85,16 +94,30 @@ def evaluate_joint(st: GLMState, ws: Workspace, pairs, yx: np.ndarray, sx: np.nd
     else:
         ell = st.y @ st.eta0 + gam @ yD + b * yx - mu_sum
     prod, rows, cols = pairs
-    c = x.shape[1]
-    H = np.empty((c, k + 1, k + 1))
-    H[:, rows, cols] = (prod.T @ w).T
-    H[:, cols, rows] = H[:, rows, cols]
-    H[:, :k, k] = H[:, k, :k] = (D.T @ wx).T
-    H[:, k, k] = xwx
-    g = np.empty((c, k + 1))
-    g[:, :k] = yD[None] - (D.T @ mu).T
-    g[:, k] = yx - xmu
-    return -2.0 * ell[pos], g[pos], H[pos]
+    # (n, c)' @ (n, k): the transposed product is the faster layout for a narrow D.
+    g = np.empty((pos.size, k + 1))
+    g[:, :k] = yD[None] - (mu.T @ D)[pos]
+    g[:, k] = (yx - xmu)[pos]
+    H = np.empty((pos.size, k + 1, k + 1))
+    H[:, :k, k] = H[:, k, :k] = (wx.T @ D)[pos]
+    H[:, k, k] = xwx[pos]
+    if nuisance is None:
+        H[:, rows, cols] = (w.T @ prod)[pos]
+        H[:, cols, rows] = H[:, rows, cols]
+        return -2.0 * ell[pos], g, H
+    H[:, :k, :k] = nuisance
+
+    def exact(sel: np.ndarray) -> np.ndarray:
+        cols_w = pos[sel]
+        A = np.empty((cols_w.size, k, k))
+        # A copy of the selected columns costs more than the product over a few extra ones.
+        A[:, rows, cols] = (
+            (w.T @ prod)[cols_w] if 2 * cols_w.size > w.shape[1] else w[:, cols_w].T @ prod
+        )
+        A[:, cols, rows] = A[:, rows, cols]
+        return A
+
+    return -2.0 * ell[pos], g, H, exact
 
 
 def evaluate_logistic(st: GLMState, ws: Workspace, yx: np.ndarray, sx: np.ndarray, idx, params):

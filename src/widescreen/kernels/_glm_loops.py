@@ -186,3 +186,19 @@ def poisson_joint_sums(mu, x, wx, out):  # pragma: no cover - compiled
         out[0, j] = s0[j]
         out[1, j] = s1[j]
         out[2, j] = s2[j]
+
+
+@_accel._jit
+def taylor_terms(e, x, b, dw, dw2, out):  # pragma: no cover - compiled
+    """With v = e_ij + b_j x_ij: ``e_ij = dw_i v^2 + dw2_i v^3 / 3`` in place, ``out_j += sum_i e_ij x_ij``."""
+    n, c = e.shape
+    for i in range(n):
+        w1 = dw[i]
+        w2 = dw2[i] / 3.0
+        ei = e[i]
+        xi = x[i]
+        for j in range(c):
+            v = ei[j] + b[j] * xi[j]
+            u = v * v * (w1 + w2 * v)
+            ei[j] = u
+            out[j] += u * xi[j]
