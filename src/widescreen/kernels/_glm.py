@@ -5,9 +5,12 @@ For feature j the kernel fits the full model ``g(E y_i) = offset_i + gamma' C_i 
 every nuisance coefficient refitted with the feature (the marginal utility of Fan & Song 2010 when there
 are no covariates). The null fit (``b_j = 0``) is done once in `prepare_logistic` / `prepare_poisson`
 (module `_glm_state`); every feature starts there, where score and information are matrix products, so the
-first trial point is the one-step estimate. All features of a block take their Newton steps together
-(module `_batched`): each step is a few whole-array operations and matrix products with the nuisance
-columns (module `_glm_evaluate`) and a batch of small solves, never a loop over features.
+first trial point is the one-step estimate (with covariates, its third-order refinement, `_taylor_start`).
+All features of a block take their Newton steps together (module `_batched`): each step is a few
+whole-array operations and matrix products with the nuisance columns (module `_glm_evaluate`) and a batch
+of small solves, never a loop over features. With covariates, the nuisance block of the information (the
+one product whose size grows with q^2) is computed once per feature, where it may converge; the steps
+before use the block of the feature's last accepted point (``newton(lazy=True)``).
 
 Statistics (``test="lr"``, the default)
 ----------------------------------------
@@ -28,11 +31,12 @@ Newton iterations
 -----------------
 A step that raises the deviance is halved; a feature stops when the predicted deviance decrease
 ``g' H^-1 g`` of its next step is at most ``tol`` (default 1e-10), and that step is then taken without
-another evaluation. Null features typically need two evaluations. Under (quasi-)separation the maximum
-likelihood estimate does not exist: the steps (damped where the information has become singular) run
-until the deviance stops falling or ``max_iter``; ``separated`` flags the feature, ``beta`` is the large
-value reached, ``lr_chi2`` approaches its supremum and ``std_error`` may be infinite. A block is worked on
-in tiles of columns (module `_tiles`), and a tile's working columns shrink as features converge.
+another evaluation. Null features typically need two evaluations (one with covariates, from the
+third-order start). Under (quasi-)separation the maximum likelihood estimate does not exist: the steps
+(damped where the information has become singular) run until the deviance stops falling or ``max_iter``;
+``separated`` flags the feature, ``beta`` is the large value reached, ``lr_chi2`` approaches its supremum
+and ``std_error`` may be infinite. A block is worked on in tiles of columns (module `_tiles`), and a
+tile's working columns shrink as features converge.
 """
 
 from __future__ import annotations

@@ -6,7 +6,8 @@ the information (negative Hessian), nuisance parameters first and the feature's 
 
 * `evaluate_joint`: ``eta0 + D gamma + b x`` with the whitened nuisance columns ``D`` (intercept and
   covariates): the full model ``y ~ 1 + covariates + x`` refitted per feature. The sums over samples are
-  matrix products of ``D`` (and its column products) with the tile's means and weights.
+  matrix products of ``D`` (and its column products) with the tile's means and weights; the product with
+  the column products (the nuisance block) can be left to the caller's choice of columns (``nuisance``).
 * `evaluate_logistic`: no covariates, ``eta0 + a + b x``: six sums per column, fused when numba is on.
 * `evaluate_poisson_profile`: no covariates, Poisson: the intercept has a closed form given ``b``.
 """
