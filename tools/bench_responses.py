@@ -124,7 +124,11 @@ def measure(
             if what == "product":
                 lhs @ raw.astype(np.float32)
 
-        with ThreadPoolExecutor(threads) as pool:
+        from threadpoolctl import threadpool_limits
+
+        # One BLAS thread per worker, as the pass runs its products (idle BLAS threads spinning on
+        # a loaded machine otherwise count as CPU time).
+        with threadpool_limits(limits=1, user_api="blas"), ThreadPoolExecutor(threads) as pool:
             list(pool.map(one, range(src.n_blocks)))
     seconds = time.perf_counter() - t0
     if what in ("pass", "single"):

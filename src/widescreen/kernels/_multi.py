@@ -93,9 +93,11 @@ def _squares(block: Block, lhs_t: np.ndarray) -> np.ndarray:
 # Sums over each mask's samples of an int8 block, from lists of samples
 
 
-#: A gathered row of an int8 block costs about this many rows of a mask's float32 product (measured:
-#: 0.10 us against 0.043 us a sample per 1024 features, one core).
-_GATHER_COST = 2.5
+#: A gathered row of an int8 block costs about this many samples of one mask's float32 product, and
+#: building the product's float32 operand about as much as ``_PRODUCT_BUILD`` masks (measured per 1024
+#: features, n = 2000, one core: 0.1 us a gathered row; the product 6 ms + 0.025 ms a mask).
+_GATHER_COST = 8.0
+_PRODUCT_BUILD = 240
 
 
 @dataclass(frozen=True)
@@ -119,7 +121,7 @@ class MaskRows:
     @classmethod
     def of(cls, mask: np.ndarray) -> MaskRows | None:
         """The lists of the (n, G) boolean masks, or None when the float32 product of the masks is
-        cheaper (masks that leave out many samples, such as half-samples) or numba is off."""
+        cheaper (hundreds of masks that each leave out many samples) or numba is off."""
         if not _accel.use_numba:
             return None
         n, G = mask.shape
@@ -127,7 +129,7 @@ class MaskRows:
         complement = n - n_in < n_in
         rows = [np.flatnonzero(~mask[:, g] if c else mask[:, g]) for g, c in enumerate(complement)]
         cost = sum(r.size for r in rows) + (n if complement.any() else 0)
-        if _GATHER_COST * cost > G * n:
+        if _GATHER_COST * cost > (G + _PRODUCT_BUILD) * n:
             return None
         offsets = np.concatenate([[0], np.cumsum([r.size for r in rows])]).astype(np.intp)
         return cls(np.concatenate(rows).astype(np.intp), offsets, complement)
@@ -423,8 +425,8 @@ def _summaries(block: Block, sums_v: np.ndarray, nob: np.ndarray, n: np.ndarray)
 def _int8_mask_sums(block: Block, masks32: np.ndarray, lists: MaskRows | None = None):
     """Per mask, the sums of x, of x^2 and of the missing indicator over its samples, for an int8 block:
     one float32 product of the 0/1 masks with ``[x | x^2 | missing]``, exact (sums of small integers
-    below 2^24), or None when the block is not int8 or its sums could exceed that. With ``lists`` (masks
-    that leave out few samples) the same integers are summed over the listed samples instead."""
+    below 2^24), or None when the block is not int8 or its sums could exceed that. With ``lists`` the same
+    integers are summed over the listed samples instead."""
     if block.raw.dtype != np.int8:
         return None
     n_obs = block.n_samples - block.n_missing
