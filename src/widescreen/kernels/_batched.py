@@ -254,13 +254,6 @@ class NewtonResult:
     n_iter: np.ndarray
 
 
-#: Lazy nuisance information (`newton` with ``lazy=True``): a column's step is taken with the nuisance
-#: block of its last accepted point until its predicted decrease comes within this factor of ``tol``
-#: (a convergence candidate), its step fails, or it has taken `LAZY_ITER` evaluations.
-LAZY_FACTOR = 10.0
-LAZY_ITER = 3
-
-
 def newton(
     evaluate,
     start,
@@ -270,7 +263,6 @@ def newton(
     *,
     max_iter: int,
     tol: float,
-    lazy: bool = False,
     first=None,
 ) -> NewtonResult:
     """Batched Newton-Raphson with step halving for m independent smooth convex problems.
@@ -288,22 +280,13 @@ def newton(
     tol : float
         A column converges when ``g' H^-1 g``, the predicted deviance decrease of the next step, is at most
         ``tol``; that step is taken without another evaluation and its predicted decrease subtracted.
-    lazy : bool
-        ``evaluate(cols, params, nuisance)`` takes the nuisance block (c, p - 1, p - 1) to use in place of
-        the exact one and returns a fourth value, ``exact(sel)``, the exact block of ``cols[sel]``. Steps
-        far from convergence use the block of the column's last accepted point (the gradient and the
-        feature's row of the information stay exact, so the iterations reach the same maximum, in as many
-        evaluations for nearly every column); a column converges, stops, and gets its variance only with
-        the exact information (`LAZY_FACTOR`, `LAZY_ITER`).
     first : callable, optional
         ``first(step) -> step1`` (m, p) from the Newton steps at ``start``: the columns not converged
         there take ``step1`` as their first trial step (a higher-order step from ``start``); the
         convergence test at ``start`` stays ``g0``'s.
     """
-    m, p = start.shape
-    k = p - 1
+    m, _ = start.shape
     acc, acc_dev, acc_H = start.copy(), np.asarray(dev0, dtype=np.float64).copy(), H0.copy()
-    exact_H = np.ones(m, dtype=bool)  # acc_H is the exact information at acc
     step, lam, ok = newton_steps(H0, g0)
     out, out_dev = acc + step, acc_dev - lam
     converged = ok & (lam <= tol)
@@ -319,10 +302,7 @@ def newton(
         if idx.size == 0:
             break
         trial = acc[idx] + scale[idx, None] * step[idx]
-        if lazy:
-            dev, g, H, exact = evaluate(idx, trial, acc_H[idx, :k, :k])
-        else:
-            dev, g, H = evaluate(idx, trial)
+        dev, g, H = evaluate(idx, trial)
         n_iter[idx] += 1
         base = acc_dev[idx]
         # Slack for rounding in the deviance sums, so a converging step is not mistaken for a rise.
@@ -333,13 +313,6 @@ def newton(
         good = idx[better]
         H, g = H[better], g[better]
         s, lam, okh = newton_steps(H, g)
-        if lazy:
-            need = ~okh | (lam <= LAZY_FACTOR * tol) | (n_iter[good] >= LAZY_ITER)
-            if need.any():
-                sel = np.flatnonzero(need)
-                H[sel, :k, :k] = exact(np.flatnonzero(better)[sel])
-                s[sel], lam[sel], okh[sel] = newton_steps(H[sel], g[sel])
-            exact_H[good] = need
         acc[good], acc_dev[good], acc_H[good] = trial[better], dev[better], H
         step[good], scale[good] = s, 1.0
         active[good[~okh]] = False
@@ -348,13 +321,5 @@ def newton(
         converged[done], active[done] = True, False
         out[done], out_dev[done] = acc[done] + s[fin], acc_dev[done] - lam[fin]
     stopped = ~converged
-    if lazy:
-        # A column stopped (max_iter, halvings) at a point whose nuisance block was not exact: one more
-        # evaluation there for its information.
-        redo = np.flatnonzero(stopped & ~exact_H)
-        if redo.size:
-            _, _, H, exact = evaluate(redo, acc[redo], acc_H[redo, :k, :k])
-            H[:, :k, :k] = exact(np.arange(redo.size))
-            acc_H[redo] = H
     out[stopped], out_dev[stopped] = acc[stopped], acc_dev[stopped]
     return NewtonResult(out, out_dev, acc_H, converged, n_iter)

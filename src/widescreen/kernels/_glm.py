@@ -8,9 +8,7 @@ are no covariates). The null fit (``b_j = 0``) is done once in `prepare_logistic
 first trial point is the one-step estimate (with covariates, its third-order refinement, `_taylor_start`).
 All features of a block take their Newton steps together (module `_batched`): each step is a few
 whole-array operations and matrix products with the nuisance columns (module `_glm_evaluate`) and a batch
-of small solves, never a loop over features. With covariates, the nuisance block of the information (the
-one product whose size grows with q^2) is computed once per feature, where it may converge; the steps
-before use the block of the feature's last accepted point (``newton(lazy=True)``).
+of small solves, never a loop over features.
 
 Statistics (``test="lr"``, the default)
 ----------------------------------------
@@ -46,7 +44,7 @@ from scipy import special
 
 from ..store import _accel
 from ..store._reader import Block
-from ._batched import last_variance, newton, newton_steps
+from ._batched import last_variance, newton
 from ._glm_evaluate import (
     design_pairs,
     evaluate_joint,
@@ -123,8 +121,8 @@ def _fit_tile(st: GLMState, ws: Workspace, tile: np.ndarray, sumsq, dead, pairs)
 
     else:
 
-        def evaluate(idx, params, nuisance=None):
-            return evaluate_joint(st, ws, pairs, yx, sx, idx, params, nuisance)
+        def evaluate(idx, params):
+            return evaluate_joint(st, ws, pairs, yx, sx, idx, params)
 
     p = H0.shape[1]
     with np.errstate(over="ignore", invalid="ignore", divide="ignore"):
@@ -137,7 +135,6 @@ def _fit_tile(st: GLMState, ws: Workspace, tile: np.ndarray, sumsq, dead, pairs)
             H0,
             max_iter=st.max_iter,
             tol=st.tol,
-            lazy=pairs is not None,
             first=first,
         )
         var = last_variance(res.hessian)
@@ -161,6 +158,26 @@ def _fit_tile(st: GLMState, ws: Workspace, tile: np.ndarray, sumsq, dead, pairs)
             )
         out["separated"] = sep
     return out
+
+
+def _null_steps(H0: np.ndarray, rhs: np.ndarray) -> np.ndarray:
+    """``H0^-1 rhs`` for the information at the null fit, whose nuisance block is every feature's.
+
+    One inverse of that (k, k) block serves the whole tile: the solves are products, by the Schur
+    complement on ``b``. Features not fitted (NaN rows) get zero steps.
+    """
+    k = H0.shape[1] - 1
+    ok = np.isfinite(H0[:, k, k])
+    if not ok.any():
+        return np.zeros_like(rhs)
+    Ainv = np.linalg.inv(H0[np.argmax(ok), :k, :k])
+    h = np.where(ok[:, None], H0[:, :k, k], 0.0)
+    U, V = h @ Ainv, rhs[:, :k] @ Ainv
+    s = np.where(ok, H0[:, k, k] - np.einsum("ij,ij->i", h, U), 1.0)
+    out = np.empty_like(rhs)
+    out[:, k] = (rhs[:, k] - np.einsum("ij,ij->i", h, V)) / s
+    out[:, :k] = V - U * out[:, k, None]
+    return np.where(ok[:, None] & np.isfinite(out), out, 0.0)
 
 
 def _taylor_start(st: GLMState, ws: Workspace, H0: np.ndarray, g0: np.ndarray, d: np.ndarray):
@@ -194,7 +211,7 @@ def _taylor_start(st: GLMState, ws: Workspace, H0: np.ndarray, g0: np.ndarray, d
             e *= v2
             t[:, k] = np.einsum("ij,ij->j", e, x)
         t[:, :k] = e.T @ D
-        d, _, _ = newton_steps(H0, g0 - 0.5 * t)
+        d = _null_steps(H0, g0 - 0.5 * t)
     # Far from the null (strong features) the expansion is no guide: there the Newton step stays.
     change = d - newton_step
     far = np.einsum("ij,ijk,ik->i", change, H0, change) > 0.25 * np.einsum(

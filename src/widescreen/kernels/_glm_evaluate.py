@@ -6,8 +6,7 @@ the information (negative Hessian), nuisance parameters first and the feature's 
 
 * `evaluate_joint`: ``eta0 + D gamma + b x`` with the whitened nuisance columns ``D`` (intercept and
   covariates): the full model ``y ~ 1 + covariates + x`` refitted per feature. The sums over samples are
-  matrix products of ``D`` (and its column products) with the tile's means and weights; the product with
-  the column products (the nuisance block) can be left to the caller's choice of columns (``nuisance``).
+  matrix products of ``D`` (and its column products) with the tile's means and weights.
 * `evaluate_logistic`: no covariates, ``eta0 + a + b x``: six sums per column, fused when numba is on.
 * `evaluate_poisson_profile`: no covariates, Poisson: the intercept has a closed form given ``b``.
 """
@@ -38,17 +37,8 @@ def design_pairs(D: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     return np.ascontiguousarray(D[:, rows] * D[:, cols]), rows, cols
 
 
-def evaluate_joint(
-    st: GLMState, ws: Workspace, pairs, yx: np.ndarray, sx: np.ndarray, idx, params, nuisance=None
-):
-    """Deviance, score and information of ``eta0 + D gamma + b x`` at ``params`` = [gamma, b].
-
-    The nuisance block ``D' W D`` of the information is the one product whose size grows with the
-    square of the number of covariates. Given ``nuisance`` (len(idx), k, k), that block is taken from it
-    instead and a fourth value is returned: ``exact(sel)``, the exact block of the columns ``idx[sel]``
-    at these ``params`` (valid until the next evaluation of the workspace); the score, the cross column
-    ``D' W x`` and ``x' W x`` are always exact.
-    """
+def evaluate_joint(st: GLMState, ws: Workspace, pairs, yx: np.ndarray, sx: np.ndarray, idx, params):
+    """Deviance, score and information of ``eta0 + D gamma + b x`` at ``params`` = [gamma, b]."""
     pos = ws.take(idx)
     x = ws.x
     D, k = st.design, st.design.shape[1]
@@ -102,23 +92,9 @@ def evaluate_joint(
     H = np.empty((pos.size, k + 1, k + 1))
     H[:, :k, k] = H[:, k, :k] = (wx.T @ D)[pos]
     H[:, k, k] = xwx[pos]
-    if nuisance is None:
-        H[:, rows, cols] = (w.T @ prod)[pos]
-        H[:, cols, rows] = H[:, rows, cols]
-        return -2.0 * ell[pos], g, H
-    H[:, :k, :k] = nuisance
-
-    def exact(sel: np.ndarray) -> np.ndarray:
-        cols_w = pos[sel]
-        A = np.empty((cols_w.size, k, k))
-        # A copy of the selected columns costs more than the product over a few extra ones.
-        A[:, rows, cols] = (
-            (w.T @ prod)[cols_w] if 2 * cols_w.size > w.shape[1] else w[:, cols_w].T @ prod
-        )
-        A[:, cols, rows] = A[:, rows, cols]
-        return A
-
-    return -2.0 * ell[pos], g, H, exact
+    H[:, rows, cols] = (w.T @ prod)[pos]
+    H[:, cols, rows] = H[:, rows, cols]
+    return -2.0 * ell[pos], g, H
 
 
 def evaluate_logistic(st: GLMState, ws: Workspace, yx: np.ndarray, sx: np.ndarray, idx, params):
