@@ -366,3 +366,35 @@ def test_robust_score_tests_equal_statistics_from_statsmodels_pieces(rng, covari
     # two agree to first order (here within 2% off the one true feature)
     hc0 = [null.score_test(exog_extra=X[:, [j]], cov_type="HC0")[0] for j in range(1, 12)]
     np.testing.assert_allclose(res["score_chi2"][1:], np.ravel(hc0), rtol=0.02)
+
+
+def test_batched_newton_steps_equal_dense_solves(rng):
+    """The batched Newton steps (compiled or numpy, by the route) against numpy.linalg.solve per system.
+
+    Regular systems give H^-1 g and g' H^-1 g; a non-finite system or one without information on b gets
+    no step; a singular Schur complement gets the damped step (Schur complement + 1e-6 trace(H)).
+    """
+    from widescreen.kernels._batched import last_variance, newton_steps
+
+    m, p = 12, 5
+    B = rng.standard_normal((m, p, 2 * p))
+    H = B @ B.transpose(0, 2, 1) + 0.1 * np.eye(p)
+    g = rng.standard_normal((m, p))
+    H[3, 0, 1] = np.nan
+    H[4, -1, -1] = 0.0
+    H[5, -1, :] = H[5, :, -1] = 2.0 * H[5, 0, :]  # b's column a multiple of the first: singular
+    H[5, -1, -1] = 4.0 * H[5, 0, 0]
+    step, lam, ok = newton_steps(H, g)
+    regular = np.setdiff1d(np.arange(m), [3, 4, 5])
+    ref = np.linalg.solve(H[regular], g[regular][:, :, None])[:, :, 0]  # numpy.linalg.solve
+    np.testing.assert_allclose(step[regular], ref, rtol=1e-9, atol=1e-12)
+    np.testing.assert_allclose(lam[regular], np.einsum("ij,ij->i", g[regular], ref), rtol=1e-9)
+    assert ok[regular].all() and not ok[[3, 4]].any() and np.all(step[[3, 4]] == 0.0)
+    # Damped: with s = 0 the step solves H + tau e_b e_b' (tau = 1e-6 trace H), by numpy.linalg.solve
+    tau = 1e-6 * np.trace(H[5])
+    damped = np.linalg.solve(H[5] + tau * np.outer(np.eye(p)[-1], np.eye(p)[-1]), g[5])
+    np.testing.assert_allclose(step[5], damped, rtol=1e-5)
+    # Variance of b: the last diagonal element of H^-1 (numpy.linalg.inv)
+    var = last_variance(H)
+    np.testing.assert_allclose(var[regular], np.linalg.inv(H[regular])[:, -1, -1], rtol=1e-9)
+    assert np.isnan(var[3])
