@@ -266,6 +266,22 @@ def test_storage_that_ignores_conditions_is_refused(s3_server, monkeypatch):
     assert not _fs().exists(f"{BUCKET}/runs/ignoring/.lease")
 
 
+def test_a_prefix_holding_other_objects_is_refused_before_any_download(
+    study, monkeypatch, tmp_path
+):
+    """A store given as the run folder by mistake: refused without copying it."""
+    _fs().pipe_file(f"{BUCKET}/runs/notarun/zarr.json", b"{}")
+    _fs().pipe_file(f"{BUCKET}/runs/notarun/X/c/0/0", bytes(1000))
+    monkeypatch.setenv("WIDESCREEN_CACHE_DIR", str(tmp_path / "copy"))
+    url = f"s3://{BUCKET}/runs/notarun"
+    for extra in ((), ("--restart",)):
+        res = runner.invoke(app, _args("screen", study["sim"], url, *extra))
+        assert res.exit_code != 0
+        assert "does not look like a run folder (it holds X, zarr.json)" in res.output
+    assert not any(p.is_file() for p in (tmp_path / "copy").rglob("*"))
+    assert not _fs().exists(f"{BUCKET}/runs/notarun/.lease")
+
+
 @pytest.mark.parametrize(
     ("url", "reason"),
     [

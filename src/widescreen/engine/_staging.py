@@ -35,7 +35,7 @@ from pathlib import Path
 from ..schema import RunFolderError
 from ..store import RemotePath, StoreError, check_conditional, is_url, place
 from ._lease import LEASE_SECONDS, Lease, LeaseLost
-from ._runfolder import atomic_write, is_partial_file
+from ._runfolder import RUN_FOLDER_ENTRIES, atomic_write, is_partial_file
 
 #: Seconds between two uploads while a run works.
 PUSH_SECONDS = 10.0
@@ -200,6 +200,7 @@ class StagedRun:
         """Make the local copy equal the bucket; return the number of files downloaded."""
         self.lease.check()
         remote = self._listing()
+        self._refuse_foreign(remote)
         local = self._local_files()
         self.local.mkdir(parents=True, exist_ok=True)
         for rel in set(local) - set(remote):
@@ -221,6 +222,19 @@ class StagedRun:
                 atomic_write(self.local / rel, got[key], sync=False)
         self._sent = {rel: _key(st) for rel, st in self._local_files().items()}
         return len(want)
+
+    def _refuse_foreign(self, remote: dict) -> None:
+        """Refuse, before downloading anything, a prefix without a manifest that holds objects a run
+        does not write (a store given as ``--out`` by mistake would otherwise be copied whole)."""
+        if "manifest.json" in remote:
+            return
+        foreign = sorted({rel.split("/", 1)[0] for rel in remote} - RUN_FOLDER_ENTRIES)
+        if foreign:
+            shown = ", ".join(foreign[:5]) + (", ..." if len(foreign) > 5 else "")
+            raise RunFolderError(
+                f"{self.remote}: does not look like a run folder (it holds {shown}); choose another "
+                "folder"
+            )
 
     def push(self) -> int:
         """Upload what changed locally since the last exchange and remove what was removed, in the
