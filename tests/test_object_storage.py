@@ -416,6 +416,20 @@ def test_cluster_with_store_on_s3_equals_threaded(study, cluster, command):
     assert "distributed" in (out / "manifest.json").read_text()
 
 
+def test_cluster_with_store_and_run_folder_on_s3(study, cluster, monkeypatch, tmp_path):
+    """Both on the bucket; the workers (on this host) write their blocks into the run's local copy."""
+    import fsspec
+
+    monkeypatch.setenv("WIDESCREEN_CACHE_DIR", str(tmp_path / "copy"))
+    url = f"s3://{BUCKET}/runs/cluster"
+    args = _args("screen", study["url"], study["sim"].outcome_path, url)  # type: ignore[arg-type]
+    res = runner.invoke(app, [*args, "--scheduler", cluster["address"]])
+    assert res.exit_code == 0, res.output
+    got = tmp_path / "got"
+    fsspec.filesystem("s3").get(f"{BUCKET}/runs/cluster", str(got), recursive=True)
+    _same_outputs(got, study["refs"]["screen"])
+
+
 def test_killed_worker_costs_only_its_blocks(study, cluster):
     """SIGKILL one of the two workers mid-pass: the other finishes, the tables are the threaded run's."""
     out = study["root"] / "cluster-killed"
