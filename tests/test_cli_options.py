@@ -167,6 +167,28 @@ def test_demo_help_does_not_break_a_sentence():
     assert any("age and batch covariates, and 8 causal variants" in ln for ln in lines)
 
 
+def test_readme_names_every_option_of_every_command():
+    import re
+    from pathlib import Path
+
+    import typer.main
+
+    readme = (Path(__file__).resolve().parents[1] / "README.md").read_text()
+    # The README's code: fenced blocks, then inline spans of the rest.
+    fenced = re.findall(r"^ *```.*?^ *```", readme, flags=re.S | re.M)
+    prose = re.sub(r"^ *```.*?^ *```", "", readme, flags=re.S | re.M)
+    code = "\n".join([*fenced, *re.findall(r"`[^`]+`", prose)])
+    missing = []
+    for name, command in typer.main.get_command(app).commands.items():
+        for param in command.params:
+            for opt in [*param.opts, *param.secondary_opts]:
+                if not opt.startswith("--"):
+                    continue
+                if not re.search(re.escape(opt) + r"(?![\w-])", code):
+                    missing.append(f"{name} {opt}")
+    assert not missing, missing
+
+
 def test_cli_import_loads_no_heavy_module():
     # Importing the command line (what `widescreen --help` does) must not pull in the numerical
     # stack: each command imports what it uses when it runs.
