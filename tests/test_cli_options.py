@@ -87,6 +87,17 @@ REFUSED = [
         "one of split, nonref",
     ),
     (["import", "a.tsv", "s.zarr", "--chunk-features", "-5"], "--chunk-features", "at least 1"),
+    # A .npy array is (samples, features) of numbers: the text-only flags are refused, not ignored.
+    (
+        ["import", "a.npy", "s.zarr", "--features-as-rows"],
+        "--features-as-rows",
+        "applies to CSV/TSV files, not to a.npy",
+    ),
+    (
+        ["import", "a.npy", "s.zarr", "--inf-as-missing"],
+        "--inf-as-missing",
+        "applies to CSV/TSV files, not to a.npy",
+    ),
     (["inspect", "s.zarr", "--sample-blocks", "0"], "--sample-blocks", "at least 1; got 0"),
     (["report", "r", "--top", "0"], "--top", "at least 1; got 0"),
     (["demo", "-p", "3"], "--features", "at least 8; got 3"),
@@ -121,6 +132,27 @@ def test_drop_rare_on_a_float_store_is_refused(tmp_path, rng):
         lines = [ln for ln in res.output.splitlines() if ln.strip()]
         assert len(lines) == 1 and lines[0].startswith("error: ")
         assert "--drop-rare" in lines[0] and "dosage" in lines[0] and "continuous" in lines[0]
+
+
+def test_import_dtype_applies_to_npy_files_too(tmp_path):
+    from widescreen.store import open_dataset
+
+    x = np.arange(12, dtype=np.float64).reshape(3, 4)
+    np.save(tmp_path / "x.npy", x)
+    (tmp_path / "x.tsv").write_text("id\ta\tb\ns1\t1.5\t2\ns2\t3\t4\n")
+    for src, extra, dtype in [
+        ("x.npy", [], "float64"),  # the file's float64 is kept unless --dtype is given
+        ("x.npy", ["--dtype", "float32"], "float32"),
+        ("x.tsv", [], "float32"),
+        ("x.tsv", ["--dtype", "float64"], "float64"),
+    ]:
+        out = tmp_path / f"{src}-{dtype}.zarr"
+        res = runner.invoke(app, ["import", str(tmp_path / src), str(out), "-q", *extra])
+        assert res.exit_code == 0, res.output
+        ds = open_dataset(out)
+        assert str(ds.dtype) == dtype, (src, extra)
+        if src == "x.npy":
+            np.testing.assert_array_equal(np.asarray(ds.X[:]), x.astype(dtype))
 
 
 def test_flags_take_no_value_and_arguments_show_by_name():

@@ -46,15 +46,16 @@ def import_cmd(
         ),
     ] = False,
     dtype: Annotated[
-        str,
+        str | None,
         typer.Option(
             "--dtype",
             metavar="TYPE",
             help="float32 or float64 for continuous values.",
             callback=one_of("float32", "float64"),
             rich_help_panel=_TEXT,
+            show_default="float32; a .npy file of float64 stays float64",
         ),
-    ] = "float32",
+    ] = None,
     values: Annotated[
         str,
         typer.Option(
@@ -138,10 +139,20 @@ def import_cmd(
     elif name.endswith(".npy"):
         from ..store._ingest_npy import import_npy
 
+        # A .npy array is (samples, features) with numbers only: refuse what would be ignored.
+        for flag, given in (
+            ("--features-as-rows", features_as_rows),
+            ("--inf-as-missing", inf_as_missing),
+        ):
+            if given:
+                raise typer.BadParameter(
+                    f"applies to CSV/TSV files, not to {src.name}", param_hint=f"'{flag}'"
+                )
         ds = import_npy(
             src,
             store,
             value_kind="dosage" if dosage else None,
+            dtype=None if dosage else dtype,
             chunk_features=chunk_features,
             overwrite=overwrite,
             progress=bar,
@@ -153,7 +164,7 @@ def import_cmd(
             src,
             store,
             features_as_rows=features_as_rows,
-            dtype="int8" if dosage else dtype,
+            dtype="int8" if dosage else dtype or "float32",
             value_kind="dosage" if dosage else "continuous",
             chunk_features=chunk_features,
             overwrite=overwrite,
