@@ -197,6 +197,8 @@ def test_demo_help_does_not_break_a_sentence():
     out = runner.invoke(app, ["demo", "--help"], env={"COLUMNS": "400"}).output
     lines = [ln.strip() for ln in out.splitlines()]
     assert any("age and batch covariates, and 8 causal variants" in ln for ln in lines)
+    out = runner.invoke(app, ["run", "--help"], env={"COLUMNS": "400"}).output
+    assert any("ranking.tsv (the first screen's shortlist;" in ln for ln in out.splitlines())
 
 
 def test_readme_names_every_option_of_every_command():

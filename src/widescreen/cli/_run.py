@@ -173,8 +173,7 @@ def run_cmd(
 ) -> None:
     """Iterative screening: screen, fit a penalised model, rank the rest given it, refit, repeat.
 
-    Writes model.tsv (the final model), iterations.tsv (one row per iteration), ranking.tsv (the first
-    screen's shortlist) and manifest.json into the run folder; rerunning resumes pass by pass.
+    Writes model.tsv (the final model), iterations.tsv (one row per iteration), entries.tsv (who entered and left), ranking.tsv (the first screen's shortlist; not after --split) and manifest.json into the run folder; rerunning resumes pass by pass.
     """
     from ..workflow._iterate import IterateConfig
     from ..workflow._problem import expand_response
