@@ -267,7 +267,7 @@ CASES = [
     Case("csv-unknown-extension", _text("x.dat", CSV_OK), r"x\.dat: unknown extension '\.dat'"),
     Case("csv-gzip-truncated", _truncated_gz("x.csv.gz", CSV_OK), r"x\.csv\.gz: cannot decompress"),
     Case("tsv-with-commas", _text("x.tsv", CSV_OK), r"x\.tsv: line 1 has a single field"),
-    Case("csv-exists", _existing(True), r"s\.zarr: already exists"),
+    Case("csv-exists", _existing(True), r"s\.zarr: already exists .*--overwrite to replace it"),
     Case(
         "csv-killed-import-left",
         _existing(False),

@@ -482,7 +482,7 @@ def check_new_store(path: str | os.PathLike, overwrite: bool, error=StoreError) 
             f"{path}: holds an import that did not finish (it was stopped); an import cannot "
             "resume: use --overwrite to replace it"
         )
-    raise error(f"{path}: already exists (choose another path or overwrite)")
+    raise error(f"{path}: already exists (choose another path, or --overwrite to replace it)")
 
 
 def _unfinished_store(path: Path | RemotePath) -> bool:
