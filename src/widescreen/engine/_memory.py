@@ -313,16 +313,22 @@ def plan_memory(
     per = thread_bytes(shape, 1, temporaries=temporaries, **kw)
     shared = shared_bytes(shape, 1, keep=keep, split_every=split_every, baseline=baseline)
     n_row_chunks = -(-shape.n_samples // shape.chunk_rows)
+    kept = 2 * shape.n_analysed * min(keep, shape.chunk_cols) * shape.itemsize
     raise MemoryBudgetError(
-        f"a memory budget of {format_bytes(total)} is too small for this pass: one worker thread "
-        f"needs at least {format_bytes(per)} (a chunk column of {n_row_chunks * shape.chunk_rows} x "
-        f"{shape.chunk_cols} values of {shape.itemsize} byte(s), {format_bytes(shape.column_bytes)}, "
-        f"is decoded whole; {_encoded_what(shape)} up to {format_bytes(shape.encoded_bytes)}; the "
-        f"top-{keep} values {format_bytes(2 * shape.n_analysed * min(keep, shape.chunk_cols) * shape.itemsize)}) on top of "
-        f"{format_bytes(shared)} for the process ({format_bytes(baseline)} of its own) and pending "
-        "merges; give at least "
-        f"{format_bytes(per + shared)}, or store X with fewer features per chunk"
+        f"a memory budget of {_size(total)} is too small for this pass: one worker thread "
+        f"needs at least {_size(per)} (a chunk column of {n_row_chunks * shape.chunk_rows} x "
+        f"{shape.chunk_cols} values of {shape.itemsize} byte(s), {_size(shape.column_bytes)}, "
+        f"is decoded whole; {_encoded_what(shape)} up to {_size(shape.encoded_bytes)}"
+        + (f"; the top-{keep} values {_size(kept)}" if keep else "")
+        + f") on top of {_size(shared)} for the process ({_size(baseline)} of its own) and "
+        f"pending merges; give at least {_size(per + shared)}, or store X with fewer features per "
+        "chunk"
     )
+
+
+def _size(n: float) -> str:
+    """Bytes as the rest of the program writes them (dask writes kibibytes "kiB")."""
+    return format_bytes(n).replace("kiB", "KiB")
 
 
 def _encoded_what(shape: BlockShape) -> str:
