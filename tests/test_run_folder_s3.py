@@ -26,6 +26,7 @@ from widescreen.simulate import SimulationConfig, simulate
 from widescreen.store import place
 
 from .s3_kit import BUCKET, stop_process
+from .test_object_storage import _args as _run_args
 from .test_object_storage import _same_outputs
 
 pytestmark = pytest.mark.slow
@@ -55,19 +56,7 @@ def study(s3_server, tmp_path_factory):
 
 
 def _args(command: str, sim, out, *extra: str) -> list[str]:
-    return [
-        command,
-        str(sim.dataset.path),
-        "--outcome",
-        str(sim.outcome_path),
-        "--response",
-        "y",
-        "--out",
-        str(out),
-        "--quiet",
-        "--no-report",
-        *extra,
-    ]
+    return _run_args(command, sim.dataset.path, sim.outcome_path, out, *extra)
 
 
 def _fs():

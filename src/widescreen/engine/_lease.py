@@ -44,6 +44,7 @@ from ..store import (
     read_object,
     replace_object,
 )
+from ._runfolder import pid_alive
 
 #: Lifetime of a lease without renewal, in seconds.
 LEASE_SECONDS = 60.0
@@ -55,16 +56,6 @@ MARGIN = 10.0
 
 class LeaseLost(RunFolderError):
     """The run folder's lease expired or was taken over: this process may no longer write there."""
-
-
-def _pid_alive(pid: int) -> bool:
-    try:
-        os.kill(pid, 0)
-    except ProcessLookupError:
-        return False
-    except (PermissionError, OverflowError, ValueError):
-        return True
-    return True
 
 
 @dataclass
@@ -158,7 +149,7 @@ class Lease:
             expires = float(holder["expires"])
         except (ValueError, KeyError, TypeError):
             holder, expires = {}, 0.0  # not a lease we can read: treated as expired
-        same_host_dead = holder.get("host") == socket.gethostname() and not _pid_alive(
+        same_host_dead = holder.get("host") == socket.gethostname() and not pid_alive(
             int(holder.get("pid", -1))
         )
         if not same_host_dead and time.time() < expires + self.skew:
@@ -226,10 +217,6 @@ class Lease:
                 self._lost = "another process took the run folder's lease over"
             elif self._etag is not None:
                 self._etag, self._renewed = new, started
-
-    @property
-    def held(self) -> bool:
-        return self._etag is not None
 
     def valid(self) -> bool:
         """Whether this process may still write: held, not lost, and renewed recently enough."""

@@ -83,12 +83,14 @@ def remove_partial_files(root: Path) -> int:
     return n
 
 
-def _pid_alive(pid: int) -> bool:
+def pid_alive(pid: int) -> bool:
+    """Whether a process ``pid`` runs on this host (one we may not signal counts as running; so does
+    a number no process can have, rather than let a garbled record free a lock)."""
     try:
         os.kill(pid, 0)
     except ProcessLookupError:
         return False
-    except PermissionError:
+    except (PermissionError, OverflowError, ValueError):
         return True
     return True
 
@@ -153,7 +155,7 @@ class RunLock:
                 if (
                     holder is not None
                     and holder.get("host") == info["host"]
-                    and not _pid_alive(int(holder.get("pid", -1)))
+                    and not pid_alive(int(holder.get("pid", -1)))
                 ):
                     self.path.unlink(missing_ok=True)  # stale: its process was killed
                     continue
